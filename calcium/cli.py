@@ -1,0 +1,558 @@
+"""Command-line front-end: parses arguments, calls the public API, prints.
+
+No science lives here: every command is a thin wrapper over functions a user
+can call from Python. Exit codes: 0 success, 1 data error (one line naming the
+file and the problem; ``--debug`` shows the traceback), 2 usage error.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from pathlib import Path
+
+import numpy as np
+
+EXIT_DATA = 1
+EXIT_USAGE = 2
+
+
+class CommandError(Exception):
+    """A data or file problem, reported as one line with exit code 1."""
+
+
+# --------------------------------------------------------------------------- helpers
+
+def _fail(path, exc) -> CommandError:
+    """Wrap an exception from reading ``path`` so the message names the file once."""
+    msg = str(exc) or exc.__class__.__name__
+    if path is not None and str(path) not in msg:
+        msg = f"{path}: {msg}"
+    return CommandError(msg)
+
+
+def _check_new_output(path, *, overwrite: bool, inputs=()) -> Path:
+    """Refuse to write over an input, and over an existing output unless asked to."""
+    path = Path(path)
+    for item in inputs:
+        if item is not None and Path(item).exists() and path.exists() and path.resolve() == Path(item).resolve():
+            raise CommandError(f"{path}: output would overwrite an input file; choose another --out")
+    if path.exists() and not overwrite:
+        raise CommandError(f"{path}: already exists; pass --overwrite to replace it")
+    if not path.parent.exists():
+        raise CommandError(f"{path}: the folder {path.parent} does not exist")
+    return path
+
+
+def _read_traces(path, dataset=None):
+    from calcium.io import read_traces
+    try:
+        return read_traces(path, dataset=dataset)
+    except (ValueError, OSError) as exc:
+        raise _fail(path, exc) from exc
+
+
+def _frame_rate(args, data) -> float:
+    """Frame rate from --frame-rate or from the file; they must agree when both are given."""
+    given = getattr(args, "frame_rate", None)
+    found = getattr(data, "frame_rate", None)
+    if given is None and found is None:
+        raise CommandError(f"{data.path}: the file does not record a frame rate; pass --frame-rate HZ")
+    if given is not None and given <= 0:
+        raise CommandError(f"--frame-rate must be positive, got {given}")
+    if given is not None and found is not None and abs(given - found) > 1e-3 * found:
+        raise CommandError(f"{data.path}: the file says {found:g} Hz but --frame-rate is {given:g} Hz")
+    return float(given if given is not None else found)
+
+
+def _kernel_from_args(args, *, required: bool = True):
+    """A Kernel from --indicator or --rise-s/--decay-s/--amplitude (None if neither and not required)."""
+    from calcium.kernel import Kernel
+    if getattr(args, "indicator", None):
+        if args.rise_s is not None or args.decay_s is not None:
+            raise CommandError("give either --indicator or --rise-s/--decay-s, not both")
+        kernel = Kernel.from_indicator(args.indicator)
+        if args.amplitude is not None:
+            kernel = kernel.with_amplitude(args.amplitude)
+        return kernel
+    if args.decay_s is not None:
+        return Kernel(rise_s=args.rise_s or 0.0, decay_s=args.decay_s,
+                      amplitude=args.amplitude if args.amplitude is not None else 1.0)
+    if args.rise_s is not None:
+        raise CommandError("--rise-s needs --decay-s")
+    if required:
+        raise CommandError("give the indicator kinetics: --indicator NAME or --rise-s S --decay-s S")
+    return None
+
+
+def _write_traces(path, traces, *, frame_rate, inputs=(), attrs=None):
+    from calcium.io import write_hdf5, write_traces
+    path = Path(path)
+    if path.suffix.lower() in (".h5", ".hdf5") and attrs:
+        write_hdf5(path, {"traces": traces}, attrs={"frame_rate": frame_rate, **attrs}, inputs=inputs)
+    else:
+        write_traces(path, traces, frame_rate=frame_rate)
+
+
+def _progress(args) -> bool:
+    return not getattr(args, "quiet", False)
+
+
+def _say(args, text: str) -> None:
+    if not getattr(args, "quiet", False):
+        print(text)
+
+
+def _add_kernel_options(p, *, help_suffix=""):
+    g = p.add_argument_group("indicator kinetics" + help_suffix)
+    g.add_argument("--indicator", help="indicator name from `calcium indicators` (e.g. GCaMP6s)")
+    g.add_argument("--rise-s", type=float, help="rise time constant in seconds (0 = instantaneous)")
+    g.add_argument("--decay-s", type=float, help="decay time constant in seconds")
+    g.add_argument("--amplitude", type=float, help="peak ΔF/F of one spike")
+
+
+# --------------------------------------------------------------------------- commands
+
+def cmd_demo(args):
+    from calcium.demo import run_demo
+    out = Path(args.out)
+    index = run_demo(out, progress=_progress(args), overwrite=args.overwrite)
+    _say(args, f"report written: {index}")
+
+
+def cmd_extract(args):
+    from calcium.extract import extract_traces
+    from calcium.io import open_movie, read_masks
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.movie, args.masks))
+    try:
+        movie = open_movie(args.movie)
+    except (ValueError, OSError) as exc:
+        raise _fail(args.movie, exc) from exc
+    try:
+        masks = read_masks(args.masks)
+    except (ValueError, OSError) as exc:
+        raise _fail(args.masks, exc) from exc
+    factor = args.neuropil_factor
+    factor = "estimate" if factor == "estimate" else float(factor)
+    result = extract_traces(movie, masks, neuropil_gap_px=args.gap_px, neuropil_radius_px=args.radius_px,
+                            neuropil_factor=factor, chunk_frames=args.chunk_frames, progress=_progress(args))
+    from calcium.io import write_hdf5, write_traces
+    if out.suffix.lower() in (".h5", ".hdf5"):
+        attrs = {"neuropil_gap_px": args.gap_px, "neuropil_radius_px": args.radius_px,
+                 "neuropil_factor_setting": str(args.neuropil_factor)}
+        if args.frame_rate:
+            attrs["frame_rate"] = args.frame_rate
+        write_hdf5(out, {"traces": result.corrected, "roi_f": result.roi_f, "neuropil_f": result.neuropil_f,
+                         "neuropil_factor": np.asarray(result.neuropil_factor)},
+                   attrs=attrs, inputs=(args.movie, args.masks))
+    else:
+        write_traces(out, result.corrected, frame_rate=args.frame_rate)
+    _say(args, f"{result.corrected.shape[0]} ROI(s) x {result.corrected.shape[1]} frames -> {out}")
+
+
+def cmd_dff(args):
+    from calcium.signal import delta_f_over_f
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
+    data = _read_traces(args.input, args.dataset)
+    rate = _frame_rate(args, data)
+    try:
+        result = delta_f_over_f(data.traces, rate, window_s=args.window_s, percentile=args.percentile,
+                                floor=args.floor)
+    except ValueError as exc:
+        raise _fail(args.input, exc) from exc
+    if result.missing.any:
+        _say(args, f"note: {result.missing.describe(rate)}")
+    from calcium.io import write_hdf5
+    if out.suffix.lower() in (".h5", ".hdf5"):
+        write_hdf5(out, {"dff": result.dff, "f0": result.f0},
+                   attrs={"frame_rate": rate, "window_s": args.window_s, "percentile": args.percentile,
+                          "floor": "none" if args.floor is None else args.floor},
+                   inputs=(args.input,))
+    else:
+        _write_traces(out, result.dff, frame_rate=rate)
+    _say(args, f"ΔF/F of {data.traces.shape[0]} ROI(s) -> {out}")
+
+
+def cmd_filter(args):
+    from calcium.signal import design_filter
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
+    data = _read_traces(args.input, args.dataset)
+    rate = _frame_rate(args, data)
+    cutoff = args.cutoff_hz[0] if len(args.cutoff_hz) == 1 else tuple(args.cutoff_hz)
+    try:
+        filt = design_filter(args.kind, cutoff, rate, order=args.order, method=args.method)
+        applied = filt.apply(data.traces, edges=args.edges)
+    except ValueError as exc:
+        raise _fail(args.input, exc) from exc
+    filtered = applied[0] if isinstance(applied, tuple) else applied
+    _write_traces(out, filtered, frame_rate=rate)
+    _say(args, str(filt))
+    if args.plot:
+        from calcium.report.figures import filter_response_figure, save_figure
+        freq, single, zero = filt.frequency_response()
+        save_figure(filter_response_figure(freq, single, zero, half_power_hz=filt.half_power_hz,
+                                           frame_rate=rate), args.plot)
+        _say(args, f"frequency response -> {args.plot}")
+    _say(args, f"filtered {filtered.shape[0]} ROI(s) -> {out}")
+
+
+def cmd_noise(args):
+    from calcium.signal import estimate_noise
+    data = _read_traces(args.input, args.dataset)
+    rate = _frame_rate(args, data)
+    try:
+        sd = np.atleast_1d(estimate_noise(data.traces, rate))
+    except ValueError as exc:
+        raise _fail(args.input, exc) from exc
+    if args.out:
+        from calcium.io import write_csv
+        out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
+        write_csv(out, ["roi", "noise_sd"], [(i, float(v)) for i, v in enumerate(sd)])
+        _say(args, f"noise s.d. of {sd.size} ROI(s) -> {out}")
+    else:
+        print("roi,noise_sd")
+        for i, v in enumerate(sd):
+            print(f"{i},{v:.6g}")
+
+
+def cmd_indicators(args):
+    from calcium.indicators import INDICATORS
+    rows = [("name", "ΔF/F 1 AP", "half-rise s", "half-decay s", "conditions", "source")]
+    for ind in INDICATORS:
+        rows.append((ind.name, f"{ind.single_spike_dff:.3g}", f"{ind.half_rise_s:.3g}", f"{ind.half_decay_s:.3g}",
+                     ind.conditions, ind.source))
+    widths = [max(len(str(r[i])) for r in rows) for i in range(5)]
+    for r in rows:
+        print("  ".join(str(c).ljust(w) for c, w in zip(r[:5], widths)) + "  " + r[5])
+
+
+def cmd_simulate(args):
+    from calcium.forward import simulate_recording
+    out = Path(args.out)
+    if out.exists() and any(out.iterdir()) and not args.overwrite:
+        raise CommandError(f"{out}: folder exists and is not empty; pass --overwrite")
+    kernel = _kernel_from_args(args, required=False)
+    sim = simulate_recording(args.rois, args.duration_s, args.frame_rate, kernel=kernel,
+                             indicator=None if kernel is not None else "GCaMP6s",
+                             rate_hz=args.rate_hz, noise_sd=args.noise_sd,
+                             photons_per_frame=args.photons_per_frame, seed=args.seed)
+    out.mkdir(parents=True, exist_ok=True)
+    paths = sim.save(out)
+    _say(args, f"simulated {args.rois} ROI(s) x {sim.raw.shape[-1]} frames -> {out}")
+    for p in (paths.values() if isinstance(paths, dict) else paths or ()):
+        _say(args, f"  {p}")
+
+
+def cmd_predict(args):
+    from calcium.forward import predict_fluorescence
+    from calcium.io import read_spike_times, write_csv
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.spikes,))
+    try:
+        spikes = read_spike_times(args.spikes)
+    except (ValueError, OSError) as exc:
+        raise _fail(args.spikes, exc) from exc
+    kernel = _kernel_from_args(args)
+    if args.frame_rate <= 0:
+        raise CommandError(f"--frame-rate must be positive, got {args.frame_rate}")
+    last = max((float(t.max()) for t in spikes.values() if len(t)), default=0.0)
+    duration = args.duration_s if args.duration_s is not None else last + 5 * kernel.decay_s
+    n_frames = max(1, int(np.ceil(duration * args.frame_rate)))
+    rois = sorted(spikes)
+    try:
+        pred = np.vstack([predict_fluorescence(spikes[r], kernel, args.frame_rate, n_frames,
+                                               scan_offset_s=args.scan_offset_s, exposure_s=args.exposure_s)
+                          for r in rois])
+    except ValueError as exc:
+        raise _fail(args.spikes, exc) from exc
+    if out.suffix.lower() == ".csv":
+        t = np.arange(n_frames) / args.frame_rate
+        write_csv(out, ["time_s"] + [f"roi{r}" for r in rois], np.column_stack([t, pred.T]).tolist())
+    else:
+        _write_traces(out, pred, frame_rate=args.frame_rate, inputs=(args.spikes,),
+                      attrs={"kernel": json.dumps(kernel.to_dict()), "rois": json.dumps(rois)})
+    _say(args, f"predicted ΔF/F for {len(rois)} ROI(s) x {n_frames} frames with {kernel} -> {out}")
+    if args.plot:
+        from calcium.report.figures import prediction_figure, save_figure
+        save_figure(prediction_figure(args.frame_rate, None, pred[0], spikes[rois[0]],
+                                      roi_label=f"ROI {rois[0]}"), args.plot)
+        _say(args, f"plot -> {args.plot}")
+
+
+def cmd_infer(args):
+    from calcium.pipeline import infer_file
+    kernel = _kernel_from_args(args, required=False)
+    data = _read_traces(args.input, args.dataset)
+    rate = _frame_rate(args, data)
+    try:
+        summary = infer_file(args.input, args.out, frame_rate=rate, kernel=kernel, dataset=args.dataset,
+                             workers=args.workers, overwrite=args.overwrite, progress=_progress(args))
+    except ValueError as exc:
+        raise _fail(args.input, exc) from exc
+    _say(args, str(summary))
+
+
+def cmd_fit_kernel(args):
+    from calcium.fit import check_kinetics, fit_kernel
+    from calcium.io import read_spike_times
+    data = _read_traces(args.trace, args.dataset)
+    rate = _frame_rate(args, data)
+    try:
+        spikes = read_spike_times(args.spikes)
+    except (ValueError, OSError) as exc:
+        raise _fail(args.spikes, exc) from exc
+    roi = args.roi
+    if roi >= data.traces.shape[0]:
+        raise CommandError(f"{args.trace}: has {data.traces.shape[0]} ROI(s); --roi {roi} is out of range")
+    times = spikes.get(args.spike_roi if args.spike_roi is not None else roi, spikes.get(0))
+    if times is None or len(times) == 0:
+        raise CommandError(f"{args.spikes}: no spike times for ROI {roi}")
+    try:
+        fit = fit_kernel(data.traces[roi], times, rate, model=args.model, initial=args.indicator,
+                         n_bootstrap=args.bootstrap, seed=args.seed)
+    except ValueError as exc:
+        raise _fail(args.trace, exc) from exc
+    print(fit)
+    if args.indicator:
+        print(check_kinetics(fit, args.indicator))
+    if args.out:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        from calcium.io import write_csv
+        table = out / "kernel_fit.csv"
+        _check_new_output(table, overwrite=args.overwrite, inputs=(args.trace, args.spikes))
+        write_csv(table, ["quantity", "value", "low", "high"], fit.table_rows())
+        from calcium.report.figures import kernel_fit_figure, save_figure
+        save_figure(kernel_fit_figure(fit, data.traces[roi], times, rate), out / "kernel_fit.png")
+        _say(args, f"table and figure -> {out}")
+
+
+def cmd_score(args):
+    from calcium.io import read_spike_times, write_csv
+    from calcium.score import score_many
+    try:
+        inferred = read_spike_times(args.inferred)
+    except (ValueError, OSError) as exc:
+        raise _fail(args.inferred, exc) from exc
+    try:
+        true = read_spike_times(args.true)
+    except (ValueError, OSError) as exc:
+        raise _fail(args.true, exc) from exc
+    table = score_many(inferred, true, tolerance_s=args.tolerance_s)
+    print(table)
+    if args.out:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        csv_path = _check_new_output(out / "scores.csv", overwrite=args.overwrite,
+                                     inputs=(args.inferred, args.true))
+        header, rows = table.as_rows()
+        write_csv(csv_path, header, rows)
+        from calcium.report.figures import save_figure, score_figure
+        save_figure(score_figure(table), out / "scores.png")
+        _say(args, f"table and figure -> {out}")
+
+
+def cmd_plan(args):
+    from calcium.plan import plan_detectability
+    kernel = _kernel_from_args(args, required=False)
+    if kernel is None and not args.indicator:
+        raise CommandError("give --indicator NAME or --rise-s/--decay-s/--amplitude")
+    plan = plan_detectability(kernel=kernel, indicator=None if kernel else args.indicator,
+                              frame_rates=tuple(args.frame_rates),
+                              noise_sd=tuple(args.noise_sd) if args.noise_sd else None,
+                              photons_per_frame=tuple(args.photons) if args.photons else None,
+                              n_trials=args.trials, false_positive_rate=args.false_positive_rate, seed=args.seed)
+    print(plan)
+    if args.out:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        from calcium.io import write_csv
+        from calcium.report.figures import planner_figure, save_figure
+        header, rows = plan.as_rows()
+        write_csv(_check_new_output(out / "plan.csv", overwrite=args.overwrite), header, rows)
+        save_figure(planner_figure(plan), out / "plan.png")
+        _say(args, f"table and figure -> {out}")
+
+
+def cmd_init(args):
+    from calcium.pipeline import write_config_template
+    path = Path(args.path)
+    if path.exists():
+        raise CommandError(f"{path}: already exists; not overwritten")
+    write_config_template(path)
+    _say(args, f"configuration written: {path} (edit it, then `calcium run {path}`)")
+
+
+def cmd_run(args):
+    from calcium.pipeline import run_pipeline
+    try:
+        summary = run_pipeline(args.config, overwrite=args.overwrite, progress=_progress(args))
+    except ValueError as exc:
+        raise _fail(args.config, exc) from exc
+    _say(args, str(summary))
+
+
+# --------------------------------------------------------------------------- parser
+
+def build_parser() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--quiet", action="store_true", help="no progress bars or chatter")
+    common.add_argument("--debug", action="store_true", help="show the full traceback on errors")
+
+    parser = argparse.ArgumentParser(
+        prog="calcium", parents=[common],
+        description="From calcium-imaging fluorescence to spikes: ΔF/F, zero-phase filters, indicator kernels, "
+                    "forward model, exact non-negative deconvolution, kernel fitting, scoring, planning.")
+    parser.add_argument("--version", action="version", version=f"calcium {_version()}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    def add(name, func, help_text):
+        p = sub.add_parser(name, parents=[common], help=help_text, description=help_text)
+        p.set_defaults(func=func)
+        return p
+
+    def traces_input(p, name="input"):
+        p.add_argument(name, help="trace file: .npy, .csv (one column per ROI, optional time_s column) or .h5")
+        p.add_argument("--dataset", help="dataset name inside an HDF5 file")
+        p.add_argument("--frame-rate", type=float, help="frames per second (Hz); read from the file when it has it")
+
+    def output(p, required=True, help_text="output file"):
+        p.add_argument("--out", required=required, help=help_text)
+        p.add_argument("--overwrite", action="store_true", help="replace an existing output")
+
+    p = add("demo", cmd_demo, "run every stage on the bundled demo session and write an HTML report")
+    p.add_argument("--out", default="calcium-demo", help="report folder (default: ./calcium-demo)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+
+    p = add("extract", cmd_extract, "movie + ROI masks -> neuropil-corrected fluorescence traces")
+    p.add_argument("movie", help="TIFF movie (frames, height, width)")
+    p.add_argument("masks", help="ROI masks: label image (0 = background) or boolean stack (.tif/.npy)")
+    p.add_argument("--frame-rate", type=float, help="frames per second (Hz), stored with the traces")
+    p.add_argument("--gap-px", type=float, default=2.0, help="gap between ROI and neuropil ring (pixels)")
+    p.add_argument("--radius-px", type=float, default=15.0, help="outer radius of the neuropil ring (pixels)")
+    p.add_argument("--neuropil-factor", default="0.7", help="r in F - r*F_neuropil, or 'estimate' (per ROI)")
+    p.add_argument("--chunk-frames", type=int, default=500, help="frames read at a time")
+    output(p, help_text="output traces (.h5 keeps ROI, neuropil and factors; .npy/.csv: corrected only)")
+
+    p = add("dff", cmd_dff, "raw fluorescence -> ΔF/F with a running-percentile baseline F0")
+    traces_input(p)
+    p.add_argument("--window-s", type=float, default=60.0, help="baseline window in seconds (default 60)")
+    p.add_argument("--percentile", type=float, default=8.0, help="baseline percentile (default 8)")
+    p.add_argument("--floor", type=float, help="lowest allowed F0 (otherwise F0 <= 0 is an error)")
+    output(p, help_text="output file (.h5 also stores F0)")
+
+    p = add("filter", cmd_filter, "zero-phase filter traces (low/high/band-pass, band-stop)")
+    traces_input(p)
+    p.add_argument("--kind", required=True, choices=["lowpass", "highpass", "bandpass", "bandstop"])
+    p.add_argument("--cutoff-hz", type=float, nargs="+", required=True,
+                   help="cut-off in Hz (two values for bandpass/bandstop)")
+    p.add_argument("--order", type=int, default=4, help="filter order (FIR: taps - 1)")
+    p.add_argument("--method", choices=["butterworth", "fir"], default="butterworth")
+    p.add_argument("--edges", choices=["pad", "mark", "trim"], default="pad",
+                   help="edge handling: pad (default), mark the affected span, or trim it")
+    p.add_argument("--plot", help="also write the frequency response to this PNG")
+    output(p)
+
+    p = add("noise", cmd_noise, "noise s.d. per ROI from the upper band of the power spectrum")
+    traces_input(p)
+    output(p, required=False, help_text="CSV table (default: print)")
+
+    add("indicators", cmd_indicators, "list the reference indicator kinetics with their sources")
+
+    p = add("simulate", cmd_simulate, "simulate a recording: spike trains -> forward model -> noisy fluorescence")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--overwrite", action="store_true", help="write into a non-empty folder")
+    p.add_argument("--rois", type=int, default=10)
+    p.add_argument("--duration-s", type=float, default=60.0)
+    p.add_argument("--frame-rate", type=float, default=30.0)
+    p.add_argument("--rate-hz", type=float, default=0.5, help="mean firing rate per ROI")
+    p.add_argument("--noise-sd", type=float, help="ΔF/F noise s.d. (instead of a photon budget)")
+    p.add_argument("--photons-per-frame", type=float, help="photons per frame at baseline (shot noise)")
+    p.add_argument("--seed", type=int, default=0)
+    _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
+
+    p = add("predict", cmd_predict, "spike times -> predicted ΔF/F per frame (forward model)")
+    p.add_argument("spikes", help="spike CSV: roi,time_s or one time per line")
+    p.add_argument("--frame-rate", type=float, required=True)
+    p.add_argument("--duration-s", type=float, help="recording length (default: last spike + 5 decays)")
+    p.add_argument("--scan-offset-s", type=float, default=0.0, help="time the scanner reaches the ROI in a frame")
+    p.add_argument("--exposure-s", type=float, help="average over an exposure window instead of a point sample")
+    p.add_argument("--plot", help="also write a PNG plot")
+    _add_kernel_options(p)
+    output(p, help_text="output traces (.h5, .npy or .csv)")
+
+    p = add("infer", cmd_infer, "ΔF/F -> inferred spikes (exact non-negative deconvolution), resumable")
+    traces_input(p)
+    _add_kernel_options(p, help_suffix=" (default: estimated from each trace)")
+    p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="parallel processes (default: all cores)")
+    output(p, help_text="output HDF5 file; a CSV spike table is written beside it")
+
+    p = add("fit-kernel", cmd_fit_kernel, "fit indicator kinetics and clock lag from electrically recorded spikes")
+    p.add_argument("trace", help="ΔF/F trace file")
+    p.add_argument("spikes", help="spike CSV (roi,time_s or one time per line)")
+    p.add_argument("--dataset", help="dataset name inside an HDF5 file")
+    p.add_argument("--frame-rate", type=float, help="frames per second (Hz)")
+    p.add_argument("--roi", type=int, default=0, help="which ROI of the trace file (default 0)")
+    p.add_argument("--spike-roi", type=int, help="which ROI of the spike file (default: same as --roi)")
+    p.add_argument("--indicator", help="indicator to start from and to check against")
+    p.add_argument("--model", choices=["double-exponential", "free"], default="double-exponential")
+    p.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples for the intervals")
+    p.add_argument("--seed", type=int, default=0)
+    output(p, required=False, help_text="folder for the table and figure")
+
+    p = add("score", cmd_score, "score inferred spikes against true (electrical) spike times")
+    p.add_argument("inferred", help="inferred spike CSV")
+    p.add_argument("true", help="true spike CSV")
+    p.add_argument("--tolerance-s", type=float, default=0.1, help="matching tolerance in seconds")
+    output(p, required=False, help_text="folder for the table and figure")
+
+    p = add("plan", cmd_plan, "will single spikes be detectable? sweep frame rate and noise by simulation")
+    _add_kernel_options(p)
+    p.add_argument("--frame-rates", type=float, nargs="+", default=[15.0, 30.0, 60.0])
+    p.add_argument("--noise-sd", type=float, nargs="+", help="ΔF/F noise s.d. levels")
+    p.add_argument("--photons", type=float, nargs="+", help="photons per frame at baseline (instead of noise)")
+    p.add_argument("--trials", type=int, default=200)
+    p.add_argument("--false-positive-rate", type=float, default=0.01)
+    p.add_argument("--seed", type=int, default=0)
+    output(p, required=False, help_text="folder for the table and figure")
+
+    p = add("init", cmd_init, "write a commented pipeline configuration (TOML)")
+    p.add_argument("path", nargs="?", default="calcium.toml")
+
+    p = add("run", cmd_run, "run the whole-session pipeline described by a configuration file")
+    p.add_argument("config", help="TOML configuration (see `calcium init`)")
+    p.add_argument("--overwrite", action="store_true", help="replace an output made with other parameters")
+    return parser
+
+
+def _version() -> str:
+    from calcium import __version__
+    return __version__
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return EXIT_USAGE
+    try:
+        args.func(args)
+    except CommandError as exc:
+        if args.debug:
+            raise
+        print(f"calcium {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_DATA
+    except (ValueError, OSError) as exc:
+        if args.debug:
+            raise
+        print(f"calcium {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_DATA
+    except KeyboardInterrupt:
+        print(f"calcium {args.command}: interrupted", file=sys.stderr)
+        return 130
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
