@@ -74,7 +74,7 @@ def _kernel_from_args(args, *, required: bool = True):
             raise CommandError("give either --indicator or --rise-s/--decay-s, not both")
         kernel = Kernel.from_indicator(args.indicator)
         if args.amplitude is not None:
-            kernel = kernel.with_amplitude(args.amplitude)
+            kernel = kernel.scaled(args.amplitude)
         return kernel
     if args.decay_s is not None:
         return Kernel(rise_s=args.rise_s or 0.0, decay_s=args.decay_s,
@@ -218,13 +218,21 @@ def cmd_noise(args):
 
 def cmd_indicators(args):
     from calcium.indicators import INDICATORS
-    rows = [("name", "ΔF/F 1 AP", "half-rise s", "half-decay s", "conditions", "source")]
+
+    def secs(value):
+        return "-" if value is None else f"{value:.3g}"
+
+    rows = [("name", "ΔF/F 1 spike", "half-rise s", "time to peak s", "half-decay s", "conditions")]
     for ind in INDICATORS:
-        rows.append((ind.name, f"{ind.single_spike_dff:.3g}", f"{ind.half_rise_s:.3g}", f"{ind.half_decay_s:.3g}",
-                     ind.conditions, ind.source))
-    widths = [max(len(str(r[i])) for r in rows) for i in range(5)]
+        cond = ind.conditions if len(ind.conditions) <= 60 else ind.conditions[:59] + "…"
+        rows.append((ind.name, f"{ind.dff_single_spike:.3g}", secs(ind.half_rise_s), secs(ind.time_to_peak_s),
+                     secs(ind.half_decay_s), cond))
+    widths = [max(len(str(r[i])) for r in rows) for i in range(6)]
     for r in rows:
-        print("  ".join(str(c).ljust(w) for c, w in zip(r[:5], widths)) + "  " + r[5])
+        print("  ".join(str(c).ljust(w) for c, w in zip(r, widths)).rstrip())
+    print("\nsources:")
+    for ind in INDICATORS:
+        print(f"  {ind.name}: {ind.source}")
 
 
 def cmd_simulate(args):
@@ -548,6 +556,9 @@ def main(argv=None) -> int:
             raise
         print(f"calcium {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_DATA
+    except BrokenPipeError:  # output piped into `head` and the like
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print(f"calcium {args.command}: interrupted", file=sys.stderr)
         return 130

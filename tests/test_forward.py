@@ -1,0 +1,371 @@
+"""Tests of calcium.forward: exact forward model and the simulated recordings."""
+import inspect
+import json
+import math
+import warnings
+
+import numpy as np
+import pytest
+from scipy.integrate import quad
+from scipy.optimize import minimize_scalar
+
+from calcium.forward import (_linear_rows, _linear_rows_lfilter, _predict_direct, _run_recursions,
+                             predict_fluorescence, simulate_recording)
+from calcium.kernel import Kernel
+
+
+def analytic_double_exponential(delay, rise, decay, amplitude):
+    """Closed form of a normalised difference of exponentials (0 before the spike)."""
+    t_peak = math.log(decay / rise) * rise * decay / (decay - rise)  # handbook calculus
+    peak = math.exp(-t_peak / decay) - math.exp(-t_peak / rise)
+    d = np.maximum(delay, 0.0)
+    return np.where(delay >= 0, amplitude * (np.exp(-d / decay) - np.exp(-d / rise)) / peak, 0.0)
+
+
+def analytic_slow(delay, rise, decay, slow, fraction, amplitude):
+    """Weighted sum of two double exponentials, normalised by a numerically found peak (scipy)."""
+    def shape(t):
+        return (1 - fraction) * (np.exp(-t / decay) - np.exp(-t / rise)) + fraction * (np.exp(-t / slow)
+                                                                                     - np.exp(-t / rise))
+    peak = -minimize_scalar(lambda t: -shape(t), bounds=(0, 2 * decay), method="bounded",
+                            options={"xatol": 1e-13}).fun
+    d = np.maximum(delay, 0.0)
+    return np.where(delay >= 0, amplitude * shape(d) / peak, 0.0)
+
+
+# ------------------------------------------------------------ point samples
+@pytest.mark.parametrize("scan_offset_s", [0.0, 0.0123])
+def test_point_samples_of_a_sub_frame_spike_equal_the_analytic_expression(scan_offset_s):
+    frame_rate, n = 30.0, 120
+    kernel = Kernel(0.04, 0.35, 0.3)
+    frame_times = np.arange(n) / frame_rate + scan_offset_s
+    for spike in (0.0, 0.51234567, 1.0 / 3.0 + 1e-7, 2.9):
+        got = predict_fluorescence([spike], kernel, frame_rate, n, scan_offset_s=scan_offset_s)
+        expected = analytic_double_exponential(frame_times - spike, 0.04, 0.35, 0.3)
+        np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-12)
+
+
+def test_point_samples_with_instantaneous_rise_and_a_spike_on_a_frame_time():
+    frame_rate, n = 20.0, 60
+    kernel = Kernel(0.0, 0.5, 0.25)
+    spikes = [0.5, 0.77]  # the first falls exactly on frame 10
+    got = predict_fluorescence(spikes, kernel, frame_rate, n)
+    t = np.arange(n) / frame_rate
+    # closed form of a single exponential, counted from the spike on (right-continuous jump)
+    expected = sum(np.where(t >= s, 0.25 * np.exp(-(t - s) / 0.5), 0.0) for s in spikes)
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-15)
+    assert got[10] == pytest.approx(0.25, rel=1e-12)
+
+
+def test_point_samples_with_a_slow_component_equal_the_analytic_expression():
+    frame_rate, n = 15.0, 200
+    kernel = Kernel(0.03, 0.2, 0.4, slow_decay_s=1.8, slow_fraction=0.3)
+    spikes = np.array([0.111, 3.0071, 3.05, 7.77])
+    t = np.arange(n) / frame_rate
+    expected = sum(analytic_slow(t - s, 0.03, 0.2, 1.8, 0.3, 0.4) for s in spikes)
+    np.testing.assert_allclose(predict_fluorescence(spikes, kernel, frame_rate, n), expected, rtol=1e-9, atol=1e-12)
+
+
+def test_spikes_before_the_first_sample_time_still_count():
+    kernel = Kernel(0.02, 0.3)
+    got = predict_fluorescence([0.001], kernel, 10.0, 5, scan_offset_s=0.05)
+    expected = analytic_double_exponential(np.arange(5) / 10.0 + 0.05 - 0.001, 0.02, 0.3, 1.0)
+    np.testing.assert_allclose(got, expected, rtol=1e-9)
+
+
+# -------------------------------------------------------------- exposures
+@pytest.mark.parametrize("kernel", [Kernel(0.03, 0.4, 0.2), Kernel(0.0, 0.4, 0.2),
+                                    Kernel(0.01, 0.15, 0.5, slow_decay_s=1.0, slow_fraction=0.25)],
+                         ids=["double", "single", "slow"])
+def test_exposure_averages_equal_quad_of_the_kernel(kernel):
+    frame_rate, n, exposure, offset = 25.0, 40, 0.03, 0.002
+    frame_times = np.arange(n) / frame_rate + offset
+    # spikes: before a window, exactly inside windows (frames 5 and 17), between windows, and one in the
+    # last frame's window
+    spikes = np.array([0.01, frame_times[5] + 0.3 * exposure, frame_times[17] + 0.9 * exposure,
+                       frame_times[17] + 0.035, frame_times[-1] + 0.5 * exposure])
+    got = predict_fluorescence(spikes, kernel, frame_rate, n, scan_offset_s=offset, exposure_s=exposure)
+
+    def response(t):
+        return float(sum(kernel.evaluate(t - s) for s in spikes))
+
+    for k in range(n):
+        lo, hi = frame_times[k], frame_times[k] + exposure
+        inside = [s for s in spikes if lo < s < hi]
+        # Reference: scipy.integrate.quad of the summed kernel over the exposure window.
+        integral, _ = quad(response, lo, hi, points=inside or None, epsabs=1e-14, epsrel=1e-13, limit=200)
+        assert got[k] == pytest.approx(integral / exposure, rel=1e-9, abs=1e-13), k
+
+
+def test_exposure_of_one_full_frame_interval_is_allowed_and_longer_is_refused():
+    kernel = Kernel(0.03, 0.4)
+    predict_fluorescence([0.1], kernel, 10.0, 5, exposure_s=0.1)
+    with pytest.raises(ValueError, match="exposure_s"):
+        predict_fluorescence([0.1], kernel, 10.0, 5, exposure_s=0.11)
+
+
+# ---------------------------------------------------- superposition, order
+def test_response_to_a_train_is_the_sum_of_single_spike_responses():
+    rng = np.random.default_rng(3)
+    spikes = rng.uniform(0, 20, 40)
+    kernel = Kernel(0.05, 0.6, 0.2)
+    for exposure in (None, 0.02):
+        train = predict_fluorescence(spikes, kernel, 30.0, 600, exposure_s=exposure)
+        singles = sum(predict_fluorescence([s], kernel, 30.0, 600, exposure_s=exposure) for s in spikes)
+        np.testing.assert_allclose(train, singles, rtol=1e-12, atol=1e-14)
+
+
+def test_fast_recursion_matches_the_plain_sum_reference():
+    rng = np.random.default_rng(4)
+    spikes = np.concatenate([rng.uniform(0, 60, 150), [10.0, 10.0, 10.0]])  # repeated times add up
+    for kernel in (Kernel(0.02, 0.3, 0.2), Kernel(0.0, 1.0, 0.1),
+                   Kernel(0.02, 0.3, 0.2, slow_decay_s=2.0, slow_fraction=0.2, dff_max=1.5, hill_n=2.0,
+                          hill_k=2.5)):
+        fast = predict_fluorescence(spikes, kernel, 30.0, 1800, scan_offset_s=0.004)
+        plain = _predict_direct(spikes, kernel, 30.0, 1800, scan_offset_s=0.004)
+        np.testing.assert_allclose(fast, plain, rtol=1e-10, atol=1e-13)
+
+
+@pytest.mark.parametrize("exposure", [None, 0.025])
+def test_compiled_recursions_match_the_plain_python_and_lfilter_references(exposure):
+    rng = np.random.default_rng(6)
+    n_rows, n_frames, frame_rate = 3, 400, 30.0
+    kernel = Kernel(0.02, 0.3, 0.2, slow_decay_s=2.0, slow_fraction=0.2)
+    rows = np.repeat(np.arange(n_rows), [25, 0, 40])  # the middle row has no spikes
+    times = rng.uniform(0, n_frames / frame_rate, rows.size)
+    offsets = np.array([0.0, 0.01, 0.02])[rows]
+    args = (times, rows, n_rows, kernel, frame_rate, n_frames, offsets, exposure)
+    compiled = _linear_rows(*args)
+    plain = _linear_rows(*args, recursions=_run_recursions.py_func)  # the same loop, not compiled
+    vectorised = _linear_rows_lfilter(*args)  # bincount + scipy.signal.lfilter
+    np.testing.assert_allclose(compiled, plain, rtol=1e-13, atol=1e-16)
+    np.testing.assert_allclose(compiled, vectorised, rtol=1e-12, atol=1e-15)
+    assert np.all(compiled[1] == 0)
+
+
+def test_unsorted_spike_times_give_the_same_prediction():
+    rng = np.random.default_rng(5)
+    spikes = rng.uniform(0, 10, 30)
+    kernel = Kernel(0.05, 0.5)
+    np.testing.assert_array_equal(predict_fluorescence(spikes, kernel, 30.0, 300),
+                                  predict_fluorescence(np.sort(spikes), kernel, 30.0, 300))
+
+
+def test_saturation_is_applied_to_the_summed_linear_response():
+    linear = Kernel(0.05, 0.5, 0.3)
+    saturating = Kernel(0.05, 0.5, 0.3, dff_max=2.0, hill_n=2.4, hill_k=2.0)
+    burst = 0.5 + 0.005 * np.arange(60)
+    sat = predict_fluorescence(burst, saturating, 30.0, 150)
+    np.testing.assert_allclose(sat, saturating.saturate(predict_fluorescence(burst, linear, 30.0, 150)), rtol=1e-14)
+    assert sat.max() < 2.0 < predict_fluorescence(burst, linear, 30.0, 150).max()
+    np.testing.assert_allclose(saturating.unsaturate(sat), predict_fluorescence(burst, linear, 30.0, 150),
+                               rtol=1e-8, atol=1e-12)
+
+
+# --------------------------------------------------------------- bad input
+def test_spikes_after_the_end_are_ignored_with_a_count_in_a_warning():
+    kernel = Kernel(0.05, 0.5)
+    with pytest.warns(UserWarning, match="2 spike time"):
+        got = predict_fluorescence([1.0, 10.0, 12.0], kernel, 10.0, 100)  # recording ends at 10 s
+    np.testing.assert_array_equal(got, predict_fluorescence([1.0], kernel, 10.0, 100))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        predict_fluorescence([9.99], kernel, 10.0, 100)  # in the last frame interval: no warning
+
+
+@pytest.mark.parametrize("spikes, kwargs, name", [
+    ([-0.1], {}, "spike_times_s"),
+    ([np.nan], {}, "spike_times_s"),
+    ([np.inf], {}, "spike_times_s"),
+    ([[0.1, 0.2]], {}, "spike_times_s"),
+    (["a"], {}, "spike_times_s"),
+    ([0.1], {"n_frames": 0}, "n_frames"),
+    ([0.1], {"frame_rate": 0.0}, "frame_rate"),
+    ([0.1], {"frame_rate": -30.0}, "frame_rate"),
+    ([0.1], {"scan_offset_s": -0.01}, "scan_offset_s"),
+    ([0.1], {"exposure_s": 0.0}, "exposure_s"),
+    ([0.1], {"kernel": "GCaMP6s"}, "kernel"),
+])
+def test_bad_forward_arguments_raise_value_error_naming_them(spikes, kwargs, name):
+    args = {"kernel": Kernel(0.05, 0.5), "frame_rate": 30.0, "n_frames": 100}
+    args.update(kwargs)
+    with pytest.raises(ValueError, match=name):
+        predict_fluorescence(spikes, args.pop("kernel"), args.pop("frame_rate"), args.pop("n_frames"), **args)
+
+
+def test_no_spikes_give_a_flat_zero_trace():
+    np.testing.assert_array_equal(predict_fluorescence([], Kernel(0.05, 0.5), 30.0, 50), np.zeros(50))
+
+
+# ------------------------------------------------------------ simulation
+def test_simulated_recording_has_the_documented_fields_and_is_reproducible():
+    kwargs = dict(indicator="GCaMP6f", rate_hz=2.0, photons_per_frame=50.0, read_noise_sd=0.5,
+                  bleach_fraction=0.3, drift_sd=0.05, scan_offsets=np.linspace(0, 0.03, 5), seed=11)
+    a = simulate_recording(5, 30.0, 30.0, **kwargs)
+    b = simulate_recording(5, 30.0, 30.0, **kwargs)
+    for name in ("raw", "dff", "dff_clean", "f0"):
+        assert getattr(a, name).shape == (5, 900)
+        np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+    assert len(a.spike_times) == 5 and a.frame_rate == 30.0 and a.kernel == Kernel.from_indicator("GCaMP6f")
+    c = simulate_recording(5, 30.0, 30.0, **{**kwargs, "seed": 12})
+    assert not np.array_equal(a.raw, c.raw)
+    # spikes come from their own random stream: changing the noise leaves them unchanged
+    d = simulate_recording(5, 30.0, 30.0, **{**kwargs, "photons_per_frame": None, "noise_sd": 0.1})
+    for x, y in zip(a.spike_times, d.spike_times):
+        np.testing.assert_array_equal(x, y)
+    # ROI i does not depend on how many ROIs are simulated
+    e = simulate_recording(2, 30.0, 30.0, **{**kwargs, "scan_offsets": kwargs["scan_offsets"][:2]})
+    np.testing.assert_array_equal(e.raw, a.raw[:2])
+
+
+def test_params_record_every_argument_and_are_json_serialisable():
+    rec = simulate_recording(2, 5.0, 20.0, rate_hz=[1.0, 2.0], noise_sd=0.1, seed=1)
+    for name in inspect.signature(simulate_recording).parameters:
+        assert name in rec.params
+    assert rec.params["rate_hz"] == [1.0, 2.0] and rec.params["n_frames"] == 100
+    json.dumps(rec.params)
+
+
+def test_clean_dff_is_the_forward_model_of_the_returned_spikes():
+    offsets = np.array([0.0, 0.01, 0.02])
+    kernel = Kernel(0.03, 0.3, 0.2, dff_max=3.0, hill_n=2.0, hill_k=2.0)
+    rec = simulate_recording(3, 20.0, 30.0, kernel=kernel, rate_hz=3.0, scan_offsets=offsets, exposure_s=0.02,
+                             seed=5)
+    for roi in range(3):
+        expected = predict_fluorescence(rec.spike_times[roi], kernel, 30.0, 600, scan_offset_s=offsets[roi],
+                                        exposure_s=0.02)
+        np.testing.assert_allclose(rec.dff_clean[roi], expected, rtol=1e-12, atol=1e-15)
+
+
+def test_noise_free_recording_is_baseline_times_one_plus_dff_with_exact_bleaching():
+    rec = simulate_recording(2, 60.0, 10.0, rate_hz=1.0, f0=[50.0, 80.0], bleach_fraction=0.4, bleach_tau_s=20.0,
+                             seed=2)
+    t = np.arange(600) / 10.0
+    bleach = 0.6 + 0.4 * np.exp(-t / 20.0)  # documented bleaching curve
+    np.testing.assert_allclose(rec.f0, np.array([50.0, 80.0])[:, None] * bleach, rtol=1e-14)
+    np.testing.assert_allclose(rec.raw, rec.f0 * (1 + rec.dff_clean), rtol=1e-14)
+    np.testing.assert_allclose(rec.dff, rec.dff_clean, atol=1e-12)
+
+
+def test_shot_noise_variance_equals_its_mean():
+    photons, n_frames = 20.0, 100_000
+    rec = simulate_recording(2, n_frames / 100.0, 100.0, rate_hz=0.0, f0=[100.0, 7.0], photons_per_frame=photons,
+                             seed=8)
+    for roi, f0 in enumerate((100.0, 7.0)):
+        counts = rec.raw[roi] * photons / f0
+        np.testing.assert_allclose(counts, np.round(counts), atol=1e-9)  # whole photons
+        mean, var = counts.mean(), counts.var(ddof=1)
+        # Poisson: variance = mean.  Sampling s.d. of the sample variance is sqrt((mu4 - sigma^4) / n) with the
+        # Poisson central fourth moment mu4 = mu + 3 mu^2 (handbook), i.e. sqrt((mu + 2 mu^2) / n); allow 5 s.d.
+        tolerance = 5 * math.sqrt((photons + 2 * photons ** 2) / n_frames)
+        assert abs(var - mean) < tolerance + 5 * math.sqrt(photons / n_frames)
+        assert abs(mean - photons) < 5 * math.sqrt(photons / n_frames)
+
+
+def test_gaussian_dff_noise_has_the_requested_sd():
+    n_frames, sd = 40_000, 0.07
+    rec = simulate_recording(1, n_frames / 50.0, 50.0, rate_hz=0.5, noise_sd=sd, bleach_fraction=0.5, seed=9)
+    residual = rec.dff[0] - rec.dff_clean[0]
+    # Sampling s.d. of a Gaussian sample s.d. is sigma / sqrt(2 (n - 1)) (handbook); allow 5 s.d.
+    assert abs(residual.std(ddof=1) - sd) < 5 * sd / math.sqrt(2 * (n_frames - 1))
+
+
+def test_poisson_spike_counts_match_the_rate():
+    n_rois, duration, rate = 40, 200.0, 2.5
+    rec = simulate_recording(n_rois, duration, 10.0, rate_hz=rate, seed=13)
+    total = sum(t.size for t in rec.spike_times)
+    expected = n_rois * duration * rate
+    assert abs(total - expected) < 5 * math.sqrt(expected)  # Poisson: variance = mean
+    for train in rec.spike_times:
+        assert np.all(np.diff(train) >= 0) and train.min() >= 0 and train.max() < duration
+
+
+def test_renewal_intervals_respect_the_dead_time_and_have_gamma_moments():
+    rate, refractory, shape = 5.0, 0.05, 4.0
+    rec = simulate_recording(20, 300.0, 10.0, rate_hz=rate, spike_model="renewal", refractory_s=refractory,
+                             isi_shape=shape, seed=14)
+    intervals = np.concatenate([np.diff(t) for t in rec.spike_times])
+    assert intervals.min() >= refractory * (1 - 1e-9)
+    # Interval = dead time + Gamma(shape, mean 1/rate - dead time): mean 1/rate, s.d. (1/rate - dead time)/sqrt(shape)
+    # (gamma distribution moments, handbook).  ~30,000 intervals: 2 % tolerance is > 5 sampling s.d.
+    assert intervals.mean() == pytest.approx(1 / rate, rel=0.02)
+    assert intervals.std() == pytest.approx((1 / rate - refractory) / math.sqrt(shape), rel=0.02)
+
+
+def test_bursts_have_the_requested_intra_burst_interval_and_mean_rate():
+    rate, size, isi = 2.0, 4.0, 0.008
+    rec = simulate_recording(20, 300.0, 10.0, rate_hz=rate, spike_model="bursts", burst_size_mean=size,
+                             burst_isi_s=isi, seed=15)
+    intervals = np.concatenate([np.diff(t) for t in rec.spike_times])
+    at_isi = np.mean(np.abs(intervals - isi) < 1e-9)
+    assert at_isi > 0.7  # (size - 1) / size = 0.75 of intervals lie within bursts, minus a few overlaps
+    total = sum(t.size for t in rec.spike_times)
+    # compound Poisson: variance = burst rate x T x E[size^2], size = 1 + Poisson(size - 1)
+    bursts = 20 * 300.0 * rate / size
+    sd = math.sqrt(bursts * ((size - 1) + size ** 2))
+    assert abs(total - bursts * size) < 5 * sd
+
+
+def test_sinusoidal_rate_modulation_has_the_requested_depth():
+    rate, depth, period, duration, n_rois = 5.0, 0.8, 4.0, 2000.0, 6
+    rec = simulate_recording(n_rois, duration, 10.0, rate_hz=rate, rate_modulation="sinusoid",
+                             rate_modulation_depth=depth, rate_modulation_period_s=period, seed=16)
+    # Campbell's theorem: E[sum exp(2 pi i s / P)] = integral of rate(t) exp(2 pi i t / P) dt, of modulus
+    # rate depth T / 2 (whatever the phase); the component along it has variance N / 2 (N = expected count).
+    moduli = [abs(np.exp(2j * np.pi * train / period).sum()) for train in rec.spike_times]
+    n_expected = rate * duration
+    assert abs(np.mean(moduli) - rate * depth * duration / 2) < 5 * math.sqrt(n_expected / 2 / n_rois)
+
+
+def test_random_rate_modulation_keeps_the_mean_rate_and_overdisperses_counts():
+    rate = 4.0
+    flat = simulate_recording(10, 400.0, 10.0, rate_hz=rate, seed=17)
+    modulated = simulate_recording(10, 400.0, 10.0, rate_hz=rate, rate_modulation="random",
+                                   rate_modulation_depth=1.0, rate_modulation_period_s=5.0, seed=17)
+
+    def fano(rec):
+        counts = np.array([np.histogram(t, bins=np.arange(0, 401, 2.0))[0] for t in rec.spike_times])
+        return counts.var() / counts.mean()
+
+    assert fano(flat) == pytest.approx(1.0, abs=0.15)  # Poisson counts: Fano factor 1
+    assert fano(modulated) > 2.0
+    total = sum(t.size for t in modulated.spike_times)
+    assert total == pytest.approx(10 * 400.0 * rate, rel=0.15)  # log-normal rate with mean rate (loose: slow noise)
+
+
+@pytest.mark.parametrize("kwargs, name", [
+    ({"photons_per_frame": 10.0, "noise_sd": 0.1}, "photons_per_frame"),
+    ({"kernel": Kernel(0.05, 0.5), "indicator": "GCaMP6s"}, "kernel"),
+    ({"spike_model": "gamma"}, "spike_model"),
+    ({"spike_model": "renewal", "refractory_s": 0.5, "rate_hz": 3.0}, "refractory_s"),
+    ({"rate_hz": -1.0}, "rate_hz"),
+    ({"rate_hz": [1.0, 2.0, 3.0]}, "rate_hz"),
+    ({"bleach_fraction": 1.0}, "bleach_fraction"),
+    ({"rate_modulation": "square"}, "rate_modulation"),
+    ({"rate_modulation": "sinusoid", "rate_modulation_depth": 1.5}, "rate_modulation_depth"),
+    ({"spike_model": "bursts", "burst_size_mean": 0.5}, "burst_size_mean"),
+    ({"seed": -1}, "seed"),
+    ({"indicator": "GCaMP99"}, "GCaMP99"),
+])
+def test_bad_simulation_arguments_raise_value_error_naming_them(kwargs, name):
+    with pytest.raises(ValueError, match=name):
+        simulate_recording(2, 10.0, 10.0, **kwargs)
+
+
+def test_save_writes_traces_spikes_and_parameters(tmp_path):
+    from calcium.io import read_spike_times, read_traces
+
+    rec = simulate_recording(3, 10.0, 20.0, rate_hz=2.0, noise_sd=0.05, seed=21)
+    written = rec.save(tmp_path / "sim")
+    folder = tmp_path / "sim"
+    assert set(written) == {"raw", "dff", "dff_clean", "f0", "spikes", "parameters"}
+    assert all(path.is_file() and path.parent == folder for path in written.values())
+    raw = read_traces(folder / "raw.h5")
+    np.testing.assert_array_equal(raw.traces, rec.raw)
+    assert raw.frame_rate == 20.0
+    np.testing.assert_array_equal(read_traces(folder / "dff_clean.h5").traces, rec.dff_clean)
+    spikes = read_spike_times(folder / "spikes.csv")
+    for roi in range(3):
+        np.testing.assert_array_equal(spikes[roi], rec.spike_times[roi])
+    params = json.loads((folder / "parameters.json").read_text())
+    assert params["seed"] == 21 and params["n_frames"] == 200
