@@ -1,0 +1,16 @@
+"""Signal stages: baseline and ΔF/F, zero-phase filters and detrending, noise level."""
+from .baseline import DeltaF, delta_f_over_f
+from .filters import DetrendResult, FilterResult, ZeroPhaseFilter, design_filter, detrend, zero_phase_filter
+from .noise import estimate_noise
+
+__all__ = [
+    "DeltaF",
+    "delta_f_over_f",
+    "ZeroPhaseFilter",
+    "FilterResult",
+    "DetrendResult",
+    "design_filter",
+    "zero_phase_filter",
+    "detrend",
+    "estimate_noise",
+]

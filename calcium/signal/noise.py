@@ -1,0 +1,277 @@
+"""Noise level of a trace from the upper band of its power spectrum.
+
+Calcium transients are slow: at high frequencies the power spectrum of a
+fluorescence trace is flat, set by the white (shot and read-out) noise. The
+level of that flat part gives the noise standard deviation.
+"""
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+import scipy.signal
+import scipy.special
+import scipy.stats
+
+from .._checks import as_traces, check_choice, check_frame_rate, require_some_data
+from ._missing import finite_runs, row_chunks
+
+__all__ = ["estimate_noise", "MIN_FRAMES"]
+
+MIN_FRAMES = 16          # shortest trace (or finite stretch) with a usable spectrum
+_SEGMENT = 256           # Welch segment length (frames), shorter traces use their length
+AVERAGES = ("mean", "median", "logmeanexp")
+
+
+def _check_band(band_hz, frame_rate: float) -> tuple[float, float]:
+    nyquist = frame_rate / 2.0
+    if band_hz is None:
+        return frame_rate / 4.0, nyquist
+    try:
+        low, high = (float(b) for b in band_hz)
+    except (TypeError, ValueError):
+        raise ValueError(
+            f"band_hz must be None or a (low, high) pair of frequencies in Hz; got {band_hz!r}") from None
+    if not (0.0 <= low < high <= nyquist):
+        raise ValueError(f"band_hz must be (low, high) with 0 <= low < high <= {nyquist:g} Hz (the Nyquist "
+                         f"frequency frame_rate/2); got {band_hz!r}")
+    return low, high
+
+
+def _segments(n: int, nperseg: int) -> int:
+    """Number of Welch segments scipy uses (half-overlapping, trailing partial dropped)."""
+    step = nperseg - nperseg // 2
+    return (n - nperseg) // step + 1
+
+
+@functools.lru_cache(maxsize=256)
+def _welch_dof(n_segments: int, nperseg: int) -> float:
+    """Equivalent degrees of freedom of a Welch estimate (Hann window, half overlap).
+
+    Percival & Walden (1993), eq. 292b: ν = 2 N / (1 + 2 Σ_m (1 − m/N) ρ(m)²),
+    ρ(m) the overlap correlation of the normalised window at a shift of m
+    segments.
+    """
+    window = scipy.signal.get_window("hann", nperseg)
+    window = window / np.sqrt(np.sum(window ** 2))
+    step = nperseg - nperseg // 2
+    total = 0.0
+    for m in range(1, n_segments):
+        shift = m * step
+        if shift >= nperseg:
+            break
+        total += (1.0 - m / n_segments) * float(np.dot(window[:-shift], window[shift:])) ** 2
+    return 2.0 * n_segments / (1.0 + 2.0 * total)
+
+
+def _band_average(psd: np.ndarray, average: str, dof: np.ndarray) -> np.ndarray:
+    """Average PSD values over the band (last axis), corrected to estimate their mean."""
+    if average == "mean":
+        return psd.mean(axis=-1)
+    if average == "median":
+        # Each Welch value is ~ (mean level) · χ²_ν / ν; the median of χ²_ν / ν is below 1.
+        return np.median(psd, axis=-1) / (scipy.stats.chi2.median(dof) / dof)
+    # logmeanexp: exp(mean(log PSD)); E[log(χ²_ν / ν)] = ψ(ν/2) − log(ν/2).
+    with np.errstate(divide="ignore"):
+        log_mean = np.log(psd).mean(axis=-1)
+    return np.exp(log_mean - (scipy.special.digamma(dof / 2.0) - np.log(dof / 2.0)))
+
+
+def _band_bins(freq: np.ndarray, band: tuple[float, float], frame_rate: float, nperseg: int) -> np.ndarray:
+    nyquist = frame_rate / 2.0
+    # DC and Nyquist are left out: scipy does not double them in a one-sided
+    # density, so their expected level is half that of the other bins.
+    keep = (freq >= band[0]) & (freq <= band[1]) & (freq > 0) & (freq < nyquist)
+    if not keep.any():
+        raise ValueError(f"band_hz {band} holds no frequency of the spectrum (resolution "
+                         f"{frame_rate / nperseg:.4g} Hz with {nperseg}-frame segments, DC and Nyquist "
+                         f"excluded); widen the band")
+    return keep
+
+
+def _remove_segment_mean(keep: np.ndarray) -> bool:
+    # The DFT of a periodic Hann window is zero beyond bin 1, so a segment's mean reaches only
+    # bins 0 and 1: removing it is a wasted pass when the band starts above bin 1.
+    return bool(np.flatnonzero(keep)[0] < 2)
+
+
+def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, nperseg: int,
+                        keep: np.ndarray, average: str) -> np.ndarray:
+    """Band level per row from the Welch segments that hold no missing sample (NaN where none does).
+
+    The segments are those of :func:`scipy.signal.welch` (Hann window, half
+    overlap, same scaling); a segment touching a missing sample is dropped
+    from the average.
+    """
+    n = block.shape[-1]
+    step = nperseg - nperseg // 2
+    n_seg = _segments(n, nperseg)
+    starts = np.arange(n_seg) * step
+    holes_before = np.zeros((hole.shape[0], n + 1), np.int64)
+    np.cumsum(hole, axis=-1, out=holes_before[:, 1:])
+    usable = (holes_before[:, starts + nperseg] - holes_before[:, starts]) == 0   # (rows, segments)
+    n_ok = usable.sum(axis=-1)
+    # Only the usable segments are copied and transformed; they hold no missing sample.
+    seg_row, seg_index = np.nonzero(usable)
+    segments = np.lib.stride_tricks.sliding_window_view(block, nperseg, axis=-1)[seg_row, starts[seg_index]]
+    if _remove_segment_mean(keep):
+        segments = segments - segments.mean(axis=-1, keepdims=True)
+    window = scipy.signal.get_window("hann", nperseg)
+    spectrum = np.fft.rfft(segments * window, axis=-1)[:, keep]
+    power = spectrum.real ** 2 + spectrum.imag ** 2                              # (usable segments, bins)
+    psd = np.zeros((block.shape[0], power.shape[1]))
+    has = n_ok > 0
+    if has.any():
+        first = np.concatenate([[0], np.cumsum(n_ok[has])[:-1]])
+        psd[has] = np.add.reduceat(power, first, axis=0)
+    # One-sided density, as scipy.signal.welch: 2 |X|^2 / (fs * sum(window^2)) away from DC and Nyquist.
+    psd *= 2.0 / (frame_rate * np.sum(window ** 2)) / np.maximum(n_ok, 1)[:, None]
+    dof = np.array([_welch_dof(int(k), nperseg) if k else 2.0 for k in n_ok])
+    level = _band_average(psd, average, dof)
+    level[n_ok == 0] = np.nan
+    return level
+
+
+def _noise_with_gaps(row: np.ndarray, frame_rate: float, band, average: str, roi: str) -> float:
+    """Welch spectrum over the finite stretches of one trace, with segments as long as they allow.
+
+    For traces whose gaps leave no whole 256-frame segment.
+    """
+    starts, stops = finite_runs(np.isfinite(row))
+    lengths = stops - starts
+    longest = int(lengths.max())
+    if longest < MIN_FRAMES:
+        raise ValueError(f"{roi} has no stretch of at least {MIN_FRAMES} consecutive finite frames "
+                         f"(longest {longest}); estimate_noise needs one")
+    nperseg = min(_SEGMENT, longest)
+    total = None
+    count = 0
+    dof = 0.0
+    for start, stop in zip(starts, stops):
+        if stop - start < nperseg:
+            continue
+        freq, psd = scipy.signal.welch(row[start:stop], frame_rate, nperseg=nperseg)
+        k = _segments(stop - start, nperseg)
+        total = psd * k if total is None else total + psd * k
+        count += k
+        dof += _welch_dof(k, nperseg)
+    keep = _band_bins(freq, band, frame_rate, nperseg)
+    level = _band_average((total / count)[keep], average, np.asarray(dof))
+    return float(level)
+
+
+def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
+    """Standard deviation of the white-noise part of trace(s), from the power spectrum.
+
+    Parameters
+    ----------
+    trace : array_like, shape (frames,) or (rois, frames)
+        Time is the last axis. NaN or inf mark missing samples.
+    frame_rate : float
+        Frames per second (Hz).
+    band_hz : (float, float), optional
+        Frequency band (Hz) where the spectrum is taken to be flat noise;
+        default ``(frame_rate / 4, frame_rate / 2)``.
+    average : {'mean', 'median', 'logmeanexp'}, optional
+        How the power spectral density is averaged over the band: the
+        arithmetic mean, the median, or exp(mean(log PSD)) (geometric mean).
+        'median' and 'logmeanexp' resist narrow peaks in the band; both are
+        corrected for their bias (see Notes).
+
+    Returns
+    -------
+    float or ndarray
+        The noise standard deviation in the units of ``trace``: a float for
+        a 1-D trace, an array of shape (rois,) for 2-D input.
+
+    Raises
+    ------
+    ValueError
+        For bad arguments, a trace shorter than 16 frames, or a band that
+        holds no frequency of the spectrum.
+    calcium._checks.MissingDataError
+        If a ROI has no finite sample.
+
+    Notes
+    -----
+    The power spectral density is estimated with Welch's method
+    (:func:`scipy.signal.welch`: Hann window, 256-frame segments or the
+    trace length if shorter, half overlap, segment means removed,
+    one-sided density). For white noise of variance σ² the one-sided density
+    is flat at 2σ²/fs, so
+
+        σ² = (average PSD over the band) · fs / 2.
+
+    DC and the Nyquist bin are never used (their one-sided density is not
+    doubled). Each Welch value is distributed approximately as
+    (mean level)·χ²_ν/ν, with ν the equivalent degrees of freedom of the
+    Welch average (Percival & Walden 1993, eq. 292b). The 'median' is
+    divided by median(χ²_ν)/ν, and 'logmeanexp' by exp(ψ(ν/2) − log(ν/2)),
+    the bias of the mean of a log χ²_ν/ν variable, so that all three
+    averages estimate the same level.
+
+    Missing samples are neither filled nor dropped and joined (joining
+    would put steps into the trace): the spectrum is the Welch average over
+    the segments that hold no missing sample. If gaps leave no such segment,
+    the trace is cut into its finite stretches and the longest stretch (at
+    least 16 frames) sets a shorter segment length. The degrees of freedom
+    ν then assume the kept segments are consecutive, which slightly
+    understates ν where segments were dropped.
+
+    Any signal power in the band (fast transients, coloured noise) adds to
+    the estimate; choose ``band_hz`` above the frequencies of the signal.
+
+    References
+    ----------
+    Pnevmatikakis EA, Soudry D, Gao Y, Machado TA, Merel J, Pfau D,
+    Reardon T, Mu Y, Lacefield C, Yang W, Ahrens M, Bruno R, Jessell TM,
+    Peterka DS, Yuste R, Paninski L (2016), "Simultaneous denoising,
+    deconvolution, and demixing of calcium imaging data", Neuron
+    89(2):285–299 (noise level from the upper half of the power spectrum).
+    Welch PD (1967), "The use of fast Fourier transform for the estimation
+    of power spectra", IEEE Transactions on Audio and Electroacoustics
+    15(2):70–73.
+    Percival DB, Walden AT (1993), Spectral Analysis for Physical
+    Applications, Cambridge University Press.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from calcium.signal import estimate_noise
+    >>> noise = np.random.default_rng(0).normal(scale=2.0, size=20000)
+    >>> round(estimate_noise(noise, 30.0), 1)
+    2.0
+    """
+    frame_rate = check_frame_rate(frame_rate)
+    check_choice(average, "average", AVERAGES)
+    band = _check_band(band_hz, frame_rate)
+    x = as_traces(trace, "trace")
+    n = x.shape[-1]
+    if n < MIN_FRAMES:
+        raise ValueError(f"trace has {n} frame(s); estimate_noise needs at least {MIN_FRAMES}")
+    missing = require_some_data(x, "trace")
+
+    rows = x.reshape(-1, n)
+    holes = missing.mask.reshape(-1, n)
+    sd = np.empty(rows.shape[0])
+    nperseg = min(_SEGMENT, n)
+    keep = _band_bins(np.fft.rfftfreq(nperseg, 1.0 / frame_rate), band, frame_rate, nperseg)
+    clean = np.flatnonzero(missing.per_roi == 0)
+    if clean.size:
+        dof = np.asarray(_welch_dof(_segments(n, nperseg), nperseg))
+        segment_mean = "constant" if _remove_segment_mean(keep) else False
+        # A few ROIs at a time keeps Welch's segment copies in the cache.
+        for part in row_chunks(clean.size, n, elements=1 << 20):
+            idx = clean[part]
+            block = rows[idx] if clean.size < rows.shape[0] else rows[part]
+            psd = scipy.signal.welch(block, frame_rate, nperseg=nperseg, detrend=segment_mean, axis=-1)[1]
+            sd[idx] = _band_average(psd[:, keep], average, dof)
+    gappy = np.flatnonzero(missing.per_roi)
+    for part in row_chunks(gappy.size, 2 * n, elements=1 << 20):
+        idx = gappy[part]
+        sd[idx] = _masked_welch_level(rows[idx], holes[idx], frame_rate, nperseg, keep, average)
+    for i in gappy[np.isnan(sd[gappy])]:
+        roi = "the trace" if x.ndim == 1 else f"ROI {i}"
+        sd[i] = _noise_with_gaps(rows[i], frame_rate, band, average, roi)
+    sd = np.sqrt(sd * frame_rate / 2.0)
+    return float(sd[0]) if x.ndim == 1 else sd
