@@ -1,7 +1,10 @@
 """calcium: from calcium-imaging fluorescence to spikes.
 
-The public API is re-exported here; see the README for a tour.
+The public API is re-exported here. Names are loaded on first use (PEP 562), so
+``import calcium`` and the command line start quickly and the heavier
+dependencies (cvxpy, numba, h5py) are imported only by the stages that need them.
 """
+from importlib import import_module
 from importlib.metadata import PackageNotFoundError, version as _version
 
 try:
@@ -9,4 +12,37 @@ try:
 except PackageNotFoundError:  # running from a source tree that is not installed
     __version__ = "0.0.0+unknown"
 
-__all__ = ["__version__"]
+_EXPORTS = {
+    "calcium._checks": ["CalciumInputError", "MissingDataError", "MissingFrames"],
+    "calcium.io": ["TraceData", "read_traces", "write_traces", "read_spike_times", "write_spike_table", "Movie",
+                   "open_movie", "read_masks", "write_hdf5", "read_hdf5"],
+    "calcium.extract": ["Extraction", "extract_traces", "estimate_neuropil_factor", "neuropil_rings"],
+    "calcium.signal": ["DeltaF", "delta_f_over_f", "ZeroPhaseFilter", "FilterResult", "DetrendResult",
+                       "design_filter", "zero_phase_filter", "detrend", "estimate_noise"],
+    "calcium.kernel": ["Kernel", "time_constants_from_half_times"],
+    "calcium.indicators": ["INDICATORS", "IndicatorKinetics", "get_indicator", "indicator_names"],
+    "calcium.forward": ["predict_fluorescence", "simulate_recording", "SimulatedRecording"],
+    "calcium.infer": ["deconvolve_ar", "ARDeconvolution", "deconvolve_convex", "ConvexDeconvolution",
+                      "estimate_ar_coefficients", "infer_spikes", "infer_spikes_many", "SpikeInference"],
+    "calcium.fit": ["fit_kernel", "KernelFit", "check_kinetics", "KineticsCheck"],
+    "calcium.score": ["score_spikes", "score_many", "SpikeScore", "ScoreTable", "match_spikes",
+                      "van_rossum_distance"],
+    "calcium.plan": ["plan_detectability", "DetectabilityPlan"],
+    "calcium.pipeline": ["run_pipeline", "write_config_template", "load_config", "infer_file"],
+}
+_WHERE = {name: module for module, names in _EXPORTS.items() for name in names}
+
+__all__ = ["__version__", *_WHERE]
+
+
+def __getattr__(name):
+    module = _WHERE.get(name)
+    if module is None:
+        raise AttributeError(f"module 'calcium' has no attribute {name!r}")
+    value = getattr(import_module(module), name)
+    globals()[name] = value  # later look-ups skip this function
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_WHERE))

@@ -544,6 +544,12 @@ def main(argv=None) -> int:
     if not getattr(args, "command", None):
         parser.print_help()
         return EXIT_USAGE
+    import warnings
+
+    def show_warning(message, category, filename, lineno, file=None, line=None):
+        print(f"calcium {args.command}: warning: {message}", file=sys.stderr)
+
+    warnings.showwarning = show_warning
     try:
         args.func(args)
     except CommandError as exc:

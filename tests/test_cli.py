@@ -1,0 +1,160 @@
+"""The command-line front-end: exit codes, one-line errors naming the file, outputs that agree with the API.
+
+The CLI holds no science, so these tests compare its files with the Python API called directly.
+"""
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+import calcium
+from calcium.cli import build_parser, main
+from calcium.io import read_hdf5, read_spike_times, read_traces, write_spike_table, write_traces
+
+COMMANDS = ["demo", "extract", "dff", "filter", "noise", "indicators", "simulate", "predict", "infer",
+            "fit-kernel", "score", "plan", "init", "run"]
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_every_command_has_help(command, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main([command, "--help"])
+    assert exc.value.code == 0
+    assert "usage: calcium " + command in capsys.readouterr().out
+
+
+def test_no_command_is_a_usage_error(capsys):
+    assert main([]) == 2
+
+
+def test_unknown_option_exits_with_usage_code():
+    with pytest.raises(SystemExit) as exc:
+        main(["dff", "x.npy", "--no-such-option"])
+    assert exc.value.code == 2
+
+
+def test_every_command_is_wired():
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.dest == "command")
+    assert sorted(sub.choices) == sorted(COMMANDS)
+
+
+def _run(*args):
+    """Run the installed console entry point as a user would (separate process)."""
+    return subprocess.run([sys.executable, "-m", "calcium", *map(str, args)], capture_output=True, text=True)
+
+
+def test_missing_file_gives_one_line_naming_it_and_exit_1(tmp_path):
+    missing = tmp_path / "no_such_traces.npy"
+    proc = _run("dff", missing, "--frame-rate", 30, "--out", tmp_path / "out.npy")
+    assert proc.returncode == 1
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "no_such_traces.npy" in lines[0]
+    assert "Traceback" not in proc.stderr
+
+
+def test_corrupt_file_is_a_data_error_without_traceback(tmp_path):
+    bad = tmp_path / "broken.npy"
+    bad.write_bytes(b"\x93NUMPY this is not really an array")
+    proc = _run("noise", bad, "--frame-rate", 30)
+    assert proc.returncode == 1
+    assert "broken.npy" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_debug_shows_the_traceback(tmp_path):
+    proc = _run("noise", tmp_path / "absent.csv", "--frame-rate", 30, "--debug")
+    assert proc.returncode != 0 and "Traceback" in proc.stderr
+
+
+def _trace_file(tmp_path, n_rois=3, n_frames=900, frame_rate=30.0):
+    rng = np.random.default_rng(7)
+    t = np.arange(n_frames) / frame_rate
+    raw = 100.0 * (1 + 0.2 * np.exp(-t / 20.0)) + rng.normal(0, 1.0, (n_rois, n_frames))
+    path = tmp_path / "raw.h5"
+    write_traces(path, raw, frame_rate=frame_rate)
+    return path, raw
+
+
+def test_dff_command_equals_the_python_api(tmp_path):
+    path, raw = _trace_file(tmp_path)
+    out = tmp_path / "dff.h5"
+    assert main(["dff", str(path), "--window-s", "10", "--out", str(out), "--quiet"]) == 0
+    datasets, attrs = read_hdf5(out)
+    expected = calcium.delta_f_over_f(raw, 30.0, window_s=10.0)
+    np.testing.assert_array_equal(datasets["dff"], expected.dff)
+    np.testing.assert_array_equal(datasets["f0"], expected.f0)
+    assert attrs["frame_rate"] == 30.0
+
+
+def test_existing_output_is_not_overwritten(tmp_path, capsys):
+    path, _ = _trace_file(tmp_path)
+    out = tmp_path / "dff.npy"
+    out.write_bytes(b"keep me")
+    assert main(["dff", str(path), "--out", str(out), "--quiet"]) == 1
+    assert out.read_bytes() == b"keep me"
+    assert "--overwrite" in capsys.readouterr().err
+
+
+def test_output_over_the_input_is_refused(tmp_path):
+    path, _ = _trace_file(tmp_path)
+    before = path.read_bytes()
+    assert main(["dff", str(path), "--out", str(path), "--overwrite", "--quiet"]) == 1
+    assert path.read_bytes() == before
+
+
+def test_frame_rate_disagreeing_with_the_file_is_an_error(tmp_path, capsys):
+    path, _ = _trace_file(tmp_path)
+    assert main(["noise", str(path), "--frame-rate", "20"]) == 1
+    assert "30" in capsys.readouterr().err
+
+
+def test_filter_command_equals_scipy_zero_phase_filter(tmp_path):
+    # reference: scipy.signal.sosfiltfilt on the same Butterworth sections
+    from scipy import signal
+    path, raw = _trace_file(tmp_path)
+    out = tmp_path / "low.npy"
+    png = tmp_path / "response.png"
+    assert main(["filter", str(path), "--kind", "lowpass", "--cutoff-hz", "3", "--out", str(out),
+                 "--plot", str(png), "--quiet"]) == 0
+    sos = signal.butter(4, 3.0, btype="lowpass", fs=30.0, output="sos")
+    np.testing.assert_allclose(np.load(out), signal.sosfiltfilt(sos, raw, axis=-1), atol=1e-9)
+    assert png.stat().st_size > 1000
+
+
+def test_noise_command_prints_one_row_per_roi(tmp_path, capsys):
+    path, raw = _trace_file(tmp_path)
+    assert main(["noise", str(path)]) == 0
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert lines[0] == "roi,noise_sd" and len(lines) == 1 + raw.shape[0]
+    # white noise of s.d. 1.0 was added (common practice: the PSD estimate is within a few per cent)
+    assert all(abs(float(line.split(",")[1]) - 1.0) < 0.1 for line in lines[1:])
+
+
+def test_indicators_lists_every_row_with_its_source(capsys):
+    assert main(["indicators"]) == 0
+    out = capsys.readouterr().out
+    for row in calcium.INDICATORS:
+        assert row.name in out and row.source in out
+
+
+def test_predict_command_equals_the_forward_model(tmp_path):
+    spikes = tmp_path / "spikes.csv"
+    write_spike_table(spikes, {0: np.array([0.5, 1.25, 1.3]), 2: np.array([2.0])})
+    out = tmp_path / "pred.h5"
+    assert main(["predict", str(spikes), "--indicator", "GCaMP6f", "--frame-rate", "30", "--duration-s", "4",
+                 "--out", str(out), "--quiet"]) == 0
+    traces = read_traces(out).traces
+    kernel = calcium.Kernel.from_indicator("GCaMP6f")
+    np.testing.assert_array_equal(traces[0], calcium.predict_fluorescence([0.5, 1.25, 1.3], kernel, 30.0, 120))
+    np.testing.assert_array_equal(traces[1], calcium.predict_fluorescence([2.0], kernel, 30.0, 120))
+
+
+def test_simulate_command_writes_files_the_readers_take(tmp_path):
+    out = tmp_path / "sim"
+    assert main(["simulate", "--out", str(out), "--rois", "3", "--duration-s", "5", "--frame-rate", "20",
+                 "--noise-sd", "0.05", "--quiet"]) == 0
+    raw = read_traces(out / "raw.h5")
+    assert raw.traces.shape == (3, 100) and raw.frame_rate == 20.0
+    assert set(read_spike_times(out / "spikes.csv")) <= {0, 1, 2}
+    assert main(["simulate", "--out", str(out), "--quiet"]) == 1  # non-empty folder is not written over
