@@ -189,6 +189,10 @@ def atomic_output(path, *, inputs=()):
     tmp = Path(tmp_name)
     try:
         yield tmp
+        # mkstemp makes the file private (0600); give the result the usual permissions (umask applies)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):

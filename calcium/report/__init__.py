@@ -1,0 +1,44 @@
+"""Figures (matplotlib, Agg) and a static HTML report.
+
+:mod:`calcium.report.figures` draws one picture per function from plain
+arrays and returns a :class:`matplotlib.figure.Figure`; :func:`save_figure`
+writes it as a PNG. :class:`HtmlReport` gathers sections, text, figures and
+sortable tables into a self-contained folder (``index.html`` + ``figures/``).
+"""
+from .figures import (
+    PALETTE,
+    distribution_figure,
+    figure_png_bytes,
+    filter_figure,
+    filter_response_figure,
+    kernel_figure,
+    kernel_fit_figure,
+    noise_figure,
+    plan_figure,
+    planner_figure,
+    prediction_figure,
+    raster_figure,
+    save_figure,
+    score_figure,
+    stages_figure,
+)
+from .html import HtmlReport
+
+__all__ = [
+    "PALETTE",
+    "HtmlReport",
+    "distribution_figure",
+    "figure_png_bytes",
+    "filter_figure",
+    "filter_response_figure",
+    "kernel_figure",
+    "kernel_fit_figure",
+    "noise_figure",
+    "plan_figure",
+    "planner_figure",
+    "prediction_figure",
+    "raster_figure",
+    "save_figure",
+    "score_figure",
+    "stages_figure",
+]
