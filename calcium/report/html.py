@@ -61,6 +61,8 @@ section.part { margin: 0 0 2.2rem; }
 section.part > h2 { font-size: 1.25rem; color: var(--ink); border-bottom: 1px solid var(--line);
   padding-bottom: 0.25rem; margin: 1.6rem 0 0.8rem; }
 p { margin: 0.5rem 0 0.8rem; max-width: 75ch; }
+pre { margin: 0.5rem 0 1rem; padding: 0.6rem 0.8rem; overflow-x: auto; background: var(--band);
+  border: 1px solid var(--line); border-radius: 4px; font-size: 0.82rem; line-height: 1.4; }
 figure.plot { margin: 1rem 0 1.6rem; }
 figure.plot img { display: block; max-width: 100%; height: auto; border: 1px solid var(--line);
   border-radius: 4px; background: #fff; }
@@ -266,10 +268,18 @@ class HtmlReport:
         self._sections.append(_Section(heading, _slug(heading, self._slugs)))
         self.add_text(text)
 
-    def add_text(self, text) -> None:
-        """Add paragraphs of plain text (blank lines separate paragraphs; no markup is interpreted)."""
+    def add_text(self, text, *, preformatted=False) -> None:
+        """Add paragraphs of plain text (blank lines separate paragraphs; no markup is interpreted).
+
+        With ``preformatted=True`` the text keeps its line breaks and spacing (a
+        fixed-width block), for tables and summaries printed as text.
+        """
         text = _text(text, "text")
-        if text.strip():
+        if not text.strip():
+            return
+        if preformatted:
+            self._current().parts.append(f"<pre>{html.escape(text.rstrip())}</pre>\n")
+        else:
             self._current().parts.append(_paragraphs(text))
 
     def add_figure(self, path_or_fig, *, caption, name=None, alt=None, dpi=100) -> str:
