@@ -300,9 +300,30 @@ def cmd_infer(args):
     _say(args, str(summary))
 
 
+def _fit_rows(fit) -> tuple[list, list]:
+    """Header and rows of a kernel-fit table: each quantity with its interval (blank when not bootstrapped)."""
+    k, c = fit.kernel, fit.confidence
+    values = {"rise_s": k.rise_s, "decay_s": k.decay_s, "amplitude": k.amplitude, "lag_s": fit.lag_s,
+              "half_rise_s": k.half_rise_s, "half_decay_s": k.half_decay_s}
+    rows = [[name, value, *(getattr(c, name) if c is not None else ("", ""))] for name, value in values.items()]
+    rows += [["baseline", fit.baseline, "", ""], ["residual_sd", fit.residual_sd, "", ""],
+             ["r_squared", fit.r_squared, "", ""], ["n_spikes", fit.n_spikes, "", ""],
+             ["n_isolated", fit.n_isolated, "", ""]]
+    return ["quantity", "value", "low", "high"], rows
+
+
+def _output_folder(args, *names, inputs=()) -> list[Path]:
+    """Paths of the named files in --out (created), each checked against inputs and --overwrite."""
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise CommandError(f"{out}: is a file; --out takes a folder")
+    out.mkdir(parents=True, exist_ok=True)
+    return [_check_new_output(out / name, overwrite=args.overwrite, inputs=inputs) for name in names]
+
+
 def cmd_fit_kernel(args):
     from calcium.fit import check_kinetics, fit_kernel
-    from calcium.io import read_spike_times
+    from calcium.io import read_spike_times, write_csv
     data = _read_traces(args.trace, args.dataset)
     rate = _frame_rate(args, data)
     try:
@@ -310,76 +331,78 @@ def cmd_fit_kernel(args):
     except (ValueError, OSError) as exc:
         raise _fail(args.spikes, exc) from exc
     roi = args.roi
-    if roi >= data.traces.shape[0]:
+    if not 0 <= roi < data.traces.shape[0]:
         raise CommandError(f"{args.trace}: has {data.traces.shape[0]} ROI(s); --roi {roi} is out of range")
-    times = spikes.get(args.spike_roi if args.spike_roi is not None else roi, spikes.get(0))
+    spike_roi = args.spike_roi if args.spike_roi is not None else roi
+    times = spikes.get(spike_roi)
     if times is None or len(times) == 0:
-        raise CommandError(f"{args.spikes}: no spike times for ROI {roi}")
+        raise CommandError(f"{args.spikes}: no spike times for ROI {spike_roi} (ROIs in the file: "
+                           f"{', '.join(map(str, sorted(spikes))) or 'none'})")
+    if args.out:  # check before the (slow) fit
+        table, figure = _output_folder(args, "kernel_fit.csv", "kernel_fit.png", inputs=(args.trace, args.spikes))
     try:
         fit = fit_kernel(data.traces[roi], times, rate, model=args.model, initial=args.indicator,
-                         n_bootstrap=args.bootstrap, seed=args.seed)
+                         max_lag_s=args.max_lag_s, n_bootstrap=args.bootstrap, seed=args.seed)
     except ValueError as exc:
         raise _fail(args.trace, exc) from exc
     print(fit)
+    check = None
     if args.indicator:
-        print(check_kinetics(fit, args.indicator))
+        check = check_kinetics(fit, args.indicator, temperature_c=args.temperature_c)
+        print(check)
     if args.out:
-        out = Path(args.out)
-        out.mkdir(parents=True, exist_ok=True)
-        from calcium.io import write_csv
-        table = out / "kernel_fit.csv"
-        _check_new_output(table, overwrite=args.overwrite, inputs=(args.trace, args.spikes))
-        write_csv(table, ["quantity", "value", "low", "high"], fit.table_rows())
+        from calcium.kernel import Kernel
         from calcium.report.figures import kernel_fit_figure, save_figure
-        save_figure(kernel_fit_figure(fit, data.traces[roi], times, rate), out / "kernel_fit.png")
-        _say(args, f"table and figure -> {out}")
+        write_csv(table, *_fit_rows(fit))
+        reference = Kernel.from_indicator(args.indicator) if args.indicator else None
+        save_figure(kernel_fit_figure(fit, reference=reference,
+                                      reference_label=f"published {args.indicator}" if reference else ""), figure)
+        _say(args, f"table -> {table}\nfigure -> {figure}")
 
 
 def cmd_score(args):
     from calcium.io import read_spike_times, write_csv
     from calcium.score import score_many
-    try:
-        inferred = read_spike_times(args.inferred)
-    except (ValueError, OSError) as exc:
-        raise _fail(args.inferred, exc) from exc
-    try:
-        true = read_spike_times(args.true)
-    except (ValueError, OSError) as exc:
-        raise _fail(args.true, exc) from exc
-    table = score_many(inferred, true, tolerance_s=args.tolerance_s)
+    trains = []
+    for path in (args.inferred, args.true):
+        try:
+            trains.append(read_spike_times(path))
+        except (ValueError, OSError) as exc:
+            raise _fail(path, exc) from exc
+    if args.out:
+        csv_path, png_path = _output_folder(args, "scores.csv", "scores.png", inputs=(args.inferred, args.true))
+    table = score_many(*trains, tolerance_s=args.tolerance_s, bin_widths_s=tuple(args.bin_widths_s))
     print(table)
     if args.out:
-        out = Path(args.out)
-        out.mkdir(parents=True, exist_ok=True)
-        csv_path = _check_new_output(out / "scores.csv", overwrite=args.overwrite,
-                                     inputs=(args.inferred, args.true))
-        header, rows = table.as_rows()
-        write_csv(csv_path, header, rows)
         from calcium.report.figures import save_figure, score_figure
-        save_figure(score_figure(table), out / "scores.png")
-        _say(args, f"table and figure -> {out}")
+        write_csv(csv_path, table.header(), table.rows())
+        s = table.scores
+        save_figure(score_figure([x.precision for x in s], [x.recall for x in s], [x.f1 for x in s],
+                                 bin_widths_s=list(args.bin_widths_s),
+                                 correlation=[[r for _, r in x.correlations] for x in s],
+                                 labels=[f"ROI {r}" for r in table.rois], tolerance_s=args.tolerance_s), png_path)
+        _say(args, f"table -> {csv_path}\nfigure -> {png_path}")
 
 
 def cmd_plan(args):
     from calcium.plan import plan_detectability
     kernel = _kernel_from_args(args, required=False)
-    if kernel is None and not args.indicator:
-        raise CommandError("give --indicator NAME or --rise-s/--decay-s/--amplitude")
-    plan = plan_detectability(kernel=kernel, indicator=None if kernel else args.indicator,
+    if args.noise_sd and args.photons:
+        raise CommandError("give either --noise-sd or --photons, not both")
+    if args.out:
+        csv_path, png_path = _output_folder(args, "plan.csv", "plan.png")
+    plan = plan_detectability(kernel=kernel, indicator=None if kernel is not None else (args.indicator or None),
                               frame_rates=tuple(args.frame_rates),
                               noise_sd=tuple(args.noise_sd) if args.noise_sd else None,
                               photons_per_frame=tuple(args.photons) if args.photons else None,
                               n_trials=args.trials, false_positive_rate=args.false_positive_rate, seed=args.seed)
     print(plan)
     if args.out:
-        out = Path(args.out)
-        out.mkdir(parents=True, exist_ok=True)
         from calcium.io import write_csv
-        from calcium.report.figures import planner_figure, save_figure
-        header, rows = plan.as_rows()
-        write_csv(_check_new_output(out / "plan.csv", overwrite=args.overwrite), header, rows)
-        save_figure(planner_figure(plan), out / "plan.png")
-        _say(args, f"table and figure -> {out}")
+        from calcium.report.figures import plan_figure, save_figure
+        write_csv(csv_path, plan.header(), plan.rows())
+        save_figure(plan_figure(plan), png_path)
+        _say(args, f"table -> {csv_path}\nfigure -> {png_path}")
 
 
 def cmd_init(args):
@@ -505,6 +528,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--indicator", help="indicator to start from and to check against")
     p.add_argument("--model", choices=["double-exponential", "free"], default="double-exponential")
     p.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples for the intervals")
+    p.add_argument("--max-lag-s", type=float, default=1.0, help="largest clock offset searched, in seconds")
+    p.add_argument("--temperature-c", type=float, help="recording temperature, for the kinetics check")
     p.add_argument("--seed", type=int, default=0)
     output(p, required=False, help_text="folder for the table and figure")
 
@@ -512,11 +537,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("inferred", help="inferred spike CSV")
     p.add_argument("true", help="true spike CSV")
     p.add_argument("--tolerance-s", type=float, default=0.1, help="matching tolerance in seconds")
+    p.add_argument("--bin-widths-s", type=float, nargs="+", default=[0.1, 0.2, 0.5, 1.0],
+                   help="bin widths for the count correlations")
     output(p, required=False, help_text="folder for the table and figure")
 
     p = add("plan", cmd_plan, "will single spikes be detectable? sweep frame rate and noise by simulation")
-    _add_kernel_options(p)
-    p.add_argument("--frame-rates", type=float, nargs="+", default=[15.0, 30.0, 60.0])
+    _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
+    p.add_argument("--frame-rates", type=float, nargs="+", default=[7.5, 15.0, 30.0, 60.0])
     p.add_argument("--noise-sd", type=float, nargs="+", help="ΔF/F noise s.d. levels")
     p.add_argument("--photons", type=float, nargs="+", help="photons per frame at baseline (instead of noise)")
     p.add_argument("--trials", type=int, default=200)

@@ -158,3 +158,46 @@ def test_simulate_command_writes_files_the_readers_take(tmp_path):
     assert raw.traces.shape == (3, 100) and raw.frame_rate == 20.0
     assert set(read_spike_times(out / "spikes.csv")) <= {0, 1, 2}
     assert main(["simulate", "--out", str(out), "--quiet"]) == 1  # non-empty folder is not written over
+
+
+def test_score_command_writes_the_table_of_score_many(tmp_path):
+    # hand-worked: ROI 0 has 3 true spikes, 2 inferred within 0.1 s and one 0.5 s away -> precision 2/3,
+    # recall 2/3; ROI 1 identical trains -> F1 = 1
+    inferred, true = tmp_path / "inferred.csv", tmp_path / "true.csv"
+    write_spike_table(inferred, {0: np.array([1.02, 2.0, 3.5]), 1: np.array([0.5, 0.9])})
+    write_spike_table(true, {0: np.array([1.0, 2.05, 3.0]), 1: np.array([0.5, 0.9])})
+    assert main(["score", str(inferred), str(true), "--tolerance-s", "0.1", "--out", str(tmp_path / "s"),
+                 "--quiet"]) == 0
+    lines = (tmp_path / "s" / "scores.csv").read_text().splitlines()
+    row0 = dict(zip(lines[0].split(","), lines[1].split(",")))
+    row1 = dict(zip(lines[0].split(","), lines[2].split(",")))
+    assert float(row0["precision"]) == pytest.approx(2 / 3) and float(row0["recall"]) == pytest.approx(2 / 3)
+    assert float(row1["f1"]) == 1.0
+    assert (tmp_path / "s" / "scores.png").stat().st_size > 1000
+
+
+def test_fit_kernel_command_recovers_the_simulated_kinetics(tmp_path, capsys):
+    # forward-model data with a known kernel: the fitted decay must be within 10 % (issue check, as fit_kernel's)
+    kernel = calcium.Kernel(rise_s=0.05, decay_s=0.6, amplitude=0.25)
+    sim = calcium.simulate_recording(1, 90.0, 30.0, kernel=kernel, rate_hz=0.4, noise_sd=0.05, seed=3)
+    trace, spikes = tmp_path / "dff.h5", tmp_path / "spikes.csv"
+    write_traces(trace, sim.dff, frame_rate=30.0)
+    write_spike_table(spikes, {0: sim.spike_times[0]})
+    assert main(["fit-kernel", str(trace), str(spikes), "--bootstrap", "0", "--out", str(tmp_path / "fit"),
+                 "--quiet"]) == 0
+    rows = {line.split(",")[0]: line.split(",")[1] for line in
+            (tmp_path / "fit" / "kernel_fit.csv").read_text().splitlines()[1:]}
+    assert float(rows["decay_s"]) == pytest.approx(0.6, rel=0.1)
+
+
+def test_fit_kernel_command_names_a_roi_without_spikes(tmp_path, capsys):
+    trace, spikes = tmp_path / "dff.npy", tmp_path / "spikes.csv"
+    np.save(trace, np.zeros((2, 300)))
+    write_spike_table(spikes, {0: np.array([1.0, 2.0])})
+    assert main(["fit-kernel", str(trace), str(spikes), "--frame-rate", "30", "--roi", "1"]) == 1
+    assert "no spike times for ROI 1" in capsys.readouterr().err
+
+
+def test_plan_command_refuses_two_noise_specifications(capsys):
+    assert main(["plan", "--noise-sd", "0.1", "--photons", "100"]) == 1
+    assert "either --noise-sd or --photons" in capsys.readouterr().err
