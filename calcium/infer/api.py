@@ -1,0 +1,454 @@
+r"""Spike inference from a ΔF/F trace: :func:`infer_spikes`.
+
+The steps (each documented in its own module):
+
+1. missing frames (NaN/inf) get weight 0 and are reported;
+2. a saturating kernel's nonlinearity is inverted (:meth:`Kernel.unsaturate`);
+3. the noise level, the AR coefficients of the calcium dynamics and the
+   penalty are taken from the arguments or estimated
+   (:mod:`calcium.infer.estimate`);
+4. the exact non-negative deconvolution (:mod:`calcium.infer.ar`; kernels
+   with a slow component go through :func:`calcium.infer.convex.deconvolve_convex`);
+5. the activity is refitted without penalty on its support, converted to
+   spikes with the size of one spike and placed at sub-frame times
+   (:mod:`calcium.infer.counts`).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .._checks import MissingFrames, as_traces, check_frame_rate, check_int, check_positive, require_some_data
+from .ar import _check_baseline, _check_penalty, _objective, _prepare_weights, _solve
+from .counts import SpikeUnit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
+    quantal_size, spike_unit
+from .estimate import _search_penalty, estimate_ar_coefficients, estimate_noise_sd, signal_detected
+
+__all__ = ["SpikeInference", "infer_spikes", "infer_spikes_many"]
+
+# Smallest size of a counted event in standard deviations of its size estimate.
+_MIN_EVENT_Z = 2.5
+
+
+@dataclass(frozen=True)
+class SpikeInference:
+    """Result of :func:`infer_spikes`.
+
+    Attributes
+    ----------
+    activity : ndarray of float, shape (T,)
+        Inferred number of spikes per frame (deconvolved activity divided by
+        the size of one spike, refitted without penalty, shifted by the
+        kernel's lag so that frame k holds the spikes near time k /
+        frame_rate).
+    spike_times : ndarray of float
+        Spike times in seconds from the first frame, one entry per spike (a
+        frame with two spikes gives two entries), sorted.
+    spike_counts : ndarray of int, shape (T,)
+        Spikes per frame (spike times rounded to the nearest frame).
+    denoised : ndarray of float, shape (T,)
+        The fitted ΔF/F (baseline plus calcium, saturated again for a
+        saturating kernel); defined at missing frames too.
+    baseline : float
+        Fitted or given baseline (in the linear, unsaturated domain).
+    noise_sd : float
+        Noise standard deviation used (given or estimated).
+    kernel : Kernel or None
+        The single-spike kernel used (given, from the indicator table, or
+        estimated; its amplitude is the ΔF/F of one spike).  None when it
+        could not be estimated (a trace without any signal).
+    penalty : float
+        The penalty of the deconvolution.
+    converged : bool
+        The deconvolution's optimality conditions were verified.
+    objective : float
+        Objective of the penalised deconvolution at its solution.
+    iterations : int
+        Passes/solves of the deconvolution, penalty search included.
+    missing : MissingFrames
+        The missing frames of the input.
+    coefficients : ndarray
+        AR coefficients of the deconvolution (empty for the convex path).
+    spike_size : float
+        Activity units (calcium jump) per spike, used to count spikes;
+        0 when unknown.
+    """
+
+    activity: np.ndarray
+    spike_times: np.ndarray
+    spike_counts: np.ndarray
+    denoised: np.ndarray
+    baseline: float
+    noise_sd: float
+    kernel: object
+    penalty: float
+    converged: bool
+    objective: float
+    iterations: int
+    missing: MissingFrames
+    coefficients: np.ndarray
+    spike_size: float
+
+    @property
+    def n_spikes(self) -> int:
+        """Total number of inferred spikes."""
+        return int(self.spike_times.size)
+
+
+def _resolve_kernel(kernel, indicator, spike_size):
+    from ..kernel import Kernel
+
+    if kernel is not None and indicator is not None:
+        raise ValueError("give at most one of kernel and indicator")
+    if kernel is not None and not isinstance(kernel, Kernel):
+        raise ValueError(f"kernel must be a calcium.kernel.Kernel, got {type(kernel).__name__}")
+    if indicator is not None:
+        kernel = Kernel.from_indicator(indicator)
+    if kernel is not None and spike_size is not None:
+        kernel = kernel.scaled(spike_size)
+    return kernel
+
+
+def _shift(activity: np.ndarray, lag: int) -> np.ndarray:
+    if lag <= 0:
+        return activity
+    out = np.zeros_like(activity)
+    out[:-lag] = activity[lag:]
+    return out
+
+
+def _nothing_found(y, frame_rate, missing, kernel, noise_sd, baseline_value, coefficients):
+    T = y.size
+    return SpikeInference(activity=np.zeros(T), spike_times=np.zeros(0), spike_counts=np.zeros(T, np.int64),
+                          denoised=np.full(T, baseline_value), baseline=float(baseline_value),
+                          noise_sd=float(noise_sd), kernel=kernel, penalty=0.0, converged=True, objective=0.0,
+                          iterations=0, missing=missing, coefficients=np.asarray(coefficients, dtype=np.float64),
+                          spike_size=0.0)
+
+
+def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=None, penalty=None, baseline="fit",
+                 spike_size=None, order=2, threshold=0.5) -> SpikeInference:
+    r"""Infer when and how many spikes occurred from one ΔF/F trace.
+
+    Parameters
+    ----------
+    trace : array_like, shape (T,)
+        ΔF/F, T >= 3; NaN/inf frames are missing (ignored and reported).
+    frame_rate : float
+        Hz.
+    kernel : Kernel, optional
+        Single-spike response.  A kernel with a slow decay component is
+        deconvolved by the general convex solver (slower).
+    indicator : str, optional
+        Name of a tabulated indicator (see :mod:`calcium.indicators`); its
+        kernel is used.  Give at most one of ``kernel`` and ``indicator``.
+        With neither, the kinetics are estimated from the trace (AR model of
+        ``order``) and the size of one spike from the event sizes.
+    noise_sd : float, optional
+        Noise s.d. of the trace (ΔF/F units); estimated from its spectrum
+        when not given (needs >= 16 frames).
+    penalty : float, optional
+        Sparsity penalty; by default chosen so that the residual matches the
+        noise.
+    baseline : float or "fit", default "fit"
+    spike_size : float, optional
+        ΔF/F (peak) of one spike; overrides the kernel's amplitude, and the
+        estimate from event sizes.
+    order : {1, 2}, default 2
+        AR order of estimated kinetics (no kernel given).
+    threshold : float, default 0.5
+        Events smaller than this many spikes are dropped; larger ones are
+        rounded to the nearest whole number.
+
+    Returns
+    -------
+    SpikeInference
+
+    Raises
+    ------
+    ValueError
+        For bad arguments, a trace that is not 1-D, shorter than 3 frames or
+        all missing, or a bad frame rate.
+
+    Notes
+    -----
+    The deconvolution is the non-negative sparse model of Vogelstein et al.
+    (2010), solved exactly by the active-set pool-adjacent-violators method
+    of Friedrich, Zhou & Paninski (2017) (see
+    :func:`calcium.infer.ar.deconvolve_ar`).  Spike counts come from the
+    events refitted without penalty (the L1 penalty shrinks them), divided
+    by the activity of one spike and rounded; an event must also exceed 2.5
+    standard deviations of its own size estimate.  The spikes of an event
+    (activity in nearby frames, merged) sit at the quantiles of its
+    activity, shifted by the kernel's mean lag (:func:`counts.spike_unit`).
+
+    References
+    ----------
+    .. [1] Vogelstein, J. T. et al. (2010). J. Neurophysiol. 104, 3691-3704.
+    .. [2] Friedrich, J., Zhou, P. & Paninski, L. (2017). PLoS Comput. Biol.
+       13(3), e1005423.
+    .. [3] Pnevmatikakis, E. A. et al. (2016). Neuron 89, 285-299.
+
+    Examples
+    --------
+    >>> from calcium.forward import simulate_recording
+    >>> rec = simulate_recording(1, 60.0, 30.0, indicator="GCaMP6s", rate_hz=0.5, noise_sd=0.04, seed=2)
+    >>> result = infer_spikes(rec.dff[0], 30.0, indicator="GCaMP6s")
+    >>> abs(result.n_spikes - rec.spike_times[0].size) <= 3
+    True
+    """
+    y = as_traces(trace, "trace")
+    if y.ndim != 1:
+        raise ValueError(f"trace must be one trace of shape (frames,), got shape {y.shape}; "
+                         "use infer_spikes_many for (rois, frames)")
+    frame_rate = check_frame_rate(frame_rate)
+    if y.size < 3:
+        raise ValueError(f"trace must have at least 3 frames, got {y.size}")
+    missing = require_some_data(y, "trace")
+    kernel = _resolve_kernel(kernel, indicator, None if spike_size is None else check_positive(spike_size,
+                                                                                                "spike_size"))
+    if penalty is not None:
+        penalty = _check_penalty(penalty)
+    baseline = _check_baseline(baseline)
+    order = check_int(order, "order", minimum=1, maximum=2)
+    threshold = check_positive(threshold, "threshold")
+    observed = y[~missing.mask]
+    if noise_sd is not None:
+        noise_sd = check_positive(noise_sd, "noise_sd")
+
+    # a constant trace: nothing to infer (and no spectrum to read the noise from)
+    if np.ptp(observed) == 0.0:
+        level = float(observed[0]) if not isinstance(baseline, float) else baseline
+        return _nothing_found(y, frame_rate, missing, kernel, noise_sd or 0.0, level,
+                              kernel.ar_coefficients(frame_rate) if kernel is not None and
+                              not kernel.has_slow_component else np.zeros(0))
+
+    # work in the kernel's linear domain
+    y_lin = y
+    frame_weights = None
+    if kernel is not None and not kernel.is_linear:
+        y_lin = np.where(missing.mask, np.nan, kernel.unsaturate(np.where(missing.mask, 0.0, y), clip=True))
+        # the noise grows where the indicator saturates: sigma / saturate'(x) in the linear domain, so weight
+        # each frame by saturate'(x)^2 (1 at rest, where the saturation's slope is 1)
+        slope = _saturation_slope(kernel, np.where(missing.mask, 0.0, y_lin))
+        frame_weights = np.where(missing.mask, 0.0, slope ** 2)
+    if noise_sd is None:
+        noise_sd = estimate_noise_sd(y_lin, frame_rate)
+        if not noise_sd > 0:
+            level = float(np.median(observed)) if isinstance(baseline, str) else baseline
+            return _nothing_found(y, frame_rate, missing, kernel, 0.0, level, np.zeros(0))
+
+    if kernel is not None and kernel.has_slow_component:
+        return _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold)
+
+    yc, w, unit_w, n_obs = _prepare_weights(y_lin, frame_weights)
+    if kernel is not None:
+        g = kernel.ar_coefficients(frame_rate)
+    else:
+        if not signal_detected(y_lin, noise_sd):
+            # nothing but noise: no kinetics to estimate and no spike to find
+            level = float(np.mean(observed)) if isinstance(baseline, str) else baseline
+            return _nothing_found(y, frame_rate, missing, None, noise_sd, level, np.zeros(0))
+        g = estimate_ar_coefficients(y_lin, frame_rate, order=order, noise_sd=noise_sd)
+    g1 = float(g[0])
+    g2 = float(g[1]) if g.size > 1 else 0.0
+
+    # penalised deconvolution
+    if penalty is None:
+        lam, c, s, b, its, conv, _, _, _ = _search_penalty(yc, w, unit_w, g, noise_sd, baseline, n_obs)
+    else:
+        lam = penalty
+        c, s, b, its, conv = _solve(yc, w, unit_w, g, lam, baseline, 0.0)
+    objective = float(_objective(yc, w, unit_w, g1, g2, lam, b, c, s))
+
+    # refit without penalty on the support (undo the shrinkage)
+    support = s > 0
+    if support.any():
+        c_fit, s_fit, b_fit, its_fit, _ = _solve(yc, w, unit_w, g, 0.0, baseline, 0.0, b0=b, support=support,
+                                                 allowed=support)
+        its += its_fit
+    else:
+        c_fit, s_fit, b_fit = c, s, b
+
+    # size of one spike
+    from ..kernel import Kernel
+
+    if kernel is None:
+        shape = Kernel.from_ar_coefficients(g, frame_rate, amplitude=1.0)
+        per_amplitude = spike_unit(shape, frame_rate, g)
+        if spike_size is not None:
+            kernel = shape.scaled(spike_size)
+            unit = SpikeUnit(per_amplitude.size * spike_size, per_amplitude.lag_frames, per_amplitude.spread)
+        else:
+            sizes = event_sizes(s_fit, merge_gap=merge_gap_frames(shape, frame_rate))
+            noise_size = event_noise_size(g, noise_sd, yc.size)
+            q = quantal_size(sizes, min_size=3.0 * noise_size)
+            if q is None:
+                denoised = _denoised(kernel, b_fit, c_fit)
+                res = _nothing_found(y, frame_rate, missing, None, noise_sd, b_fit, g)
+                return _replace(res, denoised=denoised, penalty=lam, converged=conv, objective=objective,
+                                iterations=its)
+            amplitude = q / per_amplitude.size
+            kernel = shape.scaled(amplitude)
+            unit = SpikeUnit(q, per_amplitude.lag_frames, per_amplitude.spread)
+    else:
+        unit = spike_unit(kernel, frame_rate, g)
+
+    activity = s_fit / unit.size
+    # an event must also stand out of the noise of its own size (z >= 2.5)
+    size_noise = event_noise_size(g, noise_sd, yc.size) / unit.size
+    spike_times, spike_counts = events_to_spikes(activity, frame_rate, lag_frames=unit.lag_frames,
+                                                 threshold=max(threshold, _MIN_EVENT_Z * size_noise),
+                                                 merge_gap=merge_gap_frames(kernel, frame_rate))
+    lag = int(round(unit.lag_frames))
+    return SpikeInference(activity=_shift(activity, lag), spike_times=spike_times, spike_counts=spike_counts,
+                          denoised=_denoised(kernel, b_fit, c_fit), baseline=float(b_fit), noise_sd=float(noise_sd),
+                          kernel=kernel, penalty=float(lam), converged=bool(conv), objective=objective,
+                          iterations=int(its), missing=missing, coefficients=np.asarray(g, dtype=np.float64),
+                          spike_size=float(unit.size))
+
+
+def _saturation_slope(kernel, linear):
+    """d saturate / d x at the linear ΔF/F values (central difference)."""
+    step = 1e-6 * max(kernel.amplitude, 1e-12)
+    low = kernel.saturate_domain_min
+    lo = np.maximum(linear - step, low * (1 - 1e-9))
+    hi = np.maximum(linear + step, lo + step)
+    return (kernel.saturate(hi) - kernel.saturate(lo)) / (hi - lo)
+
+
+def _replace(result: SpikeInference, **changes) -> SpikeInference:
+    import dataclasses
+
+    return dataclasses.replace(result, **changes)
+
+
+def _denoised(kernel, b, c):
+    linear = b + c
+    if kernel is None or kernel.is_linear:
+        return linear
+    low = kernel.saturate_domain_min
+    return kernel.saturate(np.maximum(linear, low * (1 - 1e-9)))
+
+
+def _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold):
+    """Kernels with a slow component: the general convex solver (AR(3) and beyond)."""
+    from .convex import deconvolve_convex
+
+    res = deconvolve_convex(y_lin, kernel, frame_rate=frame_rate, penalty=penalty,
+                            noise_sd=None if penalty is not None else noise_sd, baseline=baseline)
+    s = res.spikes
+    # spikes below a rounding level of the interior-point solver are zeros of the exact solution
+    support = s > 1e-7 * max(float(s.max()), 1e-300)
+    fit = _convex_refit(y_lin, kernel, frame_rate, baseline, support) if support.any() else res
+    # the convolution uses the kernel's own samples (amplitude included): activity is close to spikes
+    unit = _convex_unit(kernel, frame_rate)
+    activity = fit.spikes / unit.size
+    times, counts = events_to_spikes(activity, frame_rate, lag_frames=unit.lag_frames, threshold=threshold,
+                                     merge_gap=merge_gap_frames(kernel, frame_rate))
+    return SpikeInference(activity=_shift(activity, int(round(unit.lag_frames))), spike_times=times,
+                          spike_counts=counts, denoised=_denoised(kernel, fit.baseline, fit.calcium),
+                          baseline=float(fit.baseline), noise_sd=float(noise_sd), kernel=kernel,
+                          penalty=float(res.penalty), converged=bool(res.converged), objective=float(res.objective),
+                          iterations=1, missing=missing, coefficients=np.zeros(0), spike_size=float(unit.size))
+
+
+def _convex_refit(y, kernel, frame_rate, baseline, support):
+    import cvxpy as cp
+
+    from .convex import ConvexDeconvolution, kernel_operator
+
+    yc, w, unit_w, _ = _prepare_weights(np.asarray(y, dtype=np.float64), None)
+    T = yc.size
+    w = np.ones(T) if unit_w else w
+    cols = np.flatnonzero(support)
+    form = kernel_operator(kernel, T, frame_rate)
+    h = np.zeros(T)
+    if form[0] == "matrix":
+        h = np.asarray(form[1][:, 0].todense()).ravel()
+    else:
+        from scipy.signal import lfilter
+
+        impulse = np.zeros(T)
+        impulse[0] = 1.0
+        h = lfilter(form[2], form[1], impulse)
+    K = np.zeros((T, cols.size))
+    for j, t in enumerate(cols):
+        K[t:, j] = h[:T - t]
+    u = cp.Variable(cols.size, nonneg=True)
+    b = cp.Variable() if baseline == "fit" else float(baseline)
+    problem = cp.Problem(cp.Minimize(0.5 * cp.sum_squares(cp.multiply(np.sqrt(w), yc - b - K @ u))))
+    problem.solve(solver=cp.CLARABEL)
+    spikes = np.zeros(T)
+    spikes[cols] = np.maximum(np.asarray(u.value), 0.0)
+    calcium = K @ spikes[cols]
+    b_val = float(b.value) if baseline == "fit" else float(baseline)
+    return ConvexDeconvolution(calcium=calcium, spikes=spikes, baseline=b_val, penalty=0.0,
+                               objective=float(problem.value), status=str(problem.status),
+                               converged=problem.status == "optimal", noise_constrained=False)
+
+
+def _convex_unit(kernel, frame_rate) -> SpikeUnit:
+    """Activity of one spike when the kernel itself is the convolution (no AR filter): its sampled peak."""
+    # With c = K s and K the kernel's own samples, a spike at sub-frame position d shows as activity split
+    # over the frames around it; its total is close to 1 spike per unit amplitude of the sampled kernel.
+    J = 2
+    frames = np.arange(J + 6)
+    sizes, lags = [], []
+    h = kernel.impulse_response(frame_rate, J + 6)
+    for d in (np.arange(32) + 0.5) / 32:
+        spike = J - d
+        x = kernel.evaluate((frames - spike) / frame_rate)
+        # least-squares split of x onto two frame-locked kernels at J and J + 1
+        A = np.zeros((frames.size, 2))
+        A[J:, 0] = h[:frames.size - J]
+        A[J + 1:, 1] = h[:frames.size - J - 1]
+        coef, *_ = np.linalg.lstsq(A, x, rcond=None)
+        total = float(coef.sum())
+        sizes.append(total)
+        lags.append(float((J * coef[0] + (J + 1) * coef[1]) / total) - spike)
+    sizes = np.array(sizes)
+    return SpikeUnit(float(sizes.mean()), float(np.mean(lags)), float(sizes.std() / sizes.mean()))
+
+
+def infer_spikes_many(traces, frame_rate, *, progress=False, **options) -> list:
+    """:func:`infer_spikes` for each row of ``traces`` (rois, frames).
+
+    Parameters
+    ----------
+    traces : array_like, shape (rois, frames) or (frames,)
+    frame_rate : float
+    progress : bool, default False
+        Show a progress bar (tqdm).
+    **options
+        Keyword arguments of :func:`infer_spikes`; ``noise_sd``,
+        ``penalty`` and ``spike_size`` may also be one value per ROI.
+
+    Returns
+    -------
+    list of SpikeInference
+    """
+    x = as_traces(traces, "traces")
+    frame_rate = check_frame_rate(frame_rate)
+    rows = x.reshape(-1, x.shape[-1])
+    per_roi = {}
+    for key in ("noise_sd", "penalty", "spike_size"):
+        value = options.get(key)
+        if value is not None and np.ndim(value) == 1:
+            value = np.asarray(value, dtype=np.float64)
+            if value.size != rows.shape[0]:
+                raise ValueError(f"{key} must be one value or one per ROI ({rows.shape[0]}), got {value.size}")
+            per_roi[key] = value
+    iterator = range(rows.shape[0])
+    if progress:
+        from tqdm import tqdm
+
+        iterator = tqdm(iterator, desc="inferring spikes", unit="ROI")
+    results = []
+    for i in iterator:
+        kw = dict(options)
+        for key, value in per_roi.items():
+            kw[key] = float(value[i])
+        results.append(infer_spikes(rows[i], frame_rate, **kw))
+    return results
