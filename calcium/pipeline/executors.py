@@ -1,0 +1,355 @@
+"""Where the work of a run is done: one process, this machine's cores, or a dask cluster.
+
+Every executor has the same small interface::
+
+    with make_executor("processes", workers=4) as executor:
+        for chunk_id, result in executor.map_chunks(fn, chunks, progress="ΔF/F + inference"):
+            ...   # results arrive as they finish, in any order
+
+``chunks`` is an iterable of ``(chunk_id, payload)`` pairs and ``fn(payload)``
+is computed for each. Payloads should be small descriptions of the work (which
+rows of which file), not the data: each worker reads its own rows, so the
+memory of a run is bounded by the chunks in flight, not by the recording.
+Only a few chunks per worker are in flight at a time; the next is submitted
+when one finishes. ``fn`` must be a module-level function (it is sent to other
+processes by reference).
+
+Worker processes start from a fresh interpreter (``forkserver`` on Linux,
+``spawn`` elsewhere), never by forking the parent, which holds the open
+results file and threads. As with any such pool, a script that starts
+workers must keep its top-level code under ``if __name__ == "__main__":``.
+"""
+from __future__ import annotations
+
+import concurrent.futures as cf
+import itertools
+import logging
+import multiprocessing
+import os
+import signal
+import sys
+import threading
+import time
+from collections.abc import Callable, Iterable, Iterator
+
+from .._checks import check_choice, check_int
+
+__all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "ExecutorError",
+           "make_executor", "progress_bar", "BACKENDS"]
+
+BACKENDS = ("serial", "processes", "dask")
+# Chunks in flight per worker: one running, one queued so the worker never waits
+# for the parent; more would only hold finished results in memory.
+_IN_FLIGHT_PER_WORKER = 2
+
+
+class ExecutorError(RuntimeError):
+    """The executor itself failed (a worker process died, the cluster cannot be reached)."""
+
+
+def progress_bar(progress, *, total=None, unit="chunk"):
+    """A tqdm bar for ``progress`` (True or a label), or None when ``progress`` is falsy."""
+    if not progress:
+        return None
+    from tqdm.auto import tqdm
+
+    label = progress if isinstance(progress, str) else None
+    return tqdm(total=total, desc=label, unit=unit, dynamic_ncols=True, file=sys.stderr)
+
+
+class _Progress:
+    """Reports finished chunks: to a callback (``progress(chunk_id)``) or to a bar of its own."""
+
+    def __init__(self, progress, chunks):
+        self.callback = progress if callable(progress) else None
+        total = len(chunks) if hasattr(chunks, "__len__") else None
+        self.bar = None if self.callback else progress_bar(progress, total=total)
+
+    def done(self, chunk_id):
+        if self.callback is not None:
+            self.callback(chunk_id)
+        elif self.bar is not None:
+            self.bar.update(1)
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.close()
+
+
+class Executor:
+    """Interface of the executors: ``map_chunks`` and context management.
+
+    Attributes
+    ----------
+    name : str
+        "serial", "processes" or "dask".
+    workers : int
+        Number of workers computing at once.
+    """
+
+    name = "base"
+    workers = 1
+
+    def map_chunks(self, fn: Callable, chunks: Iterable, *, progress=None) -> Iterator[tuple]:
+        """Compute ``fn(payload)`` for every ``(chunk_id, payload)``; yield ``(chunk_id, result)`` as they finish.
+
+        Parameters
+        ----------
+        fn : callable
+            Module-level function of one argument.
+        chunks : iterable of (chunk_id, payload)
+            The work. Consumed lazily: only a few chunks per worker are
+            submitted ahead of the results.
+        progress : bool, str or callable, optional
+            False/None: silent. True or a label: a tqdm bar (one step per
+            chunk, with rate and ETA). A callable: called with each
+            finished chunk_id (the caller keeps its own bar).
+
+        Yields
+        ------
+        (chunk_id, result)
+            In order of completion. An exception raised by ``fn`` is raised
+            here; the chunks still running are cancelled.
+        """
+        raise NotImplementedError
+
+    def close(self) -> None:
+        """Release workers (idempotent)."""
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    def __repr__(self):
+        return f"{type(self).__name__}(workers={self.workers})"
+
+
+class SerialExecutor(Executor):
+    """Everything in the calling process, one chunk after the other (the reference)."""
+
+    name = "serial"
+    workers = 1
+
+    def map_chunks(self, fn, chunks, *, progress=None):
+        reporter = _Progress(progress, chunks)
+        try:
+            for chunk_id, payload in chunks:
+                result = fn(payload)
+                reporter.done(chunk_id)
+                yield chunk_id, result
+        finally:
+            reporter.close()
+
+
+def _parent_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else (the pid was reused): treat as gone
+        return False
+    return True
+
+
+def _watch_parent(pid: int, interval_s: float) -> None:  # pragma: no cover - runs in the worker processes
+    while _parent_alive(pid):
+        time.sleep(interval_s)
+    os._exit(1)
+
+
+def _start_worker(parent_pid: int) -> None:  # pragma: no cover - runs in the worker processes
+    # Ctrl-C goes to the whole process group; only the parent handles it (it
+    # cancels the queue and leaves a resumable file), the workers carry on
+    # with their current chunk and are then shut down.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # A parent killed outright (SIGKILL, out of memory) cannot shut the pool
+    # down, and a worker waiting for work would wait forever: leave when the
+    # parent is gone.
+    threading.Thread(target=_watch_parent, args=(parent_pid, 1.0), daemon=True).start()
+
+
+def _process_context():
+    """forkserver where available: no fork of a parent that holds threads or open HDF5 files."""
+    if sys.platform.startswith("linux") and "forkserver" in multiprocessing.get_all_start_methods():
+        context = multiprocessing.get_context("forkserver")
+        # The server imports the stages and the science modules once; every worker forked from it
+        # starts with them imported.
+        context.set_forkserver_preload(["calcium.pipeline.stages", "calcium.signal", "calcium.infer"])
+        return context
+    return multiprocessing.get_context("spawn")
+
+
+class ProcessExecutor(Executor):
+    """A pool of worker processes on this machine (:class:`concurrent.futures.ProcessPoolExecutor`).
+
+    Parameters
+    ----------
+    workers : int, optional
+        Number of processes; default (None or 0) one per core (:func:`os.cpu_count`).
+    """
+
+    name = "processes"
+
+    def __init__(self, workers: int | None = None):
+        workers = check_int(workers, "workers", minimum=0) if workers is not None else 0
+        self.workers = workers or os.cpu_count() or 1
+        self._pool = None
+
+    def _get_pool(self):
+        if self._pool is None:
+            self._pool = cf.ProcessPoolExecutor(max_workers=self.workers, mp_context=_process_context(),
+                                                initializer=_start_worker, initargs=(os.getpid(),))
+        return self._pool
+
+    def map_chunks(self, fn, chunks, *, progress=None):
+        pool = self._get_pool()
+        reporter = _Progress(progress, chunks)
+        source = iter(chunks)
+        pending: dict = {}
+        limit = _IN_FLIGHT_PER_WORKER * self.workers
+
+        def top_up():
+            for chunk_id, payload in itertools.islice(source, max(0, limit - len(pending))):
+                pending[pool.submit(fn, payload)] = chunk_id
+
+        clean = False
+        try:
+            top_up()
+            while pending:
+                finished, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+                for future in finished:
+                    chunk_id = pending.pop(future)
+                    try:
+                        result = future.result()
+                    except cf.process.BrokenProcessPool as exc:
+                        raise ExecutorError(
+                            "a worker process died unexpectedly: killed, or out of memory (try a smaller "
+                            "execution.chunk_rois or fewer workers), or it could not start (a script that "
+                            "starts workers needs an `if __name__ == \"__main__\":` guard and cannot be read "
+                            f"from standard input): {exc}") from exc
+                    top_up()
+                    reporter.done(chunk_id)
+                    yield chunk_id, result
+            clean = True
+        finally:
+            reporter.close()
+            if not clean:
+                for future in pending:
+                    future.cancel()
+                self._shutdown(wait=False)
+
+    def _shutdown(self, *, wait: bool):
+        if self._pool is not None:
+            self._pool.shutdown(wait=wait, cancel_futures=True)
+            self._pool = None
+
+    def close(self):
+        self._shutdown(wait=True)
+
+
+class DaskExecutor(Executor):
+    """Chunks computed on a dask.distributed cluster.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Local cluster only: number of worker processes (one thread each);
+        default (None or 0) one per core.
+    scheduler : str, optional
+        Address of a running scheduler (``tcp://host:port``). The workers
+        must have ``calcium`` installed and see the input files at the same
+        paths. Without it a :class:`distributed.LocalCluster` is started
+        whose scheduler and workers listen on 127.0.0.1 only, and it is
+        closed again by :meth:`close`.
+
+    Raises
+    ------
+    ImportError
+        If dask.distributed is not installed (``pip install calcium[dask]``).
+    ExecutorError
+        If the scheduler cannot be reached.
+    """
+
+    name = "dask"
+
+    def __init__(self, workers: int | None = None, *, scheduler: str | None = None):
+        try:
+            import distributed
+        except ImportError:
+            raise ImportError("the dask backend needs dask.distributed: pip install 'calcium[dask]' "
+                              "(or choose execution.backend = \"processes\")") from None
+        workers = check_int(workers, "workers", minimum=0) if workers is not None else 0
+        self._cluster = None
+        if scheduler:
+            try:
+                self._client = distributed.Client(scheduler, timeout="30s")
+            except (OSError, TimeoutError) as exc:
+                raise ExecutorError(f"cannot reach the dask scheduler at {scheduler!r}: {exc}") from None
+        else:
+            self._cluster = distributed.LocalCluster(
+                n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
+                host="127.0.0.1", dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR)
+            self._client = distributed.Client(self._cluster)
+        self.scheduler = self._client.scheduler.address
+        self.workers = max(1, sum(self._client.nthreads().values()))
+
+    @property
+    def worker_addresses(self) -> list[str]:
+        """Addresses of the connected workers."""
+        return sorted(self._client.nthreads())
+
+    def map_chunks(self, fn, chunks, *, progress=None):
+        import distributed
+
+        client = self._client
+        reporter = _Progress(progress, chunks)
+        source = iter(chunks)
+        ids: dict = {}
+        queue = distributed.as_completed()
+        limit = _IN_FLIGHT_PER_WORKER * max(1, sum(client.nthreads().values()))
+
+        def top_up():
+            for chunk_id, payload in itertools.islice(source, max(0, limit - len(ids))):
+                future = client.submit(fn, payload, pure=False)
+                ids[future.key] = (chunk_id, future)
+                queue.add(future)
+
+        try:
+            top_up()
+            for future in queue:
+                chunk_id, _ = ids.pop(future.key)
+                result = future.result()
+                future.release()
+                top_up()
+                reporter.done(chunk_id)
+                yield chunk_id, result
+        finally:
+            reporter.close()
+            for _, future in ids.values():
+                future.cancel()
+
+    def close(self):
+        client, self._client = getattr(self, "_client", None), None
+        cluster, self._cluster = getattr(self, "_cluster", None), None
+        if client is not None:
+            client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def make_executor(backend: str = "processes", *, workers: int | None = None,
+                  scheduler: str | None = None) -> Executor:
+    """The executor for ``backend`` ("serial", "processes" or "dask").
+
+    ``workers`` (0/None = one per core) applies to processes and to a local
+    dask cluster; ``scheduler`` (an address) to dask only.
+    """
+    check_choice(backend, "backend", BACKENDS)
+    if backend == "serial":
+        return SerialExecutor()
+    if backend == "processes":
+        return ProcessExecutor(workers)
+    return DaskExecutor(workers, scheduler=scheduler)

@@ -1,0 +1,960 @@
+"""One call for a whole session: :func:`run_pipeline`.
+
+    from calcium.pipeline import run_pipeline
+    summary = run_pipeline("session.toml")
+
+reads the configuration, checks the inputs, cuts the ROIs into chunks, runs
+the per-chunk stages on every core (or a dask cluster), writes each finished
+chunk to ``results.h5`` at once, fits kernels and scores ROIs that have
+electrical spikes, and ends with ``spikes.csv``, an HTML report and, on
+request, an NWB file. Interrupted (Ctrl-C, a crash, a kill), the same call
+continues where it stopped and gives the same results as an uninterrupted run.
+"""
+from __future__ import annotations
+
+import contextlib
+import errno
+import json
+import math
+import os
+import shutil
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .. import __version__
+from .._checks import CalciumInputError
+from . import stages
+from .config import ConfigError, RunConfig, load_config, parameters_digest
+from .executors import make_executor, progress_bar
+from .store import DatasetSpec, OutputError, ResultStore, check_output_folder, open_results
+
+__all__ = ["RunSummary", "run_pipeline", "infer_file", "write_session_report", "write_spike_table_from_results", "RESULTS_NAME", "SPIKES_NAME", "REPORT_FOLDER", "NWB_NAME"]
+
+RESULTS_NAME = "results.h5"
+SPIKES_NAME = "spikes.csv"
+REPORT_FOLDER = "report"
+NWB_NAME = "results.nwb"
+_WORK_FOLDER = ".calcium-work"
+# Frame rates given twice (configuration and file) must agree to this fraction.
+_RATE_TOLERANCE = 1e-3
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    """What :func:`run_pipeline` produced.
+
+    Attributes
+    ----------
+    output_folder : pathlib.Path
+    results_path : pathlib.Path
+        The HDF5 results (layout in docs/hdf5-layout.md).
+    spikes_path : pathlib.Path
+        CSV ``roi,time_s,count`` of the inferred spikes.
+    report_path : pathlib.Path or None
+        ``report/index.html`` (None when the report is disabled).
+    nwb_path : pathlib.Path or None
+        NWB export (None unless enabled).
+    n_rois, n_frames : int
+    frame_rate : float
+    n_flagged : int
+        ROIs with at least one quality flag.
+    n_failed : int
+        ROIs without results (flag "failed").
+    chunks_total : int
+    chunks_resumed : int
+        Chunks found finished from an earlier, interrupted run.
+    elapsed_s : float
+        Wall time of this call.
+    frames_per_second : float
+        ROI-frames analysed by this call per second of wall time
+        (``rois computed x n_frames / elapsed_s``).
+    backend : str
+    workers : int
+    """
+
+    output_folder: Path
+    results_path: Path
+    spikes_path: Path
+    report_path: Path | None
+    nwb_path: Path | None
+    n_rois: int
+    n_frames: int
+    frame_rate: float
+    n_flagged: int
+    n_failed: int
+    chunks_total: int
+    chunks_resumed: int
+    elapsed_s: float
+    frames_per_second: float
+    backend: str
+    workers: int
+
+    def __str__(self) -> str:
+        if self.chunks_resumed == self.chunks_total:
+            speed = f"{self.elapsed_s:.1f} s (every chunk was already done)"
+        else:
+            speed = (f"{self.elapsed_s:.1f} s, {self.frames_per_second / 1e6:.2f} million frames/s "
+                     f"({self.backend}, {self.workers} worker(s)"
+                     + (f"; {self.chunks_resumed} of {self.chunks_total} chunks resumed" if self.chunks_resumed
+                        else "") + ")")
+        lines = [f"{self.n_rois} ROIs x {self.n_frames} frames at {self.frame_rate:g} Hz: "
+                 f"{self.n_flagged} flagged ({self.n_failed} without results)", speed,
+                 f"results: {self.results_path}", f"spikes:  {self.spikes_path}"]
+        if self.report_path is not None:
+            lines.append(f"report:  {self.report_path}")
+        if self.nwb_path is not None:
+            lines.append(f"NWB:     {self.nwb_path}")
+        return "\n".join(lines)
+
+
+def _say(progress, text: str) -> None:
+    if progress:
+        print(text, file=sys.stderr, flush=True)
+
+
+# ---------------------------------------------------------------------------
+# preparing the inputs
+# ---------------------------------------------------------------------------
+@dataclass
+class _Inputs:
+    kind: str                      # "traces" or "movie"
+    n_rois: int
+    n_frames: int
+    frame_rate: float
+    sha256: dict                   # role -> hex digest
+    paths: dict                    # role -> path
+    source: stages.TraceSource | None = None
+    electrical: dict | None = None
+
+
+def _hash(path: Path, role: str, progress) -> str:
+    from ..io import file_sha256
+
+    size = path.stat().st_size
+    if size > 1 << 30:
+        _say(progress, f"checking {role} ({size / 1e9:.1f} GB: SHA-256 for the provenance record) ...")
+    return file_sha256(path)
+
+
+def _pick_frame_rate(given, found, where, key: str) -> float:
+    """The frame rate from the caller (``key``) or from the file; both must agree when both are known."""
+    if given is None and found is None:
+        raise ConfigError(f"{key} is not set and {where} does not record the frame rate; set {key} (Hz)")
+    if given is not None and found is not None and abs(given - found) > _RATE_TOLERANCE * found:
+        raise ConfigError(f"{key} = {given:g} Hz but {where} records {found:g} Hz; remove {key} or correct it")
+    return float(given if given is not None else found)
+
+
+def _resolve_frame_rate(config: RunConfig, found, where) -> float:
+    return _pick_frame_rate(config.inputs.frame_rate, found, where, "inputs.frame_rate")
+
+
+def _write_scratch(path: Path, array: np.ndarray) -> None:
+    from ..io import atomic_output
+
+    path.parent.mkdir(exist_ok=True)
+    with atomic_output(path) as tmp:
+        with open(tmp, "wb") as handle:
+            np.save(handle, array, allow_pickle=False)
+
+
+def _prepare_inputs(config: RunConfig, work: Path, progress) -> _Inputs:
+    inputs = config.inputs
+    paths = {}
+    for role in ("traces", "movie", "masks", "electrical_spikes"):
+        path = getattr(inputs, role)
+        if path is not None:
+            if not path.is_file():
+                raise CalciumInputError(f"inputs.{role}: file not found: {path}")
+            paths[role] = path
+    sha = {role: _hash(path, role, progress) for role, path in paths.items()}
+
+    if inputs.movie is not None:
+        from ..io import open_movie, read_masks
+
+        masks = read_masks(inputs.masks)
+        with open_movie(inputs.movie) as movie:
+            n_frames = int(movie.n_frames)
+            if tuple(movie.shape[1:]) != tuple(masks.shape[1:]):
+                raise CalciumInputError(f"inputs.masks {inputs.masks} are {masks.shape[1]}x{masks.shape[2]} "
+                                        f"pixels but the movie frames are {movie.shape[1]}x{movie.shape[2]}")
+        frame_rate = _resolve_frame_rate(config, None, inputs.movie)
+        prepared = _Inputs("movie", int(masks.shape[0]), n_frames, frame_rate, sha, paths)
+    else:
+        path = inputs.traces
+        source, found = _trace_source(path, inputs.traces_dataset, work, sha["traces"], "inputs.traces")
+        frame_rate = _resolve_frame_rate(config, found, path)
+        prepared = _Inputs("traces", source.n_rois, source.n_frames, frame_rate, sha, paths, source=source)
+
+    if inputs.electrical_spikes is not None:
+        from ..io import read_spike_times
+
+        electrical = read_spike_times(inputs.electrical_spikes)
+        outside = [roi for roi in electrical if roi >= prepared.n_rois]
+        if outside:
+            raise CalciumInputError(f"inputs.electrical_spikes {inputs.electrical_spikes} names ROI {outside[0]}, "
+                                    f"but there are only {prepared.n_rois} ROIs (indices 0 to "
+                                    f"{prepared.n_rois - 1})")
+        prepared.electrical = electrical
+    return prepared
+
+
+def _trace_source(path: Path, dataset, work: Path, sha: str, what: str):
+    """(TraceSource the workers read rows from, frame rate recorded in the file or None)."""
+    suffix = path.suffix.lower()
+    if suffix == ".npy":
+        return stages.npy_source(path), None
+    if suffix in (".h5", ".hdf5"):
+        return stages.hdf5_source(path, dataset)
+    if suffix == ".csv":
+        # Text cannot be read by rows: parse it once, keep a binary copy the workers can read.
+        from ..io import read_traces
+
+        data = read_traces(path)
+        scratch = work / f"traces-{sha[:20]}.npy"
+        if not scratch.exists():
+            _write_scratch(scratch, data.traces)
+        return stages.npy_source(scratch), data.frame_rate
+    raise CalciumInputError(f"{what}: unsupported file type {suffix!r} ({path}); use .npy, .csv, .h5 or .hdf5")
+
+
+def _stage_params(config: RunConfig, frame_rate: float, n_frames: int) -> stages.StageParams:
+    dff = {"window_s": config.dff.window_s, "percentile": config.dff.percentile, "smooth_s": config.dff.smooth_s}
+    if config.dff.floor is not None:
+        dff["floor"] = config.dff.floor
+    filt = None
+    if config.filter.kind != "none":
+        from ..signal import design_filter
+
+        cutoff = config.filter.cutoff_hz
+        try:
+            filt = design_filter(config.filter.kind, cutoff[0] if len(cutoff) == 1 else tuple(cutoff), frame_rate,
+                                 order=config.filter.order, method=config.filter.method)
+        except ValueError as exc:
+            raise ConfigError(f"[filter] cannot be used at {frame_rate:g} Hz: {exc}") from None
+        if n_frames < filt.min_frames():
+            raise ConfigError(f"[filter] needs at least {filt.min_frames()} frames, the recording has {n_frames}; "
+                              f"lower filter.order or set filter.kind = \"none\"")
+    noise = {"average": config.noise.average}
+    if config.noise.band_hz is not None:
+        noise["band_hz"] = tuple(config.noise.band_hz)
+        if config.noise.band_hz[1] > frame_rate / 2:
+            raise ConfigError(f"noise.band_hz = {list(config.noise.band_hz)} is not allowed at {frame_rate:g} Hz: "
+                              f"the band must end at or below half the frame rate ({frame_rate / 2:g} Hz)")
+    return stages.StageParams(frame_rate=frame_rate, dff=dff, filter=filt, noise=noise,
+                              inference=_inference_kwargs(config),
+                              min_snr=config.quality.min_snr,
+                              max_missing_fraction=config.quality.max_missing_fraction,
+                              saturation_frames=config.quality.saturation_frames)
+
+
+def _inference_kwargs(config: RunConfig) -> dict:
+    inf = config.inference
+    kwargs = {"order": inf.order, "threshold": inf.threshold}
+    if inf.spike_size is not None:
+        kwargs["spike_size"] = inf.spike_size
+    if inf.penalty is not None:
+        kwargs["penalty"] = inf.penalty
+    if inf.decay_s is not None:
+        from ..kernel import Kernel
+
+        kwargs["kernel"] = Kernel(inf.rise_s, inf.decay_s)
+    elif inf.indicator is not None:
+        from ..indicators import get_indicator
+
+        try:
+            get_indicator(inf.indicator)
+        except ValueError as exc:
+            raise ConfigError(f"inference.indicator = {inf.indicator!r} is not allowed: {exc}") from None
+        kwargs["indicator"] = inf.indicator
+    return kwargs
+
+
+def _fit_options(config: RunConfig) -> dict:
+    fit = config.kernel_fit
+    options = {"model": fit.model, "max_lag_s": fit.max_lag_s, "n_bootstrap": fit.n_bootstrap,
+               "confidence": fit.confidence, "seed": fit.seed, "min_isolated_spikes": fit.min_isolated_spikes}
+    if config.inference.indicator is not None:
+        options["initial"] = config.inference.indicator
+    elif config.inference.decay_s is not None:
+        from ..kernel import Kernel
+
+        options["initial"] = Kernel(config.inference.rise_s, config.inference.decay_s)
+    return options
+
+
+# ---------------------------------------------------------------------------
+# the layout of the results file
+# ---------------------------------------------------------------------------
+def _layout(config: RunConfig, prepared: _Inputs, electrical_rois: list[int]) -> list[DatasetSpec]:
+    n, t = prepared.n_rois, prepared.n_frames
+    specs = stages.result_datasets(n, t, filtered=config.filter.kind != "none")
+    if prepared.kind == "movie":
+        specs += [
+            DatasetSpec("raw", (n, t), "f4", "neuropil-corrected ROI fluorescence extracted from the movie "
+                                             "(the input of ΔF/F)", "a.u.", per_roi=False),
+            DatasetSpec("extraction/neuropil_factor", (n,), "f8", "neuropil factor r used per ROI", "",
+                        per_roi=False),
+            DatasetSpec("extraction/roi_pixels", (n,), "i8", "pixels in each ROI", "pixels", per_roi=False),
+            DatasetSpec("extraction/neuropil_pixels", (n,), "i8", "pixels in each neuropil ring", "pixels",
+                        per_roi=False),
+        ]
+    specs += stages.electrical_datasets(len(electrical_rois), len(config.scoring.bin_widths_s))
+    return specs
+
+
+# ---------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------
+def _output_folder(config: RunConfig) -> Path:
+    folder = config.output.folder
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except FileExistsError:
+        raise OutputError(errno.ENOTDIR, f"output.folder {folder} exists and is a file, not a folder") from None
+    except NotADirectoryError:
+        raise OutputError(errno.ENOTDIR, f"cannot create output.folder {folder}: a part of the path is a file, "
+                                         f"not a folder") from None
+    except PermissionError:
+        raise OutputError(errno.EACCES, f"cannot create output.folder {folder}: permission denied") from None
+    except OSError as exc:
+        raise OutputError(exc.errno or errno.EIO, f"cannot create output.folder {folder}: {exc}") from None
+    return check_output_folder(folder)
+
+
+def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = True) -> RunSummary:
+    """Analyse a whole session as configured: ΔF/F, filter, inference, quality, fits, report.
+
+    Parameters
+    ----------
+    config_or_path : RunConfig or path-like
+        A configuration, or the TOML file to read (see
+        :func:`calcium.pipeline.write_config_template`).
+    overwrite : bool
+        Replace results of a different run (other inputs or parameters) in
+        the output folder. Without it such a rerun is refused; a rerun of the
+        *same* run always continues where it stopped.
+    progress : bool
+        Progress bars (with ETA) and messages on stderr.
+
+    Returns
+    -------
+    RunSummary
+
+    Raises
+    ------
+    ConfigError
+        A bad configuration (or one that does not fit the data, such as a
+        filter cutoff above half the frame rate).
+    calcium._checks.CalciumInputError
+        An unreadable or inconsistent input file.
+    OutputError
+        The output cannot be written (missing or read-only folder, disk
+        full, file in use); finished chunks stay saved for a rerun.
+    OutputMismatchError
+        The output folder holds results of a different run and
+        ``overwrite`` is False.
+    KeyboardInterrupt
+        On Ctrl-C, after the finished chunks were saved: rerun to continue.
+
+    Notes
+    -----
+    Memory: each worker holds one chunk of ROIs (``execution.chunk_rois``),
+    read by itself from the input file; the parent holds at most two
+    results per worker on their way to the file.
+
+    With the processes or dask backend, a script calling this function must
+    keep its top-level code under ``if __name__ == "__main__":`` (the
+    workers start fresh interpreters that import the script).
+    """
+    started = time.perf_counter()
+    config = config_or_path if isinstance(config_or_path, RunConfig) else load_config(config_or_path)
+    folder = _output_folder(config)
+    work = folder / _WORK_FOLDER  # created only when an input needs a binary copy
+    results_path = folder / RESULTS_NAME
+
+    prepared = _prepare_inputs(config, work, progress)
+    params = _stage_params(config, prepared.frame_rate, prepared.n_frames)
+    chunk_rois = config.execution.chunk_rois or stages.auto_chunk_rois(prepared.n_rois, prepared.n_frames)
+    chunk_rois = min(chunk_rois, prepared.n_rois)
+    bounds = stages.chunk_bounds(prepared.n_rois, chunk_rois)
+    electrical_rois = sorted(prepared.electrical) if prepared.electrical else []
+
+    parameters = {
+        "config": config.result_parameters(),
+        "inputs_sha256": prepared.sha256,
+        "frame_rate": prepared.frame_rate,
+        "n_rois": prepared.n_rois,
+        "n_frames": prepared.n_frames,
+        "chunk_rois": int(chunk_rois),
+        "calcium_version": __version__,
+    }
+    run_hash = parameters_digest(parameters)
+    attrs = {
+        "calcium_version": __version__,
+        "frame_rate": prepared.frame_rate,
+        "n_rois": prepared.n_rois,
+        "n_frames": prepared.n_frames,
+        "chunk_rois": int(chunk_rois),
+        "input_kind": prepared.kind,
+        "config_toml": config.text if config.text is not None else config.to_toml(),
+        "config_path": str(config.source) if config.source is not None else "",
+        "inputs_json": json.dumps({role: {"path": str(path), "sha256": prepared.sha256[role]}
+                                   for role, path in prepared.paths.items()}),
+        "settings_json": json.dumps(config.to_dict(), default=str),
+        "stage_arguments_json": json.dumps({"delta_f_over_f": params.dff,
+                                            "filter": None if params.filter is None else params.filter.describe(),
+                                            "estimate_noise": params.noise,
+                                            "infer_spikes": {k: str(v) for k, v in params.inference.items()},
+                                            "fit_kernel": {k: str(v) for k, v in _fit_options(config).items()}},
+                                           default=str),
+        "source_json": json.dumps(None if prepared.source is None or prepared.kind == "movie" else
+                                  {"path": str(prepared.paths["traces"]), "kind": prepared.source.kind,
+                                   "dataset": prepared.source.dataset}),
+        "flag_bits_json": json.dumps({str(bit): name for bit, name in stages.FLAG_NAMES.items()}),
+    }
+    flags = (["extraction"] if prepared.kind == "movie" else []) + (["electrical"] if electrical_rois else [])
+    store = ResultStore.open(results_path, datasets=_layout(config, prepared, electrical_rois),
+                             chunk_bounds=bounds, run_hash=run_hash, attrs=attrs, parameters=parameters,
+                             flags=flags, overwrite=overwrite)
+    chunks_resumed = int(store.done.sum())
+    if store.resumed:
+        _say(progress, f"resuming {results_path}: {chunks_resumed} of {store.n_chunks} chunks already done")
+    computed_rois = 0
+    backend, workers = config.execution.backend, 1
+    try:
+        todo = [c for c in range(store.n_chunks) if not store.done[c]]
+        if todo:
+            if prepared.kind == "movie":
+                prepared.source = _extraction(config, prepared, store, work, run_hash, progress)
+            backend, workers, computed_rois = _run_chunks(
+                prepared.source, params, store, todo, backend=config.execution.backend,
+                workers=config.execution.workers, scheduler=config.execution.scheduler, progress=progress)
+        if electrical_rois and not store.flag("electrical"):
+            stages.electrical_step(store, prepared.electrical, prepared.frame_rate, prepared.n_frames,
+                                   fit_options=_fit_options(config), scoring=config.scoring,
+                                   indicator=config.inference.indicator, progress=progress)
+        if not store.complete:
+            store.mark_complete()
+    except KeyboardInterrupt:
+        done = int(store.done.sum())
+        store.close()
+        _say(True, f"\ninterrupted: {done} of {store.n_chunks} chunks are saved in {results_path}; "
+                   f"run the same command again to continue")
+        raise
+    finally:
+        store.close()
+
+    with open_results(results_path) as results:
+        quality = results.read("quality_flags")
+    spikes_path = write_spike_table_from_results(results_path, folder / SPIKES_NAME)
+    report_path = None
+    if config.report.enabled:
+        report_path = write_session_report(results_path, folder / REPORT_FOLDER,
+                                           n_examples=config.report.n_examples,
+                                           electrical_spikes=prepared.electrical,
+                                           indicator=config.inference.indicator, progress=progress)
+    nwb_path = None
+    if config.nwb.enabled:
+        from ..io.nwb import export_nwb
+
+        nwb_path = export_nwb(results_path, folder / NWB_NAME,
+                              session_description=config.nwb.session_description,
+                              session_start=config.nwb.session_start, experimenter=config.nwb.experimenter,
+                              location=config.nwb.location, indicator=config.inference.indicator)
+    shutil.rmtree(work, ignore_errors=True)
+    elapsed = time.perf_counter() - started
+    summary = RunSummary(
+        output_folder=folder, results_path=results_path, spikes_path=spikes_path, report_path=report_path,
+        nwb_path=nwb_path, n_rois=prepared.n_rois, n_frames=prepared.n_frames, frame_rate=prepared.frame_rate,
+        n_flagged=int(np.count_nonzero(quality)), n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)),
+        chunks_total=int(bounds.size - 1), chunks_resumed=chunks_resumed, elapsed_s=elapsed,
+        frames_per_second=computed_rois * prepared.n_frames / elapsed if elapsed > 0 else float("nan"),
+        backend=backend, workers=workers)
+    return summary
+
+
+def _extraction(config: RunConfig, prepared: _Inputs, store: ResultStore, work: Path, run_hash: str,
+                progress) -> stages.TraceSource:
+    """Movie + masks -> traces, once per run (saved in the results); a binary copy for the workers."""
+    scratch = work / f"extracted-{run_hash[:20]}.npy"
+    if store.flag("extraction"):
+        if not scratch.exists():
+            _write_scratch(scratch, store.read("raw"))
+        return stages.npy_source(scratch)
+    from ..extract import extract_traces
+    from ..io import open_movie, read_masks
+
+    ext_cfg = config.extraction
+    masks = read_masks(config.inputs.masks)
+    _say(progress, f"extracting {masks.shape[0]} ROIs from {config.inputs.movie} ...")
+    with open_movie(config.inputs.movie) as movie:
+        extraction = extract_traces(movie, masks, neuropil_gap_px=ext_cfg.neuropil_gap_px,
+                                    neuropil_radius_px=ext_cfg.neuropil_radius_px,
+                                    neuropil_factor=ext_cfg.neuropil_factor, chunk_frames=ext_cfg.chunk_frames,
+                                    progress=bool(progress))
+    raw = extraction.corrected.astype(np.float32)
+    _write_scratch(scratch, raw)
+    store.write_rows("raw", (), raw)
+    store.write_rows("extraction/neuropil_factor", (), extraction.neuropil_factor)
+    store.write_rows("extraction/roi_pixels", (), extraction.roi_pixels)
+    store.write_rows("extraction/neuropil_pixels", (), extraction.neuropil_pixels)
+    store.set_flag("extraction")
+    return stages.npy_source(scratch)
+
+
+def _run_chunks(source: stages.TraceSource, params, store: ResultStore, todo, *, backend: str, workers: int,
+                scheduler, progress, label: str = "ΔF/F + inference"):
+    """Compute the chunks ``todo`` with the chosen executor and write each to ``store`` as it arrives."""
+    if backend != "serial" and len(todo) == 1:
+        backend = "serial"  # one chunk: starting workers would only cost time
+    tasks = [(c, stages.ChunkTask(c, int(store.chunk_bounds[c]), int(store.chunk_bounds[c + 1]), source, params))
+             for c in todo]
+    bar = progress_bar(label if progress else False, total=source.n_rois, unit="ROI")
+    if bar is not None:
+        bar.update(source.n_rois - sum(t.stop - t.start for _, t in tasks))
+
+    def finished(chunk_id):
+        if bar is not None:
+            rows = store.chunk_rows(chunk_id)
+            bar.update(rows.stop - rows.start)
+
+    computed = 0
+    try:
+        with make_executor(backend, workers=min(workers or os.cpu_count() or 1, len(todo)),
+                           scheduler=scheduler) as executor:
+            # Looked up at call time so that the function can be wrapped (e.g. by tests).
+            results = executor.map_chunks(stages.process_chunk, tasks, progress=finished)
+            with contextlib.closing(results):
+                for chunk_id, values in results:
+                    store.write_chunk(chunk_id, values)
+                    rows = store.chunk_rows(chunk_id)
+                    computed += rows.stop - rows.start
+            workers = executor.workers
+    finally:
+        if bar is not None:
+            bar.close()
+    return backend, workers, computed
+
+
+def write_spike_table_from_results(results_path, path) -> Path:
+    """``roi,time_s,count`` CSV of the inferred spikes of a results file, written atomically.
+
+    The layout of :func:`calcium.io.write_spike_table` (read it back with
+    :func:`calcium.io.read_spike_times`): one line per frame with spikes,
+    at ``k / frame_rate + spike_time_offset_s`` with the frame's count (spikes
+    sharing a frame share the mean of their sub-frame times); a ROI without
+    spikes gets the line ``roi,,0``. Streamed chunk by chunk, so the table
+    of a long session never sits in memory.
+    """
+    from ..io import atomic_output
+
+    path = Path(path)
+    with open_results(results_path) as results, atomic_output(path, inputs=[results_path]) as tmp:
+        rate = results.frame_rate
+        bounds = results.read("progress/chunk_bounds")
+        with open(tmp, "w", encoding="utf-8", newline="") as handle:
+            handle.write("roi,time_s,count\n")
+            for start, stop in zip(bounds[:-1], bounds[1:]):
+                counts = results.read("spike_counts", np.s_[start:stop])
+                offsets = results.read("spike_time_offset_s", np.s_[start:stop])
+                for k in range(counts.shape[0]):
+                    roi = int(start) + k
+                    frames = np.flatnonzero(counts[k])
+                    if frames.size == 0:
+                        handle.write(f"{roi},,0\n")
+                        continue
+                    times = np.maximum(frames / rate + offsets[k, frames].astype(np.float64), 0.0).tolist()
+                    handle.write("".join(f"{roi},{t!r},{n}\n" for t, n in zip(times, counts[k, frames].tolist())))
+    return path
+
+
+# ---------------------------------------------------------------------------
+# inference only, for a ΔF/F file (calcium infer)
+# ---------------------------------------------------------------------------
+def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, dataset=None, workers=None,
+               backend="processes", chunk_rois=0, overwrite=False, progress=True) -> RunSummary:
+    """Infer spikes for every ROI of a ΔF/F file on all cores; resumable results file and spike table.
+
+    The per-ROI stages of :func:`run_pipeline` without ΔF/F (the input
+    already is ΔF/F): noise (:func:`calcium.signal.estimate_noise`) and
+    inference (:func:`calcium.infer.infer_spikes`), with the quality flags.
+
+    Parameters
+    ----------
+    path : path-like
+        ΔF/F traces (rois, frames): ``.npy``, ``.csv`` or ``.h5``/``.hdf5``.
+    out : path-like
+        Results file (``.h5``/``.hdf5``; layout in docs/hdf5-layout.md,
+        without ``dff``/``f0``). The spike table ``roi,time_s,count`` is
+        written beside it with the suffix ``.csv``.
+    frame_rate : float, optional
+        Hz; taken from the file when it records it (they must agree when both
+        are known).
+    kernel : calcium.kernel.Kernel, optional
+        Fixed kernel. Give at most one of ``kernel`` and ``indicator``;
+        with neither, the kinetics of each ROI are estimated.
+    indicator : str, optional
+        Indicator whose published kernel is used.
+    dataset : str, optional
+        HDF5 dataset (default: ``traces``, else the only 1-D/2-D one).
+    workers : int, optional
+        Processes (default: one per core).
+    backend : {"serial", "processes", "dask"}
+        Where to compute (dask: a local cluster on 127.0.0.1).
+    chunk_rois : int
+        ROIs per work unit (0: automatic).
+    overwrite : bool
+        Replace a results file of a different run; the same run is always
+        resumed.
+    progress : bool
+        Progress bar on stderr.
+
+    Returns
+    -------
+    RunSummary
+        ``report_path`` and ``nwb_path`` are None.
+
+    Raises
+    ------
+    ConfigError, calcium._checks.CalciumInputError, OutputError, OutputMismatchError
+        As :func:`run_pipeline`.
+    """
+    from ..io import file_sha256
+
+    started = time.perf_counter()
+    path, out = Path(path), Path(out)
+    if out.suffix.lower() not in (".h5", ".hdf5"):
+        raise ValueError(f"out must be an HDF5 file (.h5 or .hdf5), got {out}")
+    if not path.is_file():
+        raise CalciumInputError(f"ΔF/F file not found: {path}")
+    if kernel is not None and indicator is not None:
+        raise ValueError("give at most one of kernel and indicator")
+    if chunk_rois:
+        from .._checks import check_int
+
+        chunk_rois = check_int(chunk_rois, "chunk_rois", minimum=1)
+    folder = check_output_folder(out.parent if str(out.parent) else Path("."))
+    spikes_path = out.with_suffix(".csv")
+    for target in (out, spikes_path):
+        if target.exists() and os.path.samefile(target, path):
+            raise ValueError(f"refusing to write {target}: it is the input file")
+    work = folder / f".{out.stem}.calcium-work"
+    sha = file_sha256(path)
+    source, found = _trace_source(path, dataset, work, sha, "the ΔF/F file")
+    rate = _pick_frame_rate(frame_rate, found, path, "frame_rate")
+    inference = {}
+    if kernel is not None:
+        inference["kernel"] = kernel
+    elif indicator is not None:
+        inference["indicator"] = indicator
+    params = stages.StageParams(frame_rate=rate, dff=None, inference=inference)
+    chunk_rois = min(chunk_rois or stages.auto_chunk_rois(source.n_rois, source.n_frames), source.n_rois)
+    bounds = stages.chunk_bounds(source.n_rois, chunk_rois)
+    parameters = {"infer_file": {"kernel": repr(kernel), "indicator": indicator, "dataset": source.dataset},
+                  "inputs_sha256": {"dff": sha}, "frame_rate": rate, "n_rois": source.n_rois,
+                  "n_frames": source.n_frames, "chunk_rois": int(chunk_rois), "calcium_version": __version__}
+    attrs = {"calcium_version": __version__, "frame_rate": rate, "n_rois": source.n_rois,
+             "n_frames": source.n_frames, "chunk_rois": int(chunk_rois), "input_kind": "dff",
+             "inputs_json": json.dumps({"dff": {"path": str(path), "sha256": sha}}),
+             "stage_arguments_json": json.dumps({"estimate_noise": params.noise,
+                                                 "infer_spikes": {k: str(v) for k, v in inference.items()}}),
+             "flag_bits_json": json.dumps({str(bit): name for bit, name in stages.FLAG_NAMES.items()})}
+    store = ResultStore.open(out, datasets=stages.result_datasets(source.n_rois, source.n_frames, filtered=False,
+                                                                  with_dff=False),
+                             chunk_bounds=bounds, run_hash=parameters_digest(parameters), attrs=attrs,
+                             parameters=parameters, overwrite=overwrite)
+    chunks_resumed = int(store.done.sum())
+    computed, used_backend, used_workers = 0, backend, 1
+    try:
+        todo = [c for c in range(store.n_chunks) if not store.done[c]]
+        if todo:
+            used_backend, used_workers, computed = _run_chunks(source, params, store, todo, backend=backend,
+                                                               workers=workers, scheduler=None, progress=progress,
+                                                               label="inference")
+        if not store.complete:
+            store.mark_complete()
+    except KeyboardInterrupt:
+        _say(True, f"\ninterrupted: {int(store.done.sum())} of {store.n_chunks} chunks are saved in {out}; "
+                   f"run the same command again to continue")
+        raise
+    finally:
+        store.close()
+    write_spike_table_from_results(out, spikes_path)
+    with open_results(out) as results:
+        quality = results.read("quality_flags")
+    shutil.rmtree(work, ignore_errors=True)
+    elapsed = time.perf_counter() - started
+    return RunSummary(
+        output_folder=folder, results_path=out, spikes_path=spikes_path, report_path=None, nwb_path=None,
+        n_rois=source.n_rois, n_frames=source.n_frames, frame_rate=rate, n_flagged=int(np.count_nonzero(quality)),
+        n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)), chunks_total=int(bounds.size - 1),
+        chunks_resumed=chunks_resumed, elapsed_s=elapsed,
+        frames_per_second=computed * source.n_frames / elapsed if elapsed > 0 else float("nan"),
+        backend=used_backend, workers=used_workers)
+
+
+# ---------------------------------------------------------------------------
+# the report
+# ---------------------------------------------------------------------------
+_PER_ROI = ("noise_sd", "snr", "n_spikes", "missing_frames", "f0_min", "saturated_frames", "quality_flags",
+            "flags", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude", "converged", "baseline", "penalty")
+
+
+def _example_rois(per_roi: dict, electrical_rois, n_examples: int) -> list[int]:
+    """ROIs with electrical spikes first, then ROIs spread over the SNR range, then a flagged one."""
+    if n_examples <= 0:
+        return []
+    chosen = [int(r) for r in electrical_rois][: max(1, n_examples // 2)]
+    flags = per_roi["quality_flags"]
+    snr = per_roi["snr"]
+    usable = [i for i in np.argsort(-np.nan_to_num(snr, nan=-np.inf), kind="stable")
+              if not flags[i] & stages.FLAG_FAILED and i not in chosen]
+    room = n_examples - len(chosen) - (1 if np.any(flags) and n_examples > 1 else 0)
+    if usable and room > 0:
+        picks = np.unique(np.linspace(0, len(usable) - 1, min(room, len(usable))).round().astype(int))
+        chosen += [int(usable[k]) for k in picks]
+    # a flagged ROI that still has results says more than one without any
+    flagged = sorted((int(i) for i in np.flatnonzero(flags) if int(i) not in chosen),
+                     key=lambda i: (bool(flags[i] & stages.FLAG_FAILED), i))
+    if flagged and len(chosen) < n_examples:
+        chosen.append(flagged[0])
+    return chosen[:n_examples]
+
+
+def _raw_rows(results, roi: int):
+    """The raw fluorescence of one ROI and a note on where it came from."""
+    if "raw" in results:
+        return results.read("raw", roi).astype(np.float64), "raw F (extracted from the movie)"
+    source = results.attrs.get("source")
+    if source:
+        try:
+            if source["kind"] == "npy":
+                trace = stages.npy_source(source["path"]).read_rows(roi, roi + 1)[0]
+            else:
+                trace = stages.hdf5_source(source["path"], source["dataset"])[0].read_rows(roi, roi + 1)[0]
+            if trace.size == results.n_frames:
+                return trace, "raw F (from the input file)"
+        except (OSError, ValueError, KeyError):
+            pass
+    f0 = results.read("f0", roi).astype(np.float64)
+    dff = results.read("dff", roi).astype(np.float64)
+    return f0 * (1.0 + dff), "F = F0 (1 + ΔF/F) (the input file was not readable)"
+
+
+def _reference_range(indicator, quantity: str):
+    """(low, high) allowed for ``quantity`` of ``indicator`` by :func:`calcium.fit.check_kinetics`, or None."""
+    if not indicator:
+        return None
+    from ..fit import check_kinetics
+    from ..kernel import Kernel
+
+    check = check_kinetics(Kernel.from_indicator(indicator), indicator)
+    for row in check.rows:
+        if row.quantity == quantity:
+            return (row.published * row.limits[0], row.published * row.limits[1]), check.indicator
+    return None
+
+
+def _half_decays(rise, decay) -> np.ndarray:
+    from ..kernel import Kernel
+
+    out = np.full(rise.shape, np.nan)
+    cache = {}
+    for i, (r, d) in enumerate(zip(rise, decay)):
+        if np.isfinite(r) and np.isfinite(d) and d > 0 and 0 <= r < d:
+            key = (float(r), float(d))
+            if key not in cache:
+                cache[key] = Kernel(*key).half_decay_s
+            out[i] = cache[key]
+    return out
+
+
+def write_session_report(results_path, folder, *, n_examples: int = 6, electrical_spikes=None, indicator=None,
+                         progress=False) -> Path:
+    """Write the HTML report of a results file into ``folder`` and return the path of its ``index.html``.
+
+    Parameters
+    ----------
+    results_path : path-like
+        A complete ``results.h5`` of :func:`run_pipeline`.
+    folder : path-like
+        Report folder (``index.html`` + ``figures/``), created if needed.
+    n_examples : int
+        Example ROIs shown through the stages.
+    electrical_spikes : dict of int -> array, optional
+        Electrically recorded spike times (s) per ROI, drawn under the
+        examples. Default: read again from the run's input, if it had one.
+    indicator : str, optional
+        Indicator whose reference range is shaded on the kinetics
+        distributions. Default: the run's ``inference.indicator``.
+    progress : bool
+        Print a line when done.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    from ..report import (HtmlReport, distribution_figure, kernel_figure, noise_figure, raster_figure,
+                          score_figure, stages_figure)
+
+    results_path = Path(results_path)
+    with open_results(results_path) as results:
+        rate, n_rois, n_frames = results.frame_rate, results.n_rois, results.n_frames
+        attrs = results.attrs
+        settings = attrs.get("settings") or {}
+        if indicator is None:
+            indicator = (settings.get("inference") or {}).get("indicator")
+        if electrical_spikes is None:
+            path = (attrs.get("inputs") or {}).get("electrical_spikes", {}).get("path")
+            if path and Path(path).is_file():
+                from ..io import read_spike_times
+
+                electrical_spikes = read_spike_times(path)
+        electrical_spikes = electrical_spikes or {}
+        per_roi = {name: results.read(name) for name in _PER_ROI}
+        bounds = results.read("progress/chunk_bounds")
+        trains = []
+        for start, stop in zip(bounds[:-1], bounds[1:]):
+            for row, offset in zip(results.read("spike_counts", np.s_[start:stop]),
+                                   results.read("spike_time_offset_s", np.s_[start:stop])):
+                trains.append(stages.inferred_spike_times(row, offset, rate))
+        duration_s = n_frames / rate
+        flags = per_roi["quality_flags"]
+        report = HtmlReport("Session analysis", subtitle=f"{n_rois} ROIs, {n_frames} frames at {rate:g} Hz "
+                                                         f"({duration_s / 60:.1f} min)")
+
+        # -- summary -----------------------------------------------------
+        report.add_section("Summary")
+        lines = [f"Results: {results_path}", f"Analysed with calcium {attrs.get('calcium_version', '?')}."]
+        for role, entry in (attrs.get("inputs") or {}).items():
+            lines.append(f"Input {role}: {entry['path']} (SHA-256 {entry['sha256'][:16]}…)")
+        report.add_text("\n".join(lines))
+        counts = [(name, int(np.count_nonzero(flags & bit))) for bit, name in stages.FLAG_NAMES.items()]
+        report.add_table(["quality flag", "ROIs"], [[name, n] for name, n in counts] +
+                         [["any flag", int(np.count_nonzero(flags))], ["no flag", int(np.count_nonzero(flags == 0))]],
+                         sortable=False, caption="ROIs per quality flag (a ROI can have several).")
+        total = sum(t.size for t in trains)
+        report.add_text(f"{total} spikes inferred in total ({total / max(n_rois, 1) / duration_s:.3g} per ROI per "
+                        f"second on average).")
+
+        # -- raster --------------------------------------------------------
+        report.add_section("Inferred spikes of all ROIs")
+        report.add_figure(raster_figure(trains, duration_s), name="raster",
+                          caption="Inferred spikes of every ROI (many ROIs: summed counts in groups of ROIs "
+                                  "and time bins).")
+
+        # -- examples ------------------------------------------------------
+        examples = _example_rois(per_roi, sorted(electrical_spikes), n_examples)
+        if examples:
+            report.add_section("Example ROIs through the stages",
+                               "Chosen to span the range of signal-to-noise ratios (ROIs with electrical "
+                               "spikes first, one flagged ROI last).")
+            for roi in examples:
+                raw, where = _raw_rows(results, roi)
+                values = {name: results.read(name, roi).astype(np.float64)
+                          for name in ("f0", "dff", "dff_filtered", "denoised") if name in results}
+                if flags[roi] & stages.FLAG_FAILED:
+                    values = {k: v for k, v in values.items() if np.isfinite(v).any()}
+                fig = stages_figure(rate, raw, f0=values.get("f0"), dff=values.get("dff"),
+                                    filtered=values.get("dff_filtered"), denoised=values.get("denoised"),
+                                    spike_times=trains[roi],
+                                    true_spike_times=electrical_spikes.get(roi), roi_label=f"ROI {roi}")
+                note = f"; flags: {per_roi['flags'][roi]}" if flags[roi] else ""
+                report.add_figure(fig, name=f"roi-{roi}", caption=f"ROI {roi}: {where}, F0, ΔF/F, denoised fit "
+                                                                   f"and inferred spikes{note}.")
+
+        # -- noise, SNR, kinetics -------------------------------------------
+        report.add_section("Noise, signal-to-noise ratio and kinetics")
+        ok = (flags & stages.FLAG_FAILED) == 0
+        if ok.any():
+            report.add_figure(noise_figure(per_roi["noise_sd"]), name="noise",
+                              caption="Noise standard deviation of ΔF/F per ROI.")
+        report.add_figure(distribution_figure(per_roi["snr"], name="SNR", unit=""), name="snr",
+                          caption="Signal-to-noise ratio (peak of the denoised ΔF/F over the noise s.d.) over ROIs.")
+        half = _half_decays(per_roi["kernel_rise_s"], per_roi["kernel_decay_s"])
+        reference = _reference_range(indicator, "half-decay")
+        known = half[np.isfinite(half)]
+        if known.size and np.ptp(known) == 0:
+            report.add_text(f"The inference used one fixed kernel for every ROI (half-decay time {known[0]:.3g} s"
+                            + (f", from the published kinetics of {indicator})." if indicator else ")."))
+        else:
+            report.add_figure(distribution_figure(half, name="half-decay time of the inference kernel", unit="s",
+                                                  reference_range=None if reference is None else reference[0],
+                                                  reference_label=f"{reference[1]} range" if reference else "range"),
+                              name="kernel-half-decay",
+                              caption="Half-decay time of the kernel estimated by the inference, per ROI"
+                                      + (f"; shaded: the range accepted for {reference[1]} (a factor 2 around the "
+                                         f"published value)." if reference else "."))
+
+        if "electrical/roi" in results:
+            _electrical_section(report, results, indicator, rate, kernel_figure, distribution_figure,
+                                score_figure)
+
+        # -- per-ROI table ---------------------------------------------------
+        report.add_section("Quality flags and per-ROI table",
+                           "Flags: failed (no results), low SNR, saturation suspected (raw maximum repeated), F0 "
+                           "problem (F0 <= 0 or clipped at the floor), many missing frames, solver not converged. "
+                           "Click a column heading to sort.")
+        header = ["ROI", "spikes", "rate (Hz)", "noise SD (ΔF/F)", "SNR", "missing frames", "min F0",
+                  "kernel decay (s)", "flags"]
+        rows = [[i, int(per_roi["n_spikes"][i]), per_roi["n_spikes"][i] / duration_s, per_roi["noise_sd"][i],
+                 per_roi["snr"][i], int(per_roi["missing_frames"][i]), per_roi["f0_min"][i],
+                 per_roi["kernel_decay_s"][i], stages.describe_flags(flags[i])] for i in range(n_rois)]
+        report.add_table(header, rows, caption=f"All {n_rois} ROIs.", flags=[str(f) for f in per_roi["flags"]])
+    page = report.write(folder)
+    _say(progress, f"report: {page}")
+    return page
+
+
+def _electrical_section(report, results, indicator, rate, kernel_figure, distribution_figure, score_figure):
+    rois = results.read("electrical/roi")
+    fit = {name: results.read(f"electrical/fit_{name}") for name in
+           ("rise_s", "decay_s", "amplitude", "half_decay_s", "lag_s", "r_squared")}
+    score = {name: results.read(f"electrical/score_{name}") for name in
+             ("precision", "recall", "f1", "n_true", "n_inferred", "n_matched", "timing_error_mean_s")}
+    notes = results.read("electrical/note")
+    report.add_section("ROIs with electrical spikes: fitted kernels and scores")
+    reference = _reference_range(indicator, "half-decay")
+    report.add_figure(distribution_figure(fit["half_decay_s"], name="fitted half-decay time", unit="s",
+                                          reference_range=None if reference is None else reference[0],
+                                          reference_label=f"{reference[1]} range" if reference else "range"),
+                      name="fit-half-decay", caption="Half-decay time of the kernels fitted to the electrical spikes.")
+    amplitude = _reference_range(indicator, "single-spike ΔF/F")
+    report.add_figure(distribution_figure(fit["amplitude"], name="fitted single-spike ΔF/F", unit="ΔF/F",
+                                          reference_range=None if amplitude is None else amplitude[0],
+                                          reference_label=f"{amplitude[1]} range" if amplitude else "range"),
+                      name="fit-amplitude", caption="Peak ΔF/F of one spike in the fitted kernels.")
+    good = np.isfinite(fit["decay_s"])
+    if good.any():
+        from ..kernel import Kernel
+
+        median = Kernel(float(np.median(fit["rise_s"][good])), float(np.median(fit["decay_s"][good])),
+                        float(np.median(fit["amplitude"][good])))
+        n = int(math.ceil(5 * median.decay_s * rate)) + 1
+        time_s = np.arange(n) / rate
+        reference_kernel = None
+        if indicator:
+            reference_kernel = Kernel.from_indicator(indicator).impulse_response(rate, n)
+        report.add_figure(kernel_figure(time_s, fitted=median.impulse_response(rate, n),
+                                        reference=reference_kernel, fitted_label="median fitted kernel",
+                                        reference_label=f"{indicator} (published)" if indicator else "reference"),
+                          name="fit-kernel", caption="Kernel with the median fitted time constants and amplitude"
+                                                     + (", beside the published one." if indicator else "."))
+    report.add_figure(score_figure(score["precision"], score["recall"], score["f1"],
+                                   bin_widths_s=results.read("electrical/bin_widths_s"),
+                                   correlation=results.read("electrical/score_correlation"),
+                                   labels=[str(r) for r in rois]),
+                      name="scores", caption="Inferred against electrically recorded spikes, per ROI.")
+    header = ["ROI", "electrical spikes", "inferred", "matched", "precision", "recall", "F1", "timing error (s)",
+              "rise (s)", "decay (s)", "half-decay (s)", "amplitude (ΔF/F)", "lag (s)", "R²"]
+    rows = [[int(r), int(score["n_true"][k]), int(score["n_inferred"][k]), int(score["n_matched"][k]),
+             score["precision"][k], score["recall"][k], score["f1"][k], score["timing_error_mean_s"][k],
+             fit["rise_s"][k], fit["decay_s"][k], fit["half_decay_s"][k], fit["amplitude"][k], fit["lag_s"][k],
+             fit["r_squared"][k]] for k, r in enumerate(rois)]
+    report.add_table(header, rows, caption="Kernel fits and scores of the ROIs with electrical spikes.",
+                     flags=[str(n) for n in notes])

@@ -1,0 +1,626 @@
+"""The stages of a run, applied to one chunk of ROIs at a time.
+
+Per chunk (in a worker): read the chunk's rows from the input -> ΔF/F ->
+optional zero-phase filter -> noise -> spike inference -> quality checks.
+Once, in the parent: extraction from a movie (before the chunks); kernel fit
+and scoring for the ROIs with electrical spikes (after the chunks).
+
+Every computation is a call to the public API of the science modules
+(:mod:`calcium.signal`, :mod:`calcium.infer`, :mod:`calcium.fit`,
+:mod:`calcium.score`, :mod:`calcium.extract`); this module only moves data
+between them, keeps per-ROI failures from stopping the run, and says what
+went wrong with each ROI.
+
+A ROI that cannot be analysed (every frame missing, F0 <= 0, the inference
+fails) is *flagged*: its results are NaN (counts 0), ``quality_flags`` has
+:data:`FLAG_FAILED` set and ``flags`` says why. The other ROIs are unaffected.
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .._checks import CalciumInputError
+from .store import DatasetSpec
+
+__all__ = [
+    "TraceSource",
+    "StageParams",
+    "ChunkTask",
+    "process_chunk",
+    "result_datasets",
+    "auto_chunk_rois",
+    "chunk_bounds",
+    "FLAG_FAILED",
+    "FLAG_LOW_SNR",
+    "FLAG_SATURATION",
+    "FLAG_F0",
+    "FLAG_MISSING",
+    "FLAG_NOT_CONVERGED",
+    "FLAG_NAMES",
+    "describe_flags",
+]
+
+# Bits of the per-ROI ``quality_flags`` dataset.
+FLAG_FAILED = 1          # no results for this ROI (reason in ``flags``)
+FLAG_LOW_SNR = 2         # snr below quality.min_snr
+FLAG_SATURATION = 4      # raw maximum repeated in many frames (clipping of the detector or digitiser)
+FLAG_F0 = 8              # F0 <= 0 (ROI failed) or F0 clipped at dff.floor
+FLAG_MISSING = 16        # more than quality.max_missing_fraction of the frames missing
+FLAG_NOT_CONVERGED = 32  # the inference solver stopped before converging
+FLAG_NAMES = {FLAG_FAILED: "failed", FLAG_LOW_SNR: "low SNR", FLAG_SATURATION: "saturation suspected",
+              FLAG_F0: "F0 problem", FLAG_MISSING: "many missing frames", FLAG_NOT_CONVERGED: "not converged"}
+FLAG_TEXT_BYTES = 240
+
+# About this many values per chunk when execution.chunk_rois = 0: 2**21
+# float64 values are 16 MiB per array, so a worker's temporaries stay in the
+# tens of MiB whatever the length of the recording. At least 64 chunks when
+# there are enough ROIs, so that the last chunks, computed while other workers
+# are already idle, are short.
+_AUTO_CHUNK_VALUES = 1 << 21
+_AUTO_MIN_CHUNKS = 64
+_AUTO_MAX_ROIS = 1024
+
+
+def describe_flags(bits: int) -> str:
+    """Names of the flags set in ``bits`` ("low SNR, many missing frames")."""
+    return ", ".join(name for bit, name in FLAG_NAMES.items() if int(bits) & bit)
+
+
+def auto_chunk_rois(n_rois: int, n_frames: int) -> int:
+    """ROIs per chunk when not configured: bounded memory, and enough chunks to share out.
+
+    Depends only on the data's shape (never on the number of workers), so a
+    run resumed with another backend cuts the same chunks.
+    """
+    by_memory = max(1, _AUTO_CHUNK_VALUES // max(1, n_frames))
+    by_count = max(1, math.ceil(n_rois / _AUTO_MIN_CHUNKS))
+    return int(min(by_memory, by_count, _AUTO_MAX_ROIS))
+
+
+def chunk_bounds(n_rois: int, chunk_rois: int) -> np.ndarray:
+    """First ROI of each chunk and the end: ``[0, c, 2c, ..., n_rois]``."""
+    return np.append(np.arange(0, n_rois, chunk_rois), n_rois).astype(np.int64)
+
+
+# ---------------------------------------------------------------------------
+# reading a chunk's rows (in the worker)
+# ---------------------------------------------------------------------------
+_OPEN_SOURCES: dict = {}
+_MAX_OPEN_SOURCES = 4
+
+
+@dataclass(frozen=True)
+class TraceSource:
+    """Where the traces are, so that each worker reads its own rows.
+
+    Attributes
+    ----------
+    path : str
+        A ``.npy`` file or an HDF5 file.
+    kind : str
+        "npy" or "hdf5".
+    dataset : str or None
+        HDF5 dataset name.
+    n_rois, n_frames : int
+    offset : int or None
+        ``.npy`` in C order: byte offset of the data (rows are then read
+        with plain file reads, which keep no pages mapped in the worker).
+    dtype : str or None
+        ``.npy``: the stored dtype.
+    """
+
+    path: str
+    kind: str
+    dataset: str | None
+    n_rois: int
+    n_frames: int
+    offset: int | None = None
+    dtype: str | None = None
+
+    def _array(self):
+        key = (self.path, self.kind, self.dataset)
+        array = _OPEN_SOURCES.get(key)
+        if array is None:
+            if len(_OPEN_SOURCES) >= _MAX_OPEN_SOURCES:
+                _OPEN_SOURCES.clear()  # (h5py closes files when their last reference goes)
+            if self.kind == "npy":
+                array = np.load(self.path, mmap_mode="r", allow_pickle=False)
+            else:
+                import h5py
+
+                array = h5py.File(self.path, "r")[self.dataset]
+            _OPEN_SOURCES[key] = array
+        return array
+
+    def read_rows(self, start: int, stop: int) -> np.ndarray:
+        """Rows ``start:stop`` as float64 (rois, frames)."""
+        if self.kind == "npy" and self.offset is not None:
+            dtype = np.dtype(self.dtype)
+            with open(self.path, "rb") as handle:
+                handle.seek(self.offset + start * self.n_frames * dtype.itemsize)
+                rows = np.fromfile(handle, dtype=dtype, count=(stop - start) * self.n_frames)
+            if rows.size != (stop - start) * self.n_frames:
+                raise CalciumInputError(f"{self.path} is shorter than its header says (truncated?)")
+            return rows.reshape(stop - start, self.n_frames).astype(np.float64)
+        array = self._array()
+        if array.ndim == 1:
+            rows = np.asarray(array[:]).reshape(1, -1)[start:stop]
+        else:
+            rows = array[start:stop]
+        return np.array(rows, dtype=np.float64)
+
+
+def _numeric_2d(shape, dtype, where: str) -> tuple[int, int]:
+    if not (np.issubdtype(dtype, np.number) or dtype == bool) or np.issubdtype(dtype, np.complexfloating):
+        raise CalciumInputError(f"{where}: traces must be real numbers, got dtype {dtype}")
+    if len(shape) not in (1, 2) or 0 in shape:
+        raise CalciumInputError(f"{where}: traces must have shape (rois, frames) or (frames,), got {shape}")
+    return (1, int(shape[0])) if len(shape) == 1 else (int(shape[0]), int(shape[1]))
+
+
+def _npy_data_offset(path: Path):
+    """(byte offset of the data, C order?) from a .npy header (format versions 1.0 and 2.0)."""
+    with open(path, "rb") as handle:
+        version = np.lib.format.read_magic(handle)
+        if version == (1, 0):
+            _, fortran, _ = np.lib.format.read_array_header_1_0(handle)
+        elif version == (2, 0):
+            _, fortran, _ = np.lib.format.read_array_header_2_0(handle)
+        else:
+            return None, False
+        return handle.tell(), not fortran
+
+
+def npy_source(path) -> TraceSource:
+    """A ``.npy`` traces file (rois, frames) or (frames,), read by rows without loading it."""
+    path = Path(path)
+    try:
+        array = np.load(path, mmap_mode="r", allow_pickle=False)
+        offset, c_order = _npy_data_offset(path)
+    except (ValueError, OSError, EOFError) as exc:
+        raise CalciumInputError(f"{path} is not a readable numeric .npy file: {exc}") from None
+    n_rois, n_frames = _numeric_2d(array.shape, array.dtype, str(path))
+    plain = c_order or array.ndim == 1
+    return TraceSource(str(path), "npy", None, n_rois, n_frames, offset=offset if plain else None,
+                       dtype=array.dtype.str)
+
+
+def hdf5_source(path, dataset: str | None) -> tuple[TraceSource, float | None]:
+    """An HDF5 traces dataset, found as :func:`calcium.io.read_traces` would, and its recorded frame rate."""
+    from ..io import find_trace_dataset
+
+    found = find_trace_dataset(path, dataset=dataset)
+    n_rois, n_frames = _numeric_2d(found.shape, found.dtype, f"{found.path}:{found.dataset}")
+    return TraceSource(str(found.path), "hdf5", found.dataset, n_rois, n_frames), found.frame_rate
+
+
+# ---------------------------------------------------------------------------
+# the per-chunk stages
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class StageParams:
+    """Everything a worker needs besides the rows: the settings of each stage.
+
+    Attributes
+    ----------
+    frame_rate : float
+    dff : dict or None
+        Keyword arguments of :func:`calcium.signal.delta_f_over_f`; None when
+        the input already is ΔF/F (the stage is skipped).
+    filter : calcium.signal.ZeroPhaseFilter or None
+        Applied to ΔF/F before the inference (None: no filter).
+    noise : dict
+        Keyword arguments of :func:`calcium.signal.estimate_noise`.
+    inference : dict
+        Keyword arguments of :func:`calcium.infer.infer_spikes` (the noise
+        level is passed per ROI).
+    min_snr, max_missing_fraction : float
+    saturation_frames : int
+    """
+
+    frame_rate: float
+    dff: dict | None = field(default_factory=dict)
+    filter: object = None
+    noise: dict = field(default_factory=dict)
+    inference: dict = field(default_factory=dict)
+    min_snr: float = 3.0
+    max_missing_fraction: float = 0.1
+    saturation_frames: int = 3
+
+
+@dataclass(frozen=True)
+class ChunkTask:
+    """One unit of work: rows ``start:stop`` of ``source``."""
+
+    chunk_id: int
+    start: int
+    stop: int
+    source: TraceSource
+    params: StageParams
+
+
+def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: bool = True) -> list[DatasetSpec]:
+    """Layout of the per-ROI results (see docs/hdf5-layout.md); ``with_dff=False`` for ΔF/F input."""
+    big = (n_rois, n_frames)
+    one = (n_rois,)
+    specs = []
+    if with_dff:
+        specs += [
+            DatasetSpec("dff", big, "f4", "ΔF/F = (F - F0) / F0; NaN at missing frames and for failed ROIs",
+                        "ΔF/F"),
+            DatasetSpec("f0", big, "f4", "baseline fluorescence F0", "a.u."),
+            DatasetSpec("f0_min", one, "f8", "smallest F0 of the ROI", "a.u."),
+        ]
+    if filtered:
+        specs.append(DatasetSpec("dff_filtered", big, "f4", "zero-phase filtered ΔF/F (input of the inference)",
+                                 "ΔF/F"))
+    specs += [
+        DatasetSpec("denoised", big, "f4", "denoised ΔF/F: the inferred activity convolved with the kernel, "
+                                           "plus the baseline", "ΔF/F"),
+        DatasetSpec("activity", big, "f4", "inferred spiking activity per frame (non-negative, in spikes)",
+                    "spikes"),
+        DatasetSpec("spike_counts", big, "u2", "whole spikes per frame; frame k is at k / frame_rate s", "spikes"),
+        DatasetSpec("spike_time_offset_s", big, "f4", "sub-frame time of the spikes counted in frame k, relative "
+                                                      "to k / frame_rate (their mean when several; 0 where none)",
+                    "s"),
+        DatasetSpec("baseline", one, "f8", "baseline of ΔF/F fitted by the inference", "ΔF/F"),
+        DatasetSpec("noise_sd", one, "f8", "noise standard deviation of the (filtered) ΔF/F", "ΔF/F"),
+        DatasetSpec("snr", one, "f8", "peak of (denoised - baseline) divided by noise_sd", ""),
+        DatasetSpec("penalty", one, "f8", "sparsity penalty used by the inference", ""),
+        DatasetSpec("n_spikes", one, "i8", "total whole spikes", "spikes"),
+        DatasetSpec("kernel_rise_s", one, "f8", "rise time constant of the kernel used (0 = instantaneous)", "s"),
+        DatasetSpec("kernel_decay_s", one, "f8", "decay time constant of the kernel used", "s"),
+        DatasetSpec("kernel_amplitude", one, "f8", "peak ΔF/F of one spike in the kernel used", "ΔF/F"),
+        DatasetSpec("converged", one, "u1", "1 if the inference solver converged", ""),
+        DatasetSpec("missing_frames", one, "i8", "number of missing (NaN/inf) frames of the input", "frames"),
+        DatasetSpec("saturated_frames", one, "i8", "frames at which the raw trace equals its maximum", "frames"),
+        DatasetSpec("quality_flags", one, "u2", "bit field: 1 failed, 2 low SNR, 4 saturation suspected, 8 F0 "
+                                                "problem, 16 many missing frames, 32 not converged", ""),
+        DatasetSpec("flags", one, f"text{FLAG_TEXT_BYTES}", "reasons for the flags, in words ('' = none)", ""),
+    ]
+    return specs
+
+
+def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool) -> dict:
+    big = lambda: np.full((n, n_frames), np.nan, dtype=np.float32)  # noqa: E731
+    out = {"denoised": big(), "activity": big(),
+           "spike_counts": np.zeros((n, n_frames), dtype=np.uint16),
+           "spike_time_offset_s": np.zeros((n, n_frames), dtype=np.float32)}
+    if with_dff:
+        out.update(dff=big(), f0=big(), f0_min=np.full(n, np.nan))
+    if filtered:
+        out["dff_filtered"] = big()
+    for name in ("baseline", "noise_sd", "snr", "penalty", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude"):
+        out[name] = np.full(n, np.nan)
+    for name in ("n_spikes", "missing_frames", "saturated_frames"):
+        out[name] = np.zeros(n, dtype=np.int64)
+    out["converged"] = np.zeros(n, dtype=np.uint8)
+    out["quality_flags"] = np.zeros(n, dtype=np.uint16)
+    return out
+
+
+def _first_line(exc: BaseException) -> str:
+    """The first sentence of an error message (the rest goes to the log of the run, not the flags)."""
+    lines = str(exc).strip().splitlines()
+    text = lines[0] if lines else type(exc).__name__
+    return text.split(", so ")[0].split(". ")[0][:160]
+
+
+def _dff_rows(raw: np.ndarray, params: StageParams, reasons: list, flags: np.ndarray, rows: np.ndarray):
+    """ΔF/F of ``raw[rows]``; on an F0 failure, redo ROI by ROI to find (and flag) the bad ones."""
+    from ..signal import delta_f_over_f
+
+    try:
+        result = delta_f_over_f(raw[rows], params.frame_rate, **params.dff)
+        return rows, result.dff, result.f0
+    except ValueError:
+        pass
+    kept, dffs, f0s = [], [], []
+    for i in rows:
+        try:
+            result = delta_f_over_f(raw[i], params.frame_rate, **params.dff)
+        except ValueError as exc:
+            flags[i] |= FLAG_FAILED | (FLAG_F0 if "F0" in str(exc) else 0)
+            reasons[i].append(("F0 <= 0: " if "F0" in str(exc) else "ΔF/F failed: ") + _first_line(exc))
+            continue
+        kept.append(i)
+        dffs.append(result.dff)
+        f0s.append(result.f0)
+    if not kept:
+        return np.zeros(0, dtype=np.intp), None, None
+    return np.asarray(kept), np.vstack(dffs), np.vstack(f0s)
+
+
+def process_chunk(task: ChunkTask) -> dict:
+    """Run the per-chunk stages on rows ``task.start:task.stop``; return the results by dataset name.
+
+    Arrays have the chunk's ROIs as first axis; (rois, frames) results are
+    float32, counts uint16. Per-ROI failures are flagged, never raised.
+    """
+    params = task.params
+    raw = task.source.read_rows(task.start, task.stop)
+    n, n_frames = raw.shape
+    filtered = params.filter is not None
+    with_dff = params.dff is not None
+    out = _empty_results(n, n_frames, filtered, with_dff)
+    flags = out["quality_flags"]
+    reasons: list[list[str]] = [[] for _ in range(n)]
+
+    finite = np.isfinite(raw)
+    n_missing = n_frames - finite.sum(axis=1)
+    out["missing_frames"][:] = n_missing
+    too_many = n_missing > params.max_missing_fraction * n_frames
+    for i in np.flatnonzero(too_many):
+        flags[i] |= FLAG_MISSING
+        if n_missing[i] == n_frames:
+            flags[i] |= FLAG_FAILED
+            reasons[i].append("every frame is missing")
+        else:
+            reasons[i].append(f"{n_missing[i]} of {n_frames} frames missing ({n_missing[i] / n_frames:.0%})")
+    _saturation(raw, finite, params, out, flags, reasons)
+
+    usable = np.flatnonzero(n_missing < n_frames)
+    if with_dff:
+        rows, dff, f0 = _dff_rows(raw, params, reasons, flags, usable)
+    else:
+        rows, dff, f0 = usable, raw[usable], None
+    if rows.size and with_dff:
+        out["dff"][rows] = dff
+        out["f0"][rows] = f0
+        out["f0_min"][rows] = f0.min(axis=1)
+        floor = params.dff.get("floor")
+        if floor is not None:
+            for k, i in enumerate(rows):
+                clipped = int(np.count_nonzero(f0[k] <= floor))
+                if clipped:
+                    flags[i] |= FLAG_F0
+                    reasons[i].append(f"F0 clipped at the floor {floor:g} in {clipped} frames")
+    if rows.size:
+        signal = dff
+        if filtered:
+            signal = params.filter.apply(dff)
+            out["dff_filtered"][rows] = signal
+        noise = _noise_rows(signal, params, rows, reasons)
+        for k, i in enumerate(rows):
+            _infer_roi(signal[k], noise[k], i, params, out, flags, reasons)
+
+    out["flags"] = np.array(["; ".join(r) for r in reasons], dtype=object)
+    return out
+
+
+def _saturation(raw, finite, params: StageParams, out: dict, flags, reasons) -> None:
+    if params.saturation_frames <= 0:
+        return
+    for i in range(raw.shape[0]):
+        if not finite[i].any():
+            continue
+        top = np.max(raw[i][finite[i]])
+        count = int(np.count_nonzero(raw[i] == top))
+        out["saturated_frames"][i] = count
+        if count >= params.saturation_frames:
+            flags[i] |= FLAG_SATURATION
+            reasons[i].append(f"raw maximum {top:g} reached in {count} frames (saturation?)")
+
+
+def _noise_rows(signal: np.ndarray, params: StageParams, rows: np.ndarray, reasons: list) -> np.ndarray:
+    """Noise s.d. of each row (NaN where it cannot be estimated; the inference then estimates its own).
+
+    One call per ROI: a ROI's result must not depend on which other ROIs share its chunk (the batched
+    spectrum can differ in the last bit).
+    """
+    from ..signal import estimate_noise
+
+    noise = np.full(len(rows), np.nan)
+    for k, i in enumerate(rows):
+        try:
+            noise[k] = float(estimate_noise(signal[k], params.frame_rate, **params.noise))
+        except ValueError as exc:
+            reasons[i].append("noise not estimated: " + _first_line(exc))
+    return noise
+
+
+def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, out: dict, flags,
+               reasons) -> None:
+    from ..infer import infer_spikes
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # per-ROI trouble is reported through the flags instead
+            result = infer_spikes(trace, params.frame_rate, noise_sd=noise_sd if noise_sd > 0 else None,
+                                  **params.inference)
+    except (ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError) as exc:
+        flags[i] |= FLAG_FAILED
+        reasons[i].append("inference failed: " + _first_line(exc))
+        return
+    counts = np.asarray(result.spike_counts, dtype=np.int64)
+    out["activity"][i] = result.activity
+    out["denoised"][i] = result.denoised
+    out["spike_counts"][i] = np.clip(counts, 0, np.iinfo(np.uint16).max)
+    out["spike_time_offset_s"][i] = _time_offsets(np.asarray(result.spike_times), counts.size,
+                                                  params.frame_rate)
+    out["n_spikes"][i] = int(counts.sum())
+    out["baseline"][i] = float(result.baseline)
+    noise = float(result.noise_sd)
+    out["noise_sd"][i] = noise
+    out["penalty"][i] = float(result.penalty)
+    kernel = result.kernel
+    if kernel is not None:
+        out["kernel_rise_s"][i] = kernel.rise_s
+        out["kernel_decay_s"][i] = kernel.decay_s
+        out["kernel_amplitude"][i] = kernel.amplitude
+    out["converged"][i] = bool(result.converged)
+    if not result.converged:
+        flags[i] |= FLAG_NOT_CONVERGED
+        reasons[i].append("inference did not converge")
+    denoised = np.asarray(result.denoised, dtype=np.float64)
+    peak = float(np.max(denoised - result.baseline)) if np.isfinite(denoised).all() else np.nan
+    snr = peak / noise if noise > 0 and np.isfinite(peak) else np.nan
+    out["snr"][i] = snr
+    if not snr >= params.min_snr:
+        flags[i] |= FLAG_LOW_SNR
+        reasons[i].append(f"SNR {snr:.2g} below {params.min_snr:g}" if np.isfinite(snr) else
+                          "SNR undefined (no signal or no noise estimate)")
+
+
+def _time_offsets(times: np.ndarray, n_frames: int, frame_rate: float) -> np.ndarray:
+    """Mean of (t - k / frame_rate) over the spikes counted in frame k = round(t * frame_rate)."""
+    offsets = np.zeros(n_frames)
+    if times.size:
+        frames = np.clip(np.round(times * frame_rate).astype(np.int64), 0, n_frames - 1)
+        total = np.bincount(frames, weights=times - frames / frame_rate, minlength=n_frames)
+        number = np.bincount(frames, minlength=n_frames)
+        np.divide(total, number, out=offsets, where=number > 0)
+    return offsets
+
+
+# ---------------------------------------------------------------------------
+# after the chunks, in the parent: ROIs with electrically recorded spikes
+# ---------------------------------------------------------------------------
+_FIT_FIELDS = (("rise_s", "s", "rise time constant of the fitted kernel"),
+               ("decay_s", "s", "decay time constant of the fitted kernel"),
+               ("amplitude", "ΔF/F", "peak ΔF/F of one spike in the fitted kernel"),
+               ("half_rise_s", "s", "time from the spike to half the peak, fitted kernel"),
+               ("half_decay_s", "s", "time from the peak to half the peak, fitted kernel"),
+               ("time_to_peak_s", "s", "time from the spike to the peak, fitted kernel"),
+               ("lag_s", "s", "clock offset to add to the electrical spike times"),
+               ("r_squared", "", "fraction of the ΔF/F variance explained by the fit"),
+               ("half_decay_low_s", "s", "lower end of the bootstrap interval of half_decay_s"),
+               ("half_decay_high_s", "s", "upper end of the bootstrap interval of half_decay_s"))
+_SCORE_FIELDS = (("precision", "", "fraction of inferred spikes matched to an electrical spike"),
+                 ("recall", "", "fraction of electrical spikes matched by an inferred spike"),
+                 ("f1", "", "harmonic mean of precision and recall"),
+                 ("timing_error_mean_s", "s", "mean of t_inferred - t_electrical over matched pairs"),
+                 ("timing_error_sd_s", "s", "s.d. of t_inferred - t_electrical over matched pairs"),
+                 ("van_rossum", "", "van Rossum distance between the trains"))
+_SCORE_COUNTS = (("n_true", "electrical spikes"), ("n_inferred", "inferred spikes"),
+                 ("n_matched", "matched pairs"))
+
+
+def electrical_datasets(n_electrical: int, n_bins: int) -> list[DatasetSpec]:
+    """Layout of the ``electrical/`` group (one row per ROI with electrical spikes)."""
+    if n_electrical == 0:
+        return []
+    one = (n_electrical,)
+    specs = [DatasetSpec("electrical/roi", one, "i8", "ROI index of each row", per_roi=False)]
+    specs += [DatasetSpec(f"electrical/fit_{name}", one, "f8", text, unit, per_roi=False, fill=np.nan)
+              for name, unit, text in _FIT_FIELDS]
+    specs += [DatasetSpec("electrical/fit_n_isolated", one, "i8", "isolated spikes used by the fit", "spikes",
+                          per_roi=False, fill=0),
+              DatasetSpec("electrical/kinetics_ok", one, "u1", "1 if the fitted kinetics lie within the reference "
+                          "range of inference.indicator (0 if outside or not checked)", per_roi=False, fill=0)]
+    specs += [DatasetSpec(f"electrical/score_{name}", one, "f8", text, unit, per_roi=False, fill=np.nan)
+              for name, unit, text in _SCORE_FIELDS]
+    specs += [DatasetSpec(f"electrical/score_{name}", one, "i8", text, "spikes", per_roi=False, fill=0)
+              for name, text in _SCORE_COUNTS]
+    specs += [
+        DatasetSpec("electrical/score_correlation", (n_electrical, n_bins), "f8",
+                    "Pearson correlation of binned spike counts, one column per bin width", per_roi=False,
+                    fill=np.nan),
+        DatasetSpec("electrical/bin_widths_s", (n_bins,), "f8", "bin widths of score_correlation", "s",
+                    per_roi=False),
+        DatasetSpec("electrical/note", one, f"text{FLAG_TEXT_BYTES}",
+                    "kinetics outside the reference range, or why a fit or score is missing ('' = fine)",
+                    per_roi=False),
+    ]
+    return specs
+
+
+def inferred_spike_times(counts: np.ndarray, offsets_s: np.ndarray, frame_rate: float) -> np.ndarray:
+    """Spike times (s) of one ROI from its results: k / frame_rate + offset, repeated count times, sorted."""
+    frames = np.flatnonzero(counts)
+    times = frames / frame_rate + np.asarray(offsets_s, dtype=np.float64)[frames]
+    return np.repeat(np.maximum(times, 0.0), np.asarray(counts)[frames].astype(np.int64))
+
+
+def _fit_values(result) -> dict:
+    kernel = result.kernel
+    values = {name: float(getattr(kernel, name)) for name in
+              ("rise_s", "decay_s", "amplitude", "half_rise_s", "half_decay_s", "time_to_peak_s")}
+    values["lag_s"] = float(result.lag_s)
+    values["r_squared"] = float(result.r_squared)
+    if result.confidence is not None:
+        values["half_decay_low_s"], values["half_decay_high_s"] = map(float, result.confidence.half_decay_s)
+    return values
+
+
+def electrical_step(store, electrical: dict, frame_rate: float, n_frames: int, *, fit_options: dict, scoring,
+                    indicator=None, progress=False) -> None:
+    """Kernel fit and scoring of every ROI with electrical spikes; written to ``electrical/``.
+
+    ``fit_options`` are keyword arguments of :func:`calcium.fit.fit_kernel`;
+    the fitted kinetics are checked against ``indicator`` (if given) with
+    :func:`calcium.fit.check_kinetics`. A ROI whose fit or score fails gets
+    NaN and a note; the others are unaffected.
+    """
+    from ..fit import check_kinetics, fit_kernel
+    from ..score import score_spikes
+    from .executors import progress_bar
+
+    rois = sorted(electrical)
+    bar = progress_bar("kernel fit + scoring" if progress else False, total=len(rois), unit="ROI")
+    duration_s = n_frames / frame_rate
+    fit = {name: np.full(len(rois), np.nan) for name, _, _ in _FIT_FIELDS}
+    n_isolated = np.zeros(len(rois), dtype=np.int64)
+    kinetics_ok = np.zeros(len(rois), dtype=np.uint8)
+    score = {name: np.full(len(rois), np.nan) for name, _, _ in _SCORE_FIELDS}
+    counts = {name: np.zeros(len(rois), dtype=np.int64) for name, _ in _SCORE_COUNTS}
+    correlation = np.full((len(rois), len(scoring.bin_widths_s)), np.nan)
+    notes = [[] for _ in rois]
+    for row, roi in enumerate(rois):
+        true_times = np.asarray(electrical[roi], dtype=np.float64)
+        dff = store.read("dff", roi).astype(np.float64)
+        inferred = inferred_spike_times(store.read("spike_counts", roi), store.read("spike_time_offset_s", roi),
+                                        frame_rate)
+        if store.read("quality_flags", roi) & FLAG_FAILED:
+            notes[row].append("ROI failed in the per-ROI stages (see flags)")
+        else:
+            try:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    result = fit_kernel(dff, true_times, frame_rate, **fit_options)
+                for name, value in _fit_values(result).items():
+                    fit[name][row] = value
+                n_isolated[row] = int(result.n_isolated)
+                if indicator is not None:
+                    check = check_kinetics(result, indicator)
+                    kinetics_ok[row] = bool(check.ok)
+                    if not check.ok:
+                        outside = [r.quantity for r in check.rows if not r.ok]
+                        notes[row].append(f"kinetics outside the {check.indicator} range: " + ", ".join(outside))
+            except (ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError) as exc:
+                notes[row].append("kernel fit failed: " + _first_line(exc))
+            try:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    result = score_spikes(inferred, true_times, tolerance_s=scoring.tolerance_s,
+                                          bin_widths_s=scoring.bin_widths_s, duration_s=duration_s,
+                                          van_rossum_tau_s=scoring.van_rossum_tau_s)
+                for name, _, _ in _SCORE_FIELDS:
+                    score[name][row] = float(getattr(result, name))
+                for name, _ in _SCORE_COUNTS:
+                    counts[name][row] = int(getattr(result, name))
+                correlation[row] = [r for _, r in result.correlations]
+            except (ValueError, ArithmeticError) as exc:
+                notes[row].append("scoring failed: " + _first_line(exc))
+        if bar is not None:
+            bar.update(1)
+    if bar is not None:
+        bar.close()
+    store.write_rows("electrical/roi", (), np.asarray(rois, dtype=np.int64))
+    for name, values in fit.items():
+        store.write_rows(f"electrical/fit_{name}", (), values)
+    store.write_rows("electrical/fit_n_isolated", (), n_isolated)
+    store.write_rows("electrical/kinetics_ok", (), kinetics_ok)
+    for name, values in score.items():
+        store.write_rows(f"electrical/score_{name}", (), values)
+    for name, values in counts.items():
+        store.write_rows(f"electrical/score_{name}", (), values)
+    store.write_rows("electrical/score_correlation", (), correlation)
+    store.write_rows("electrical/bin_widths_s", (), np.asarray(scoring.bin_widths_s, dtype=np.float64))
+    store.write_rows("electrical/note", (), np.array(["; ".join(n) for n in notes], dtype=object))
+    store.set_flag("electrical")

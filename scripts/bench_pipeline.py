@@ -1,0 +1,232 @@
+"""Benchmark of the whole-session pipeline, end to end (read -> ΔF/F -> inference -> results file).
+
+Runs the same session (a synthetic recording written as float32 .npy) with the three backends, in this order:
+  serial (the reference), processes with --workers workers, dask with a --workers-worker local cluster,
+and prints for each: wall time, throughput in million ROI-frames per second, and the peak memory summed over
+the parent and all its child processes (proportional set size, sampled every 50 ms with psutil). Then the ratios measured in this run:
+  speed-up of processes over serial                         (target >= 1.8 with 2 workers)
+  overhead of the local dask cluster over processes         (target <= 15 %)
+  throughput of processes on this machine                   (target >= 5 million frames/s on 2 cores)
+and whether the three results files hold identical arrays. The reference for the pipeline's own overhead is
+the stage functions called directly on a sample of ROIs in memory (serial pipeline / reference). The report and
+the NWB export are off in the timed runs; pass --report to time the report once at the end.
+
+Usage: python scripts/bench_pipeline.py [--rois 2000] [--frames 36000] [--frame-rate 30] [--workers 2]
+                                        [--indicator NAME] [--skip-serial] [--skip-dask] [--report] [--keep FOLDER]
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+
+TARGETS = {"speed-up": 1.8, "dask overhead": 0.15, "throughput": 5e6}
+
+
+class PeakMemory:
+    """Peak of the summed resident memory of this process and all its descendants (psutil, sampled)."""
+
+    def __init__(self, interval_s: float = 0.05):
+        import psutil
+
+        self._psutil = psutil
+        self.interval_s = interval_s
+        self.peak = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _sample(self) -> int:
+        # PSS (proportional set size) where the system reports it: pages shared between the parent, the
+        # process server and the workers (libraries, copy-on-write) are then counted once, not per process.
+        me = self._psutil.Process()
+        total = 0
+        for process in [me, *me.children(recursive=True)]:
+            try:
+                info = process.memory_full_info()
+                total += getattr(info, "pss", info.rss)
+            except (self._psutil.NoSuchProcess, self._psutil.AccessDenied):
+                pass
+        return total
+
+    def _run(self):
+        while not self._stop.is_set():
+            self.peak = max(self.peak, self._sample())
+            self._stop.wait(self.interval_s)
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, self._sample())
+        return False
+
+
+def synthetic_session(path: Path, rois: int, frames: int, frame_rate: float, seed: int = 0) -> None:
+    """Baseline 100 with slow bleaching, Poisson spikes (0.5 Hz) through a 0.1/1.0 s kernel, Gaussian noise.
+
+    Written row block by row block into a memory-mapped float32 .npy, so a large session never sits in memory.
+    """
+    from calcium.kernel import Kernel
+
+    rng = np.random.default_rng(seed)
+    out = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32, shape=(rois, frames))
+    kernel = Kernel(0.1, 1.0, 0.3).impulse_response(frame_rate, int(8 * frame_rate))
+    t = np.arange(frames) / frame_rate
+    bleaching = 1.0 - 0.2 * (1.0 - np.exp(-t / 900.0))
+    block = max(1, (1 << 22) // frames)
+    for start in range(0, rois, block):
+        stop = min(rois, start + block)
+        spikes = (rng.random((stop - start, frames)) < 0.5 / frame_rate).astype(np.float64)
+        dff = np.array([np.convolve(row, kernel)[:frames] for row in spikes])
+        noise = rng.normal(0.0, 0.03, dff.shape)
+        out[start:stop] = (100.0 * bleaching * (1.0 + dff + noise)).astype(np.float32)
+    out.flush()
+    del out
+
+
+def science_per_roi(traces: Path, frame_rate: float, n_sample: int, indicator=None) -> float:
+    """Seconds per ROI of the stage functions alone (ΔF/F, noise, inference), in this process, no files.
+
+    The reference for the pipeline's own overhead: the same calls the pipeline makes for each ROI, on a
+    sample of rows already in memory.
+    """
+    from calcium.infer import infer_spikes
+    from calcium.signal import delta_f_over_f, estimate_noise
+
+    rows = np.asarray(np.load(traces, mmap_mode="r")[:n_sample], dtype=np.float64)
+    start = time.perf_counter()
+    dff = delta_f_over_f(rows, frame_rate).dff
+    for trace in dff:
+        infer_spikes(trace, frame_rate, noise_sd=estimate_noise(trace, frame_rate), indicator=indicator)
+    return (time.perf_counter() - start) / n_sample
+
+
+def run_once(folder: Path, traces: Path, frame_rate: float, backend: str, workers: int, report: bool,
+             indicator=None):
+    from calcium.pipeline import config_from_dict, run_pipeline
+
+    config = config_from_dict({
+        "inputs": {"traces": str(traces), "frame_rate": frame_rate},
+        "inference": {} if indicator is None else {"indicator": indicator},
+        "output": {"folder": str(folder)},
+        "report": {"enabled": report},
+        "execution": {"backend": backend, "workers": workers},
+    })
+    with PeakMemory() as memory:
+        start = time.perf_counter()
+        summary = run_pipeline(config, progress=False)
+        elapsed = time.perf_counter() - start
+    return summary, elapsed, memory.peak
+
+
+def same_results(a: Path, b: Path) -> bool:
+    from calcium.pipeline import open_results
+
+    with open_results(a) as x, open_results(b) as y:
+        names = [n for n in x.names() if not n.startswith("progress/finished")]
+        if sorted(names) != sorted(n for n in y.names() if not n.startswith("progress/finished")):
+            return False
+        for name in names:
+            dataset = x.dataset(name)
+            step = max(1, (1 << 24) // max(1, int(np.prod(dataset.shape[1:], dtype=np.int64))))
+            for start in range(0, max(1, dataset.shape[0] if dataset.shape else 1), step):
+                part = np.s_[start:start + step] if dataset.shape else ()
+                if not np.array_equal(x.read(name, part), y.read(name, part),
+                                      equal_nan=x.read(name, part).dtype.kind == "f"):
+                    return False
+    return True
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--rois", type=int, default=2000)
+    parser.add_argument("--frames", type=int, default=36000)
+    parser.add_argument("--frame-rate", type=float, default=30.0)
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--skip-serial", action="store_true", help="no serial run (no speed-up figure)")
+    parser.add_argument("--skip-dask", action="store_true", help="no dask run")
+    parser.add_argument("--report", action="store_true", help="also time the HTML report (processes run)")
+    parser.add_argument("--indicator", help="infer with this indicator's published kernel instead of estimating "
+                                            "the kinetics of every ROI (e.g. GCaMP6s)")
+    parser.add_argument("--keep", type=Path, help="work in this folder and keep it")
+    args = parser.parse_args(argv)
+
+    root = args.keep or Path(tempfile.mkdtemp(prefix="bench_pipeline_"))
+    root.mkdir(parents=True, exist_ok=True)
+    try:
+        traces = root / "traces.npy"
+        print(f"session: {args.rois} ROIs x {args.frames} frames at {args.frame_rate:g} Hz "
+              f"({args.rois * args.frames / 1e6:.1f} million ROI-frames, "
+              f"{args.frames / args.frame_rate / 60:.1f} min); {os.cpu_count()} CPU(s)")
+        start = time.perf_counter()
+        synthetic_session(traces, args.rois, args.frames, args.frame_rate)
+        print(f"synthetic input written in {time.perf_counter() - start:.1f} s ({traces.stat().st_size / 1e6:.0f} MB)")
+        # One tiny run first so that numba's compiled kernels are in the on-disk cache for every backend.
+        warm = root / "warm.npy"
+        np.save(warm, np.load(traces, mmap_mode="r")[:2, : min(args.frames, 3000)])
+        run_once(root / "out-warm", warm, args.frame_rate, "serial", 1, False)
+
+        n_sample = min(args.rois, 100)
+        per_roi = science_per_roi(traces, args.frame_rate, n_sample, args.indicator)
+        print(f"reference: the stage functions alone (ΔF/F, noise, inference; {n_sample} ROIs in memory, one "
+              f"process): {per_roi * 1e3:.1f} ms per ROI = {args.frames / per_roi / 1e6:.2f} million frames/s")
+
+        backends = ([] if args.skip_serial else [("serial", 1)]) + [("processes", args.workers)] + \
+                   ([] if args.skip_dask else [("dask", args.workers)])
+        timings = {}
+        print(f"\n{'backend':<10} {'workers':>7} {'wall (s)':>9} {'Mframes/s':>10} {'peak memory (MB)':>17}")
+        for backend, workers in backends:
+            summary, elapsed, peak = run_once(root / f"out-{backend}", traces, args.frame_rate, backend, workers,
+                                              False, args.indicator)
+            rate = args.rois * args.frames / elapsed
+            timings[backend] = elapsed
+            print(f"{backend:<10} {summary.workers:>7} {elapsed:>9.2f} {rate / 1e6:>10.2f} {peak / 2**20:>17.0f}",
+                  flush=True)
+
+        print()
+        if "serial" in timings:
+            print(f"serial pipeline / stage functions alone: {timings['serial'] / (per_roi * args.rois):.2f}x "
+                  f"(the pipeline's own cost: reading, writing, flags, provenance)")
+        if "serial" in timings:
+            speedup = timings["serial"] / timings["processes"]
+            print(f"speed-up processes/serial ({args.workers} workers): {speedup:.2f}x "
+                  f"(target >= {TARGETS['speed-up']}x) -> {'met' if speedup >= TARGETS['speed-up'] else 'NOT met'}")
+        if "dask" in timings:
+            overhead = timings["dask"] / timings["processes"] - 1.0
+            print(f"dask local-cluster overhead over processes: {overhead:+.1%} "
+                  f"(target <= {TARGETS['dask overhead']:.0%}) -> "
+                  f"{'met' if overhead <= TARGETS['dask overhead'] else 'NOT met'}")
+        throughput = args.rois * args.frames / timings["processes"]
+        print(f"throughput (processes): {throughput / 1e6:.2f} million frames/s "
+              f"(target >= {TARGETS['throughput'] / 1e6:g} on 2 cores) -> "
+              f"{'met' if throughput >= TARGETS['throughput'] else 'NOT met'}")
+        names = list(timings)
+        identical = all(same_results(root / f"out-{names[0]}" / "results.h5", root / f"out-{n}" / "results.h5")
+                        for n in names[1:])
+        print(f"results identical across backends: {identical}")
+        if args.report:
+            from calcium.pipeline import write_session_report
+
+            with PeakMemory() as memory:
+                start = time.perf_counter()
+                write_session_report(root / "out-processes" / "results.h5", root / "report")
+                elapsed = time.perf_counter() - start
+            print(f"HTML report: {elapsed:.1f} s, peak memory {memory.peak / 2**20:.0f} MB")
+        return 0
+    finally:
+        if args.keep is None:
+            shutil.rmtree(root, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
