@@ -24,10 +24,11 @@ class CommandError(Exception):
 
 # --------------------------------------------------------------------------- helpers
 
-def _fail(path, exc) -> CommandError:
-    """Wrap an exception from reading ``path`` so the message names the file once."""
+def _fail(path, exc, *, also=()) -> CommandError:
+    """Wrap an exception so the message names the file once (``path``, unless it names one of ``also``)."""
     msg = str(exc) or exc.__class__.__name__
-    if path is not None and str(path) not in msg:
+    named = [str(p) for p in (path, *also) if p is not None]
+    if named and not any(Path(n).name in msg for n in named):
         msg = f"{path}: {msg}"
     return CommandError(msg)
 
@@ -295,8 +296,8 @@ def cmd_infer(args):
     try:
         summary = infer_file(args.input, args.out, frame_rate=rate, kernel=kernel, dataset=args.dataset,
                              workers=args.workers, overwrite=args.overwrite, progress=_progress(args))
-    except ValueError as exc:
-        raise _fail(args.input, exc) from exc
+    except (ValueError, OSError) as exc:
+        raise _fail(args.input, exc, also=(args.out,)) from exc
     _say(args, str(summary))
 
 
@@ -421,6 +422,37 @@ def cmd_run(args):
     except ValueError as exc:
         raise _fail(args.config, exc) from exc
     _say(args, str(summary))
+
+
+def cmd_report(args):
+    from calcium.io import read_spike_times
+    from calcium.pipeline import write_session_report
+    out = Path(args.out)
+    if (out / "index.html").exists() and not args.overwrite:
+        raise CommandError(f"{out}: already holds a report; pass --overwrite to replace it")
+    spikes = None
+    if args.electrical_spikes:
+        try:
+            spikes = read_spike_times(args.electrical_spikes)
+        except (ValueError, OSError) as exc:
+            raise _fail(args.electrical_spikes, exc) from exc
+    try:
+        index = write_session_report(args.results, out, electrical_spikes=spikes, indicator=args.indicator,
+                                     progress=_progress(args))
+    except (ValueError, OSError) as exc:
+        raise _fail(args.results, exc, also=(out,)) from exc
+    _say(args, f"report written: {index}")
+
+
+def cmd_export_nwb(args):
+    from calcium.io.nwb import export_nwb
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.results,))
+    try:
+        path = export_nwb(args.results, out, session_description=args.description, session_start=args.session_start,
+                          indicator=args.indicator)
+    except (ValueError, OSError, ImportError) as exc:
+        raise _fail(args.results, exc, also=(out,)) from exc
+    _say(args, f"NWB file written: {path}")
 
 
 # --------------------------------------------------------------------------- parser
@@ -550,6 +582,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--false-positive-rate", type=float, default=0.01)
     p.add_argument("--seed", type=int, default=0)
     output(p, required=False, help_text="folder for the table and figure")
+
+    p = add("report", cmd_report, "write the HTML report of a results file (from `calcium run` or `calcium infer`)")
+    p.add_argument("results", help="results HDF5 file")
+    p.add_argument("--out", default="calcium-report", help="report folder (default: ./calcium-report)")
+    p.add_argument("--electrical-spikes", help="spike CSV of electrically recorded cells, for the comparison")
+    p.add_argument("--indicator", help="indicator whose published kinetics frame the fitted ones")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing report")
+
+    p = add("export-nwb", cmd_export_nwb, "export a results file to NWB (needs the optional extra `nwb`)")
+    p.add_argument("results", help="results HDF5 file")
+    p.add_argument("--description", default="calcium imaging session", help="NWB session description")
+    p.add_argument("--session-start", help="session start time, ISO 8601 (default: the results' creation time)")
+    p.add_argument("--indicator", help="indicator name recorded in the NWB imaging plane")
+    output(p, help_text="output .nwb file")
 
     p = add("init", cmd_init, "write a commented pipeline configuration (TOML)")
     p.add_argument("path", nargs="?", default="calcium.toml")

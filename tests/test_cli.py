@@ -13,7 +13,7 @@ from calcium.cli import build_parser, main
 from calcium.io import read_hdf5, read_spike_times, read_traces, write_spike_table, write_traces
 
 COMMANDS = ["demo", "extract", "dff", "filter", "noise", "indicators", "simulate", "predict", "infer",
-            "fit-kernel", "score", "plan", "init", "run"]
+            "fit-kernel", "score", "plan", "init", "run", "report", "export-nwb"]
 
 
 @pytest.mark.parametrize("command", COMMANDS)
@@ -201,3 +201,57 @@ def test_fit_kernel_command_names_a_roi_without_spikes(tmp_path, capsys):
 def test_plan_command_refuses_two_noise_specifications(capsys):
     assert main(["plan", "--noise-sd", "0.1", "--photons", "100"]) == 1
     assert "either --noise-sd or --photons" in capsys.readouterr().err
+
+
+def _simulated_dff(tmp_path, n_rois=3, seconds=40.0, rate=30.0):
+    kernel = calcium.Kernel.from_indicator("GCaMP6s")
+    sim = calcium.simulate_recording(n_rois, seconds, rate, kernel=kernel, rate_hz=0.5,
+                                     noise_sd=kernel.amplitude / 5, seed=11)
+    path = tmp_path / "dff.h5"
+    write_traces(path, sim.dff, frame_rate=rate)
+    return path, sim
+
+
+def test_infer_command_equals_infer_spikes_and_resumes(tmp_path, capsys):
+    path, sim = _simulated_dff(tmp_path)
+    out = tmp_path / "inferred.h5"
+    args = ["infer", str(path), "--indicator", "GCaMP6s", "--out", str(out), "--workers", "1", "--quiet"]
+    assert main(args) == 0
+    datasets, _ = read_hdf5(out)
+    direct = calcium.infer_spikes(sim.dff[1], 30.0, indicator="GCaMP6s")
+    np.testing.assert_array_equal(datasets["spike_counts"][1], direct.spike_counts)
+    table = read_spike_times(out.with_suffix(".csv"))
+    assert table[1].size == direct.spike_counts.sum()
+    # rerun: everything is done, output unchanged; other parameters: refused without --overwrite
+    before = out.read_bytes()
+    assert main(args) == 0
+    assert out.read_bytes() == before
+    assert main(["infer", str(path), "--indicator", "GCaMP6f", "--out", str(out), "--quiet"]) == 1
+    assert "--overwrite" in capsys.readouterr().err
+
+
+def test_init_then_run_then_report_and_nwb(tmp_path):
+    path, sim = _simulated_dff(tmp_path, n_rois=2, seconds=20.0)
+    config = tmp_path / "session.toml"
+    assert main(["init", str(config), "--quiet"]) == 0
+    assert main(["init", str(config), "--quiet"]) == 1  # never overwritten
+    text = config.read_text()
+    assert "[inputs]" in text and "[inference]" in text
+    from calcium.pipeline import config_from_dict, load_config
+    loaded = load_config(config)
+    assert loaded.dff.window_s > 0
+    # the raw traces of the simulation as input, serial backend, in the temporary folder
+    raw = tmp_path / "raw.h5"
+    write_traces(raw, sim.raw, frame_rate=30.0)
+    cfg = config_from_dict({"inputs": {"traces": str(raw)}, "output": {"folder": str(tmp_path / "run")},
+                            "execution": {"backend": "serial"}, "dff": {"window_s": 10.0}})
+    summary = calcium.run_pipeline(cfg, progress=False)
+    assert summary.n_rois == 2
+    report = tmp_path / "again"
+    assert main(["report", str(summary.results_path), "--out", str(report), "--quiet"]) == 0
+    assert (report / "index.html").exists()
+    nwb = tmp_path / "session.nwb"
+    assert main(["export-nwb", str(summary.results_path), "--out", str(nwb), "--quiet"]) == 0
+    from calcium.io.nwb import read_nwb_traces
+    traces, rate = read_nwb_traces(nwb, series="ophys/DfOverF/dff")
+    assert rate == 30.0 and traces.shape[0] == 2
