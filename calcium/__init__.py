@@ -22,13 +22,18 @@ _EXPORTS = {
     "calcium.kernel": ["Kernel", "time_constants_from_half_times"],
     "calcium.indicators": ["INDICATORS", "IndicatorKinetics", "get_indicator", "indicator_names"],
     "calcium.forward": ["predict_fluorescence", "simulate_recording", "SimulatedRecording"],
+    "calcium.io.nwb": ["export_nwb", "read_nwb_traces"],
     "calcium.infer": ["deconvolve_ar", "ARDeconvolution", "deconvolve_convex", "ConvexDeconvolution",
-                      "estimate_ar_coefficients", "infer_spikes", "infer_spikes_many", "SpikeInference"],
-    "calcium.fit": ["fit_kernel", "KernelFit", "check_kinetics", "KineticsCheck"],
+                      "estimate_ar_coefficients", "penalty_for_noise", "infer_spikes", "infer_spikes_many",
+                      "SpikeInference"],
+    "calcium.fit": ["fit_kernel", "KernelFit", "KernelIntervals", "check_kinetics", "KineticsCheck"],
     "calcium.score": ["score_spikes", "score_many", "SpikeScore", "ScoreTable", "match_spikes",
                       "van_rossum_distance"],
     "calcium.plan": ["plan_detectability", "DetectabilityPlan"],
-    "calcium.pipeline": ["run_pipeline", "write_config_template", "load_config", "infer_file"],
+    "calcium.pipeline": ["run_pipeline", "write_config_template", "load_config", "infer_file", "RunConfig",
+                         "RunSummary", "ConfigError", "OutputError", "open_results", "read_results",
+                         "write_session_report"],
+    "calcium.report": ["HtmlReport"],
 }
 _WHERE = {name: module for module, names in _EXPORTS.items() for name in names}
 

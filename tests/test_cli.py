@@ -255,3 +255,9 @@ def test_init_then_run_then_report_and_nwb(tmp_path):
     from calcium.io.nwb import read_nwb_traces
     traces, rate = read_nwb_traces(nwb, series="ophys/DfOverF/dff")
     assert rate == 30.0 and traces.shape[0] == 2
+
+
+def test_every_public_name_resolves():
+    # the lazy top-level API must not list a name its module lacks
+    for name in calcium.__all__:
+        assert getattr(calcium, name) is not None, name
