@@ -173,6 +173,13 @@ def test_report_has_every_figure_and_a_row_per_roi(session):
     assert "every frame is missing" in html
 
 
+def test_report_opens_in_a_browser_with_every_image_loaded(session, browse, tmp_path):
+    # the page counts, on <body>, the images whose naturalWidth > 0 once the window has loaded
+    seen = browse(session["summary"].report_path, tmp_path / "profile")
+    assert int(seen["images-total"]) >= 6
+    assert seen["images-loaded"] == seen["images-total"]
+
+
 def test_nwb_export_holds_the_dff_of_the_results(session):
     pytest.importorskip("pynwb")
     from calcium.io.nwb import read_nwb_traces

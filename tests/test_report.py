@@ -4,7 +4,6 @@ from __future__ import annotations
 import html
 import itertools
 import re
-import shutil
 import subprocess
 import sys
 from datetime import datetime, timedelta, timezone
@@ -571,37 +570,15 @@ window.addEventListener("load", function () {
 </body>"""
 
 
-def _chromium() -> str | None:
-    for name in ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable"):
-        found = shutil.which(name)
-        if found:
-            return found
-    return None
-
-
-def _browse(page: Path, profile: Path) -> dict:
-    """Open ``page`` in headless Chromium; return the data-* attributes of <body> after load."""
-    binary = _chromium()
-    if binary is None:
-        pytest.skip("no Chromium binary found (install the Debian packages chromium and chromium-driver)")
-    command = [binary, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-               "--disable-background-networking", "--disable-component-update", "--disable-sync",
-               f"--user-data-dir={profile}", "--virtual-time-budget=5000", "--dump-dom", page.as_uri()]
-    done = subprocess.run(command, capture_output=True, text=True, timeout=90)
-    body = re.search(r"<body([^>]*)>", done.stdout)
-    assert body, f"Chromium printed no page (exit {done.returncode}): {done.stderr[-2000:]}"
-    return {k: html.unescape(v) for k, v in re.findall(r'data-([a-z-]+)="([^"]*)"', body.group(1))}
-
-
 def _probe_copy(page: Path) -> Path:
     probe = page.with_name("probe.html")
     probe.write_text(page.read_text(encoding="utf-8").replace("</body>", _PROBE), encoding="utf-8")
     return probe
 
 
-def test_browser_loads_every_image_and_sorts_numbers_numerically(tmp_path):
+def test_browser_loads_every_image_and_sorts_numbers_numerically(tmp_path, browse):
     page = _example_report(tmp_path).write(tmp_path / "report")
-    seen = _browse(_probe_copy(page), tmp_path / "profile")
+    seen = browse(_probe_copy(page), tmp_path / "profile")
     assert seen["images-total"] == "3"
     assert seen["images-loaded"] == "3"
     # numbers by value (a text sort would put 10 before 9 and 100.5 before 9); empty (NaN) cells last
@@ -610,8 +587,8 @@ def test_browser_loads_every_image_and_sorts_numbers_numerically(tmp_path):
     assert seen["text"] == "a|b|c|d|e|f|ROI 1"  # text columns sort as text
 
 
-def test_browser_page_reports_images_that_cannot_be_shown(tmp_path):
+def test_browser_page_reports_images_that_cannot_be_shown(tmp_path, browse):
     page = _example_report(tmp_path).write(tmp_path / "report")
     (page.parent / "figures" / "noise.png").unlink()
-    seen = _browse(_probe_copy(page), tmp_path / "profile")
+    seen = browse(_probe_copy(page), tmp_path / "profile")
     assert (seen["images-loaded"], seen["images-total"]) == ("2", "3")
