@@ -123,3 +123,13 @@ def test_same_seed_gives_the_same_plan():
 def test_bad_arguments_are_named(kwargs, match):
     with pytest.raises(ValueError, match=match):
         plan_detectability(**kwargs)
+
+
+def test_more_noise_never_resolves_shorter_intervals():
+    # Common practice: noise can only blur two nearby spikes together; with the split threshold calibrated on
+    # single spikes, extra noise must not make a pair look more resolvable (a single spike split by noise
+    # would otherwise pass for two).
+    plan = plan_detectability(indicator="GCaMP6s", frame_rates=(20.0, 40.0), noise_sd=(0.03, 0.09),
+                              n_trials=80, intervals_s=(0.035, 0.05, 0.075, 0.1, 0.15, 0.25, 0.5), seed=1)
+    quiet, noisy = plan.shortest_resolved_interval_s[:, 0], plan.shortest_resolved_interval_s[:, 1]
+    assert np.all(np.nan_to_num(noisy, nan=np.inf) >= quiet)
