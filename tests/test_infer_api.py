@@ -123,6 +123,16 @@ def test_many_traces_give_the_single_trace_results(recording):
         np.testing.assert_array_equal(many[i].spike_times, single.spike_times)
 
 
+def test_a_call_does_not_depend_on_the_calls_before_it(recording):
+    # reference: determinism (common practice): the scratch space reused between calls carries nothing over
+    fresh = infer_spikes(recording.dff[1], 30.0)
+    infer_spikes(recording.dff[0], 30.0, indicator="GCaMP6s")
+    again = infer_spikes(recording.dff[1], 30.0)
+    np.testing.assert_array_equal(fresh.spike_times, again.spike_times)
+    np.testing.assert_array_equal(fresh.activity, again.activity)
+    assert fresh.objective == again.objective and fresh.baseline == again.baseline
+
+
 def test_bad_input_raises_value_errors():
     y = np.zeros(100)
     with pytest.raises(ValueError, match="at least 3"):

@@ -74,6 +74,20 @@ def test_fast_solver_reaches_the_cvxpy_optimum(order, weighted, baseline):
 
 @pytest.mark.parametrize("order", [1, 2])
 @pytest.mark.parametrize("baseline", [0.2, "fit"])
+def test_leading_frames_of_weight_zero_still_give_the_cvxpy_optimum(order, baseline):
+    # reference: cvxpy + CLARABEL on the identical problem; the first pool then has no weight at all (A = 0)
+    rng, y, g = random_problem(70 + order, order, T=120)
+    y[3:8] -= 0.6  # the first weighted frames lie below the baseline: no spike may start there
+    weights = rng.uniform(0.3, 2.0, y.size)
+    weights[:3] = 0.0
+    result = deconvolve_ar(y, g, penalty=0.4, baseline=baseline, weights=weights)
+    _, _, value = cvxpy_solution(y, g, 0.4, baseline, weights)
+    assert result.converged
+    assert abs(result.objective - value) <= 1e-7 * abs(value)
+
+
+@pytest.mark.parametrize("order", [1, 2])
+@pytest.mark.parametrize("baseline", [0.2, "fit"])
 def test_kkt_conditions_hold_at_the_solution(order, baseline):
     # reference: KKT conditions (Boyd & Vandenberghe 2004, 5.5.3) for
     # min 1/2 |W^1/2 (y - b - K s)|^2 + lam 1's, s >= 0:
@@ -98,11 +112,15 @@ def test_kkt_conditions_hold_at_the_solution(order, baseline):
 @pytest.mark.parametrize("order", [1, 2])
 @pytest.mark.parametrize("baseline", [0.0, "fit"])
 @pytest.mark.parametrize("min_spike", [0.0, 0.4])
-def test_plain_python_reference_agrees_with_numba(order, baseline, min_spike):
-    # reference: the same algorithm written in plain Python (calcium.infer.ar.reference_deconvolve_ar)
+@pytest.mark.parametrize("weighted", [True, False])
+def test_plain_python_reference_agrees_with_numba(order, baseline, min_spike, weighted):
+    # reference: the same algorithm written in plain Python (calcium.infer.ar.reference_deconvolve_ar); unit
+    # weights take the numba kernels' unit-weight paths (pool sums from tables, a specialised AR(2) pass)
     rng, y, g = random_problem(40 + order, order, T=70)
-    weights = rng.uniform(0.5, 1.5, y.size)
-    weights[[10, 33]] = 0.0
+    weights = None
+    if weighted:
+        weights = rng.uniform(0.5, 1.5, y.size)
+        weights[[10, 33]] = 0.0
     fast = deconvolve_ar(y, g, penalty=0.25, baseline=baseline, weights=weights, min_spike=min_spike)
     c, s, b = reference_deconvolve_ar(y, g, penalty=0.25, baseline=baseline, weights=weights, min_spike=min_spike)
     np.testing.assert_allclose(fast.calcium, c, atol=1e-9)
@@ -166,6 +184,18 @@ def test_hard_threshold_variant_has_no_spike_below_the_threshold(g):
     nonzero = result.spikes[1:][result.spikes[1:] > 0]
     assert nonzero.size > 0 and nonzero.min() >= 0.5 - 1e-12
     np.testing.assert_allclose(ar_calcium(result.spikes, g), result.calcium, atol=1e-9)
+
+
+def test_a_call_does_not_depend_on_the_calls_before_it():
+    # reference: determinism (common practice): scratch space reused between calls must not carry anything over
+    _, y1, g = random_problem(61, 2, T=300)
+    _, y2, _ = random_problem(62, 2, T=300)
+    fresh = deconvolve_ar(y2, g, penalty=0.3, baseline="fit")
+    deconvolve_ar(y1, g, penalty=0.1, baseline=0.0)
+    again = deconvolve_ar(y2, g, penalty=0.3, baseline="fit")
+    np.testing.assert_array_equal(fresh.calcium, again.calcium)
+    np.testing.assert_array_equal(fresh.spikes, again.spikes)
+    assert fresh.baseline == again.baseline and fresh.objective == again.objective
 
 
 @pytest.mark.parametrize("coefficients", [[1.0], [1.2], [-1.0], [1.0, 0.1], [2.0, -1.0], [0.5, 0.6], [np.nan]])

@@ -14,10 +14,12 @@ import numpy as np
 import pytest
 
 from calcium.forward import simulate_recording
-from calcium.infer.estimate import (_autocovariance, _times_from_coefficients, _yule_walker,
-                                    estimate_ar_coefficients, estimate_noise_sd, penalty_for_noise,
-                                    signal_detected)
+from calcium.infer.ar import _prepare_weights, _solve
+from calcium.infer.estimate import (_autocovariance, _coefficient_derivative, _coefficients_from_times,
+                                    _times_from_coefficients, _yule_walker, estimate_ar_coefficients,
+                                    estimate_noise_sd, penalty_for_noise, signal_detected)
 from calcium.kernel import Kernel
+from calcium.signal.noise import estimate_noise
 
 
 def test_yule_walker_on_lags_from_one_recovers_exact_ar2_coefficients_despite_white_noise():
@@ -102,6 +104,43 @@ def test_signal_detection_tells_noise_from_transients():
     assert not signal_detected(rng.normal(0, 0.1, 3000), 0.1)
     rec = simulate_recording(1, 100.0, 30.0, indicator="GCaMP6s", rate_hz=0.5, noise_sd=0.1, seed=6)
     assert signal_detected(rec.dff[0], 0.1)
+
+
+def test_noise_of_a_long_trace_agrees_with_one_spectrum_of_the_same_frames():
+    # reference: calcium.signal.estimate_noise on the whole central block (one Welch average); the long block is
+    # handed over in rows, which drops only the few segments that would straddle two rows
+    rec = simulate_recording(1, 1200.0, 30.0, indicator="GCaMP6f", rate_hz=0.5, noise_sd=0.05, seed=8)
+    y = rec.dff[0]
+    start = (y.size - 16384) // 2
+    assert estimate_noise_sd(y, 30.0) == pytest.approx(estimate_noise(y[start:start + 16384], 30.0), rel=0.01)
+
+
+def test_kinetics_gradient_matches_finite_differences():
+    # reference: central finite differences (common practice) of the refinement's criterion, the residual of
+    # the non-negative fit on a fixed support, against the gradient -2 r' dc/dtheta used by the Gauss-Newton
+    # steps (spikes held: the optimal spikes and baseline need no derivative)
+    rec = simulate_recording(1, 60.0, 30.0, indicator="GCaMP6f", rate_hz=1.0, noise_sd=0.03, seed=9)
+    y, w, unit, _ = _prepare_weights(rec.dff[0], None)
+    support = np.zeros(y.size, dtype=bool)
+    support[np.round(rec.spike_times[0] * 30.0).astype(int)] = True
+    support[0] = True
+
+    def fit(theta):
+        g = _coefficients_from_times(math.exp(theta[0]), math.exp(theta[1]), 30.0, 2)
+        c, _, b, _, _ = _solve(y, w, unit, g, 0.0, "fit", 0.0, support=support, allowed=support)
+        return float(np.sum((y - b - c) ** 2)), c, b, g
+
+    theta = np.log([0.03, 0.25])
+    _, c, b, g = fit(theta)
+    u = np.empty(y.size)
+    _coefficient_derivative(c, g[0], g[1], u)
+    u_prev = np.concatenate([[0.0], u[:-1]])
+    d, q = math.exp(-1 / (0.25 * 30.0)), math.exp(-1 / (0.03 * 30.0))
+    jac = np.array([(u - d * u_prev) * (-q * math.log(q)), (u - q * u_prev) * (-d * math.log(d))])
+    gradient = -2.0 * jac @ (y - b - c)
+    step = 1e-5
+    numeric = [(fit(theta + step * e)[0] - fit(theta - step * e)[0]) / (2 * step) for e in np.eye(2)]
+    np.testing.assert_allclose(gradient, numeric, rtol=1e-3)
 
 
 def test_estimation_arguments_are_checked():

@@ -18,12 +18,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 
 from .._checks import MissingFrames, as_traces, check_frame_rate, check_int, check_positive, require_some_data
-from .ar import _check_baseline, _check_penalty, _objective, _prepare_weights, _solve
+from .ar import _check_baseline, _check_penalty, _objective, _prepare_weights, _scratch, _solve
 from .counts import SpikeUnit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
     quantal_size, spike_unit
-from .estimate import _search_penalty, estimate_ar_coefficients, estimate_noise_sd, signal_detected
+from .estimate import MAX_KINETICS_FRAMES, _estimate_kinetics, _search_penalty, estimate_noise_sd, signal_detected
 
 __all__ = ["SpikeInference", "infer_spikes", "infer_spikes_many"]
 
@@ -111,11 +112,17 @@ def _resolve_kernel(kernel, indicator, spike_size):
 
 
 def _shift(activity: np.ndarray, lag: int) -> np.ndarray:
-    if lag <= 0:
-        return activity
-    out = np.zeros_like(activity)
-    out[:-lag] = activity[lag:]
-    return out
+    """activity moved ``lag`` frames earlier, in place (zeros at the end)."""
+    if lag > 0:
+        _shift_in_place(activity, lag)
+    return activity
+
+
+@njit(cache=True)
+def _shift_in_place(x, lag):
+    T = x.shape[0]
+    for t in range(T):
+        x[t] = x[t + lag] if t + lag < T else 0.0
 
 
 def _nothing_found(y, frame_rate, missing, kernel, noise_sd, baseline_value, coefficients):
@@ -213,7 +220,7 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
     baseline = _check_baseline(baseline)
     order = check_int(order, "order", minimum=1, maximum=2)
     threshold = check_positive(threshold, "threshold")
-    observed = y[~missing.mask]
+    observed = y[~missing.mask] if missing.any else y
     if noise_sd is not None:
         noise_sd = check_positive(noise_sd, "noise_sd")
 
@@ -243,6 +250,7 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
         return _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold)
 
     yc, w, unit_w, n_obs = _prepare_weights(y_lin, frame_weights)
+    lam_hint = b_hint = None
     if kernel is not None:
         g = kernel.ar_coefficients(frame_rate)
     else:
@@ -250,23 +258,35 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
             # nothing but noise: no kinetics to estimate and no spike to find
             level = float(np.mean(observed)) if isinstance(baseline, str) else baseline
             return _nothing_found(y, frame_rate, missing, None, noise_sd, level, np.zeros(0))
-        g = estimate_ar_coefficients(y_lin, frame_rate, order=order, noise_sd=noise_sd)
+        g, (lam_hint, b_hint) = _estimate_kinetics(y_lin, frame_rate, order, noise_sd, None, True, None,
+                                                   MAX_KINETICS_FRAMES)
+    # penalised deconvolution, then the refit; one scratch space for both (the trace's filtered copy and data
+    # scale are shared), reused by the next call
+    with _scratch(yc.size) as work:
+        return _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_sd, penalty, baseline,
+                                     spike_size, threshold, missing, lam_hint, b_hint, work)
+
+
+def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_sd, penalty, baseline, spike_size,
+                          threshold, missing, lam_hint, b_hint, work):
+    """The penalised deconvolution, its refit on the support and the spike counts (see infer_spikes)."""
     g1 = float(g[0])
     g2 = float(g[1]) if g.size > 1 else 0.0
-
-    # penalised deconvolution
+    # (the arrays of a solve are the work's own until its next solve: used before that)
     if penalty is None:
-        lam, c, s, b, its, conv, _, _, _ = _search_penalty(yc, w, unit_w, g, noise_sd, baseline, n_obs)
+        # (the penalty and baseline found on the block where the kinetics were estimated are good first guesses)
+        lam, c, s, b, its, conv, _, _, _ = _search_penalty(yc, w, unit_w, g, noise_sd, baseline, n_obs,
+                                                           start=lam_hint, b0=b_hint, work=work, copy=False)
     else:
         lam = penalty
-        c, s, b, its, conv = _solve(yc, w, unit_w, g, lam, baseline, 0.0)
+        c, s, b, its, conv = _solve(yc, w, unit_w, g, lam, baseline, 0.0, work=work, copy=False)
     objective = float(_objective(yc, w, unit_w, g1, g2, lam, b, c, s))
 
     # refit without penalty on the support (undo the shrinkage)
     support = s > 0
     if support.any():
         c_fit, s_fit, b_fit, its_fit, _ = _solve(yc, w, unit_w, g, 0.0, baseline, 0.0, b0=b, support=support,
-                                                 allowed=support)
+                                                 allowed=support, work=work, copy=False)
         its += its_fit
     else:
         c_fit, s_fit, b_fit = c, s, b

@@ -34,7 +34,7 @@ import numpy as np
 from numba import njit
 
 from .._checks import check_frame_rate, check_positive
-from .ar import _impulse, _prepare_weights, _solve, check_ar_coefficients
+from .ar import _KERNEL_CACHE, _prepare_weights, _solve, check_ar_coefficients
 
 __all__ = ["SpikeUnit", "spike_unit", "quantal_size", "refit_on_support", "events_to_spikes", "activity_events",
            "event_sizes", "merge_gap_frames"]
@@ -91,19 +91,15 @@ def spike_unit(kernel, frame_rate, coefficients) -> SpikeUnit:
     J = 2
     n = J + _EVENT_FRAMES + 2
     frames = np.arange(n)
-    sizes = []
-    lags = []
-    for d in (np.arange(_N_PHASES) + 0.5) / _N_PHASES:
-        spike = J - d
-        x = kernel.evaluate((frames - spike) / frame_rate)
-        s = x.copy()
-        for i, gi in enumerate(g, start=1):
-            s[i:] -= gi * x[:-i]
-        part = s[J:J + _EVENT_FRAMES]
-        total = float(part.sum())
-        sizes.append(total)
-        lags.append(float(np.dot(np.arange(J, J + _EVENT_FRAMES), part) / total) - spike)
-    sizes = np.array(sizes)
+    # all positions within the frame at once: rows are positions, columns frames
+    spike = J - (np.arange(_N_PHASES) + 0.5) / _N_PHASES
+    x = kernel.evaluate((frames[None, :] - spike[:, None]) / frame_rate)
+    s = x.copy()
+    for i, gi in enumerate(g, start=1):
+        s[:, i:] -= gi * x[:, :-i]
+    part = s[:, J:J + _EVENT_FRAMES]
+    sizes = part.sum(axis=1)
+    lags = part @ np.arange(J, J + _EVENT_FRAMES) / sizes - spike
     return SpikeUnit(size=float(sizes.mean()), lag_frames=float(np.mean(lags)),
                      spread=float(sizes.std() / sizes.mean()))
 
@@ -141,7 +137,8 @@ def quantal_size(sizes, *, min_size, min_events=3):
     if sizes.size < min_events:
         return None
     logs = np.log(sizes)
-    spread = min(np.std(logs), (np.percentile(logs, 75) - np.percentile(logs, 25)) / 1.34)
+    upper, lower = np.percentile(logs, [75, 25])
+    spread = min(np.std(logs), (upper - lower) / 1.34)
     if not spread > 0:
         return float(np.median(sizes))
     bandwidth = 0.9 * spread * logs.size ** (-0.2)
@@ -201,21 +198,23 @@ def activity_events(activity, *, merge_gap=0):
     most ``merge_gap`` frames without activity are one event (the
     deconvolution can split one spike's activity over nearby frames).
     """
-    on = np.asarray(activity) > 0
-    edges = np.diff(np.concatenate([[0], on.view(np.int8), [0]]))
-    starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
-    if merge_gap > 0 and starts.size > 1:
-        keep = np.concatenate([[True], starts[1:] - stops[:-1] > merge_gap])
-        starts = starts[keep]
-        stops = np.concatenate([stops[:-1][keep[1:]], stops[-1:]])
+    starts, stops, _ = _events(activity, merge_gap)
     return starts, stops
 
 
 def event_sizes(activity, *, merge_gap=0) -> np.ndarray:
     """Total activity of each event (see :func:`activity_events`)."""
-    activity = np.asarray(activity, dtype=np.float64)
-    starts, _ = activity_events(activity, merge_gap=merge_gap)
-    return np.add.reduceat(activity, starts) if starts.size else np.zeros(0)
+    return _events(activity, merge_gap)[2]
+
+
+def _events(activity, merge_gap):
+    activity = np.ascontiguousarray(activity, dtype=np.float64)
+    size = np.count_nonzero(activity) + 1  # at least one frame with activity per event
+    starts = np.empty(size, np.int64)
+    stops = np.empty(size, np.int64)
+    totals = np.empty(size)
+    n = _event_bounds(activity, int(merge_gap), starts, stops, totals)
+    return starts[:n].copy(), stops[:n].copy(), totals[:n].copy()
 
 
 def merge_gap_frames(kernel, frame_rate) -> int:
@@ -261,42 +260,55 @@ def events_to_spikes(activity, frame_rate, *, lag_frames=0.0, threshold=0.5, mer
     positions = _place_spikes(activity, int(merge_gap), float(threshold))
     times = np.sort(np.clip(positions - lag_frames, 0.0, (T - 1) + 0.499)) / frame_rate
     counts = np.bincount(np.clip(np.round(times * frame_rate).astype(np.int64), 0, T - 1), minlength=T)
-    return times, counts.astype(np.int64)
+    return times, counts.astype(np.int64, copy=False)
+
+
+@njit(cache=True)
+def _event_bounds(activity, merge_gap, starts, stops, totals):
+    """Events of the activity (frames with activity > 0, gaps of at most merge_gap empty frames): their
+    [start, stop) frames and totals; returns their number."""
+    T = activity.shape[0]
+    n = 0
+    last = -1  # frame after the last active frame of the current event (-1: none open)
+    for t in range(T):
+        x = activity[t]
+        if not x > 0:
+            continue
+        if last >= 0 and t - last <= merge_gap:
+            totals[n - 1] += x
+        else:
+            starts[n] = t
+            totals[n] = x
+            n += 1
+        stops[n - 1] = t + 1
+        last = t + 1
+    return n
 
 
 @njit(cache=True)
 def _place_spikes(activity, merge_gap, threshold):
     """Spike positions (in frames) of every event; see events_to_spikes."""
-    T = activity.shape[0]
-    out = np.empty(16)
+    size = 1
+    for t in range(activity.shape[0]):
+        if activity[t] != 0.0:
+            size += 1  # at least one frame with activity per event
+    starts = np.empty(size, np.int64)
+    stops = np.empty(size, np.int64)
+    totals = np.empty(size)
+    n_events = _event_bounds(activity, merge_gap, starts, stops, totals)
+    n_total = 0
+    for e in range(n_events):
+        if totals[e] >= threshold:
+            n_total += max(1, int(math.floor(totals[e] + 0.5)))
+    out = np.empty(n_total)
     n_out = 0
-    t = 0
-    while t < T:
-        if not activity[t] > 0:
-            t += 1
-            continue
-        # the event: frames with activity, gaps of at most merge_gap empty frames
-        a = t
-        b = t + 1
-        total = activity[t]
-        k = t + 1
-        while k < T:
-            if activity[k] > 0:
-                total += activity[k]
-                b = k + 1
-                k += 1
-            elif k - b + 1 > merge_gap:
-                break
-            else:
-                k += 1
-        t = b
+    for e in range(n_events):
+        total = totals[e]
         if total < threshold:
             continue
+        a = starts[e]
+        b = stops[e]
         n = max(1, int(math.floor(total + 0.5)))
-        if n_out + n > out.shape[0]:
-            grown = np.empty(2 * (n_out + n))
-            grown[:n_out] = out[:n_out]
-            out = grown
         # quantile (i + 1/2) / n of the activity, frame k spread evenly over [k - 1/2, k + 1/2]
         i = 0
         acc = 0.0
@@ -313,12 +325,31 @@ def _place_spikes(activity, merge_gap, threshold):
             out[n_out] = b - 0.5
             n_out += 1
             i += 1
-    return out[:n_out].copy()
+    return out
 
 
 def event_noise_size(coefficients, noise_sd: float, n_frames: int) -> float:
     """Standard deviation of the least-squares size of an isolated one-frame event in white noise."""
     g = check_ar_coefficients(coefficients)
     noise_sd = check_positive(noise_sd, "noise_sd")
-    h = _impulse(float(g[0]), float(g[1]) if g.size > 1 else 0.0, int(min(max(n_frames, 2), 1_000_000)))
-    return noise_sd / math.sqrt(float(np.sum(h * h)))
+    g1, g2 = float(g[0]), float(g[1]) if g.size > 1 else 0.0
+    n = int(min(max(n_frames, 2), 1_000_000))
+    if (g1, g2, n) in _KERNEL_CACHE:  # sum h^2 is the last prefix sum of the kernel's tables
+        return noise_sd / math.sqrt(float(_KERNEL_CACHE[(g1, g2, n)][2][0, -1]))
+    return noise_sd / math.sqrt(_impulse_energy(g1, g2, n))
+
+
+@njit(cache=True)
+def _impulse_energy(g1, g2, n):
+    """sum of h_k^2 over the first n frames of the AR impulse response (stops once it has decayed away)."""
+    h1 = 1.0
+    h2 = 0.0
+    total = 1.0
+    for _ in range(1, n):
+        x = g1 * h1 + g2 * h2
+        h2 = h1
+        h1 = x
+        total += x * x
+        if abs(x) < 1e-150 and abs(h2) < 1e-150:
+            break
+    return total
