@@ -257,15 +257,11 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
     nperseg = min(_SEGMENT, n)
     keep = _band_bins(np.fft.rfftfreq(nperseg, 1.0 / frame_rate), band, frame_rate, nperseg)
     clean = np.flatnonzero(missing.per_roi == 0)
-    if clean.size:
-        dof = np.asarray(_welch_dof(_segments(n, nperseg), nperseg))
-        segment_mean = "constant" if _remove_segment_mean(keep) else False
-        # A few ROIs at a time keeps Welch's segment copies in the cache.
-        for part in row_chunks(clean.size, n, elements=1 << 20):
-            idx = clean[part]
-            block = rows[idx] if clean.size < rows.shape[0] else rows[part]
-            psd = scipy.signal.welch(block, frame_rate, nperseg=nperseg, detrend=segment_mean, axis=-1)[1]
-            sd[idx] = _band_average(psd[:, keep], average, dof)
+    # One vectorised Welch over all segments of a block of rows (a per-segment FFT loop, as a 1-D
+    # scipy.signal.welch call makes, costs more than the transform itself for single traces).
+    for part in row_chunks(clean.size, 2 * n, elements=1 << 20):
+        idx = clean[part]
+        sd[idx] = _masked_welch_level(rows[idx], holes[idx], frame_rate, nperseg, keep, average)
     gappy = np.flatnonzero(missing.per_roi)
     for part in row_chunks(gappy.size, 2 * n, elements=1 << 20):
         idx = gappy[part]
