@@ -24,15 +24,7 @@ from scipy.signal import lfilter
 
 from calcium.forward import predict_fluorescence, simulate_recording
 from calcium.kernel import Kernel
-
-
-def best_time(func, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - start)
-    return min(times)
+from benchtools import best_time
 
 
 def bench_predict(n_frames: int, n_spikes: int, repeats: int) -> None:

@@ -38,18 +38,10 @@ from calcium.forward import simulate_recording
 from calcium.infer import deconvolve_ar, deconvolve_convex, infer_spikes, penalty_for_noise
 from calcium.kernel import Kernel
 from calcium.score import score_spikes
+from benchtools import best_time
 
 
 NOTES_MARKER = "<!-- notes (kept when the tables are rewritten) -->"
-
-
-def best_time(func, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - start)
-    return min(times)
 
 
 def paired(reference, candidate, rounds: int, repeats: int):
