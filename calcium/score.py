@@ -260,7 +260,7 @@ def _van_rossum_sorted(a: np.ndarray, b: np.ndarray, tau_s: float) -> float:
 # ---------------------------------------------------------------------------
 def _binned_correlation(a: np.ndarray, b: np.ndarray, start: float, stop: float,
                         bin_width: float) -> float:
-    n_bins = max(int(math.floor((stop - start) / bin_width + 1e-9)) + 1, 1)
+    n_bins = max(math.ceil((stop - start) / bin_width - 1e-9), 1)  # bins cover [start, stop], no empty extra
     edges = start + bin_width * np.arange(n_bins + 1)
     ca = np.histogram(a, bins=edges)[0].astype(float)
     cb = np.histogram(b, bins=edges)[0].astype(float)
@@ -587,8 +587,8 @@ def score_many(inferred, true, *, tolerance_s, bin_widths_s=DEFAULT_BIN_WIDTHS_S
         pass
     scores = []
     for k in keys:
-        a = as_spike_times(inf_map.get(k, ()), f"inferred[{k!r}]", stacklevel=4)
-        b = as_spike_times(true_map.get(k, ()), f"true[{k!r}]", stacklevel=4)
+        a = as_spike_times(inf_map.get(k, ()), f"inferred[{k!r}]", stacklevel=3)
+        b = as_spike_times(true_map.get(k, ()), f"true[{k!r}]", stacklevel=3)
         scores.append(_score_sorted(a, b, tolerance_s, widths, duration_s, tau))
 
     n_true = sum(s.n_true for s in scores)

@@ -224,3 +224,11 @@ def test_write_refuses_to_overwrite_an_input_and_warns_that_npy_drops_the_rate(t
     np.testing.assert_array_equal(read_traces(tmp_path / "x.npy").traces, [[1.0, 1.0, 1.0]])
     with pytest.raises(ValueError, match="frame_rate"):
         write_traces(tmp_path / "x.csv", np.ones(3), frame_rate=-1.0)
+
+
+def test_csv_time_step_much_shorter_than_a_frame_is_refused_not_merged(tmp_path):
+    # two lines 0.05 s apart in a 1 s series would land on the same frame and one would be lost
+    path = tmp_path / "short_step.csv"
+    path.write_text("time_s,a\n0,1\n1,2\n1.05,3\n2,4\n3,5\n")
+    with pytest.raises(CalciumInputError, match="uneven time spacing"):
+        read_traces(path)

@@ -36,6 +36,7 @@ RATE = 20.0
 N_ROIS = 12
 ALL_MISSING, NEGATIVE = 2, 5  # ROIs made unusable on purpose
 ELECTRICAL = (0, 1)
+CLOCK_OFFSET_S = 0.2
 
 
 def _config(folder, traces, **sections):
@@ -69,7 +70,9 @@ def session(tmp_path_factory):
     raw[NEGATIVE] = raw[NEGATIVE] - 2 * raw[NEGATIVE].max()  # F0 < 0 everywhere
     raw[3, 100:130] = np.nan                                   # a few missing frames
     traces = write_traces(root / "traces.h5", raw, frame_rate=RATE)
-    electrical = write_spike_table(root / "ephys.csv", {r: recording.spike_times[r] for r in ELECTRICAL})
+    # the electrophysiology clock starts CLOCK_OFFSET_S after the first frame
+    on_ephys_clock = {r: recording.spike_times[r] - CLOCK_OFFSET_S for r in ELECTRICAL}
+    electrical = write_spike_table(root / "ephys.csv", {r: t[t >= 0] for r, t in on_ephys_clock.items()})
     config = _config(root / "reference", traces, inputs={"electrical_spikes": str(electrical)},
                      report={"enabled": True, "n_examples": 3}, nwb={"enabled": True})
     summary = run_pipeline(config, progress=False)
@@ -154,9 +157,12 @@ def test_rois_with_electrical_spikes_get_kernel_fits_and_scores(session):
     inferred = read_spike_times(session["summary"].spikes_path)
     electrical = read_spike_times(session["electrical"])
     for row, roi in enumerate(ELECTRICAL):
-        direct = score_spikes(inferred[roi], electrical[roi], tolerance_s=0.1, duration_s=60.0)
+        lag = data["electrical/fit_lag_s"][row]
+        assert lag == pytest.approx(CLOCK_OFFSET_S, abs=1 / RATE)  # the fitted clock offset, within a frame
+        direct = score_spikes(inferred[roi], electrical[roi] + lag, tolerance_s=0.1, duration_s=60.0)
         assert data["electrical/score_f1"][row] == pytest.approx(direct.f1)
         assert data["electrical/score_n_matched"][row] == direct.n_matched
+        assert direct.f1 > 0.8  # scored on the imaging clock (unshifted, the 0.2 s offset exceeds the tolerance)
         # GCaMP6f simulated: the fitted half-decay is within a factor 2 of the simulated kernel's.
         truth = session["recording"].kernel.half_decay_s
         assert truth / 2 < data["electrical/fit_half_decay_s"][row] < 2 * truth

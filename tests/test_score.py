@@ -145,8 +145,8 @@ def test_binned_correlation_equals_pearson_of_histogram_counts():
     inferred = inferred[(inferred >= 0) & (inferred <= 50)]
     s = score_spikes(inferred, true, tolerance_s=0.1, duration_s=50.0, bin_widths_s=(0.5, 1.0))
     for width in (0.5, 1.0):
-        # bins of `width` from 0; the last bin [50, 50 + width) holds a spike at exactly 50 s
-        edges = width * np.arange(round(50 / width) + 2)
+        # bins of `width` from 0 to 50 s (numpy's last bin is closed, so a spike at exactly 50 s counts)
+        edges = width * np.arange(round(50 / width) + 1)
         expected = stats.pearsonr(np.histogram(inferred, edges)[0], np.histogram(true, edges)[0])[0]
         assert s.correlation(width) == pytest.approx(expected, rel=1e-9)
     with pytest.raises(ValueError, match="bin_width_s"):

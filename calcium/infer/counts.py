@@ -186,8 +186,7 @@ def refit_on_support(y, coefficients, support, *, baseline="fit", weights=None):
     support = np.asarray(support, dtype=bool)
     if support.shape != y.shape:
         raise ValueError(f"support must have the trace's shape {y.shape}, got {support.shape}")
-    c, s, b, _, _ = _solve(y, w, unit, g, 0.0, baseline, 0.0, b0=None if not isinstance(baseline, str) else None,
-                           support=support, allowed=support)
+    c, s, b, _, _ = _solve(y, w, unit, g, 0.0, baseline, 0.0, support=support, allowed=support)
     return c, s, b
 
 

@@ -180,6 +180,9 @@ def export_nwb(results_path, nwb_path, *, session_description="calcium imaging s
                              data=[str(v) for v in values] if values.dtype.kind in "SUO" else values)
         region = table.create_roi_table_region(region=list(range(n_rois)), description="all ROIs")
 
+        if "dff" not in results:
+            raise ValueError(f"{results_path} holds no ΔF/F (dataset 'dff'): NWB export needs the results of a "
+                             f"whole-session run (calcium run), not of inference alone (calcium infer)")
         handle = {name: results.dataset(name) for name in ("dff", "activity", "raw") if name in results}
         dff = DfOverF(name="DfOverF")
         module.add(dff)

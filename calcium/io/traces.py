@@ -257,6 +257,7 @@ def _frames_from_times(times: np.ndarray, line_numbers: np.ndarray, path: Path):
     interval = float(np.median(steps))
     multiples = np.rint(steps / interval)
     off = np.abs(steps - multiples * interval) > _SPACING_TOLERANCE * interval
+    off |= multiples < 1  # a step far below one frame would put two lines on the same frame
     if off.any():
         i = int(np.flatnonzero(off)[0]) + 1
         raise CalciumInputError(

@@ -816,7 +816,16 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
 
                 electrical_spikes = read_spike_times(path)
         electrical_spikes = electrical_spikes or {}
+        missing = [name for name in _PER_ROI if name not in results]
+        if missing:
+            raise ValueError(f"{results_path} has no {', '.join(missing)}: the session report needs the results of "
+                             f"a whole-session run (calcium run), not of inference alone (calcium infer)")
         per_roi = {name: results.read(name) for name in _PER_ROI}
+        # electrical spikes drawn on the imaging clock: add the fitted clock lag where there is one
+        lags = {}
+        if "electrical/roi" in results and "electrical/fit_lag_s" in results:
+            lags = {int(r): float(lag) for r, lag in zip(results.read("electrical/roi"),
+                                                         results.read("electrical/fit_lag_s")) if np.isfinite(lag)}
         bounds = results.read("progress/chunk_bounds")
         trains = []
         for start, stop in zip(bounds[:-1], bounds[1:]):
@@ -863,7 +872,9 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
                 fig = stages_figure(rate, raw, f0=values.get("f0"), dff=values.get("dff"),
                                     filtered=values.get("dff_filtered"), denoised=values.get("denoised"),
                                     spike_times=trains[roi],
-                                    true_spike_times=electrical_spikes.get(roi), roi_label=f"ROI {roi}")
+                                    true_spike_times=(electrical_spikes[roi] + lags.get(roi, 0.0)
+                                                      if roi in electrical_spikes else None),
+                                    roi_label=f"ROI {roi}")
                 note = f"; flags: {per_roi['flags'][roi]}" if flags[roi] else ""
                 report.add_figure(fig, name=f"roi-{roi}", caption=f"ROI {roi}: {where}, F0, ΔF/F, denoised fit "
                                                                    f"and inferred spikes{note}.")

@@ -594,10 +594,15 @@ def electrical_step(store, electrical: dict, frame_rate: float, n_frames: int, *
                         notes[row].append(f"kinetics outside the {check.indicator} range: " + ", ".join(outside))
             except (ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError) as exc:
                 notes[row].append("kernel fit failed: " + _first_line(exc))
+            # on the imaging clock: the fitted lag is what must be added to the electrical times
+            lag = fit["lag_s"][row]
+            aligned = true_times + (lag if np.isfinite(lag) else 0.0)
+            if not np.isfinite(lag):
+                notes[row].append("scored without a clock lag (the kernel fit failed)")
             try:
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore")
-                    result = score_spikes(inferred, true_times, tolerance_s=scoring.tolerance_s,
+                    result = score_spikes(inferred, aligned[aligned >= 0], tolerance_s=scoring.tolerance_s,
                                           bin_widths_s=scoring.bin_widths_s, duration_s=duration_s,
                                           van_rossum_tau_s=scoring.van_rossum_tau_s)
                 for name, _, _ in _SCORE_FIELDS:
