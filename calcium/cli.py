@@ -22,6 +22,10 @@ class CommandError(Exception):
     """A data or file problem, reported as one line with exit code 1."""
 
 
+class UsageError(CommandError):
+    """Options that do not go together or are out of range: one line, exit code 2."""
+
+
 # --------------------------------------------------------------------------- helpers
 
 def _fail(path, exc, *, also=()) -> CommandError:
@@ -61,7 +65,7 @@ def _frame_rate(args, data) -> float:
     if given is None and found is None:
         raise CommandError(f"{data.path}: the file does not record a frame rate; pass --frame-rate HZ")
     if given is not None and given <= 0:
-        raise CommandError(f"--frame-rate must be positive, got {given}")
+        raise UsageError(f"--frame-rate must be positive, got {given}")
     if given is not None and found is not None and abs(given - found) > 1e-3 * found:
         raise CommandError(f"{data.path}: the file says {found:g} Hz but --frame-rate is {given:g} Hz")
     return float(given if given is not None else found)
@@ -72,7 +76,7 @@ def _kernel_from_args(args, *, required: bool = True):
     from calcium.kernel import Kernel
     if getattr(args, "indicator", None):
         if args.rise_s is not None or args.decay_s is not None:
-            raise CommandError("give either --indicator or --rise-s/--decay-s, not both")
+            raise UsageError("give either --indicator or --rise-s/--decay-s, not both")
         kernel = Kernel.from_indicator(args.indicator)
         if args.amplitude is not None:
             kernel = kernel.scaled(args.amplitude)
@@ -81,9 +85,9 @@ def _kernel_from_args(args, *, required: bool = True):
         return Kernel(rise_s=args.rise_s or 0.0, decay_s=args.decay_s,
                       amplitude=args.amplitude if args.amplitude is not None else 1.0)
     if args.rise_s is not None:
-        raise CommandError("--rise-s needs --decay-s")
+        raise UsageError("--rise-s needs --decay-s")
     if required:
-        raise CommandError("give the indicator kinetics: --indicator NAME or --rise-s S --decay-s S")
+        raise UsageError("give the indicator kinetics: --indicator NAME or --rise-s S --decay-s S")
     return None
 
 
@@ -135,7 +139,11 @@ def cmd_extract(args):
     except (ValueError, OSError) as exc:
         raise _fail(args.masks, exc) from exc
     factor = args.neuropil_factor
-    factor = "estimate" if factor == "estimate" else float(factor)
+    if factor != "estimate":
+        try:
+            factor = float(factor)
+        except ValueError:
+            raise UsageError(f"--neuropil-factor must be a number or 'estimate', got {factor!r}") from None
     result = extract_traces(movie, masks, neuropil_gap_px=args.gap_px, neuropil_radius_px=args.radius_px,
                             neuropil_factor=factor, chunk_frames=args.chunk_frames, progress=_progress(args))
     from calcium.io import write_hdf5, write_traces
@@ -178,6 +186,7 @@ def cmd_dff(args):
 def cmd_filter(args):
     from calcium.signal import design_filter
     out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
+    plot = _check_new_output(args.plot, overwrite=args.overwrite, inputs=(args.input,)) if args.plot else None
     data = _read_traces(args.input, args.dataset)
     rate = _frame_rate(args, data)
     cutoff = args.cutoff_hz[0] if len(args.cutoff_hz) == 1 else tuple(args.cutoff_hz)
@@ -189,12 +198,10 @@ def cmd_filter(args):
     filtered = applied[0] if isinstance(applied, tuple) else applied
     _write_traces(out, filtered, frame_rate=rate)
     _say(args, str(filt))
-    if args.plot:
-        from calcium.report.figures import filter_response_figure, save_figure
-        freq, single, zero = filt.frequency_response()
-        save_figure(filter_response_figure(freq, single, zero, half_power_hz=filt.half_power_hz,
-                                           frame_rate=rate), args.plot)
-        _say(args, f"frequency response -> {args.plot}")
+    if plot:
+        from calcium.report.figures import filter_figure, save_figure
+        save_figure(filter_figure(filt), plot)
+        _say(args, f"frequency response -> {plot}")
     _say(args, f"filtered {filtered.shape[0]} ROI(s) -> {out}")
 
 
@@ -257,13 +264,16 @@ def cmd_predict(args):
     from calcium.forward import predict_fluorescence
     from calcium.io import read_spike_times, write_csv
     out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.spikes,))
+    plot = _check_new_output(args.plot, overwrite=args.overwrite, inputs=(args.spikes,)) if args.plot else None
     try:
         spikes = read_spike_times(args.spikes)
     except (ValueError, OSError) as exc:
         raise _fail(args.spikes, exc) from exc
+    if not spikes:
+        raise CommandError(f"{args.spikes}: holds no spike times")
     kernel = _kernel_from_args(args)
     if args.frame_rate <= 0:
-        raise CommandError(f"--frame-rate must be positive, got {args.frame_rate}")
+        raise UsageError(f"--frame-rate must be positive, got {args.frame_rate}")
     last = max((float(t.max()) for t in spikes.values() if len(t)), default=0.0)
     duration = args.duration_s if args.duration_s is not None else last + 5 * kernel.decay_s
     n_frames = max(1, int(np.ceil(duration * args.frame_rate)))
@@ -281,20 +291,20 @@ def cmd_predict(args):
         _write_traces(out, pred, frame_rate=args.frame_rate, inputs=(args.spikes,),
                       attrs={"kernel": json.dumps(kernel.to_dict()), "rois": json.dumps(rois)})
     _say(args, f"predicted ΔF/F for {len(rois)} ROI(s) x {n_frames} frames with {kernel} -> {out}")
-    if args.plot:
+    if plot:
         from calcium.report.figures import prediction_figure, save_figure
         save_figure(prediction_figure(args.frame_rate, None, pred[0], spikes[rois[0]],
-                                      roi_label=f"ROI {rois[0]}"), args.plot)
-        _say(args, f"plot -> {args.plot}")
+                                      roi_label=f"ROI {rois[0]}"), plot)
+        _say(args, f"plot -> {plot}")
 
 
 def cmd_infer(args):
     from calcium.pipeline import infer_file
     kernel = _kernel_from_args(args, required=False)
-    data = _read_traces(args.input, args.dataset)
-    rate = _frame_rate(args, data)
-    try:
-        summary = infer_file(args.input, args.out, frame_rate=rate, kernel=kernel, dataset=args.dataset,
+    if args.frame_rate is not None and args.frame_rate <= 0:
+        raise UsageError(f"--frame-rate must be positive, got {args.frame_rate}")
+    try:  # infer_file streams the file and checks the frame rate against the one it records
+        summary = infer_file(args.input, args.out, frame_rate=args.frame_rate, kernel=kernel, dataset=args.dataset,
                              workers=args.workers, overwrite=args.overwrite, progress=_progress(args))
     except (ValueError, OSError) as exc:
         raise _fail(args.input, exc, also=(args.out,)) from exc
@@ -389,7 +399,7 @@ def cmd_plan(args):
     from calcium.plan import plan_detectability
     kernel = _kernel_from_args(args, required=False)
     if args.noise_sd and args.photons:
-        raise CommandError("give either --noise-sd or --photons, not both")
+        raise UsageError("give either --noise-sd or --photons, not both")
     if args.out:
         csv_path, png_path = _output_folder(args, "plan.csv", "plan.png")
     plan = plan_detectability(kernel=kernel, indicator=None if kernel is not None else (args.indicator or None),
@@ -593,7 +603,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("export-nwb", cmd_export_nwb, "export a results file to NWB (needs the optional extra `nwb`)")
     p.add_argument("results", help="results HDF5 file")
     p.add_argument("--description", default="calcium imaging session", help="NWB session description")
-    p.add_argument("--session-start", help="session start time, ISO 8601 (default: the results' creation time)")
+    p.add_argument("--session-start", help="session start time, ISO 8601 (default: taken from the input files)")
     p.add_argument("--indicator", help="indicator name recorded in the NWB imaging plane")
     output(p, help_text="output .nwb file")
 
@@ -625,19 +635,14 @@ def main(argv=None) -> int:
     warnings.showwarning = show_warning
     try:
         args.func(args)
-    except CommandError as exc:
-        if args.debug:
-            raise
-        print(f"calcium {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_DATA
-    except (ValueError, OSError) as exc:
-        if args.debug:
-            raise
-        print(f"calcium {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_DATA
-    except BrokenPipeError:  # output piped into `head` and the like
+    except BrokenPipeError:  # output piped into `head` and the like (an OSError: caught first)
         sys.stderr.close()
         return 0
+    except (CommandError, ValueError, OSError) as exc:
+        if args.debug:
+            raise
+        print(f"calcium {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE if isinstance(exc, UsageError) else EXIT_DATA
     except KeyboardInterrupt:
         print(f"calcium {args.command}: interrupted", file=sys.stderr)
         return 130

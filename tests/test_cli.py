@@ -199,7 +199,7 @@ def test_fit_kernel_command_names_a_roi_without_spikes(tmp_path, capsys):
 
 
 def test_plan_command_refuses_two_noise_specifications(capsys):
-    assert main(["plan", "--noise-sd", "0.1", "--photons", "100"]) == 1
+    assert main(["plan", "--noise-sd", "0.1", "--photons", "100"]) == 2  # a usage error
     assert "either --noise-sd or --photons" in capsys.readouterr().err
 
 
@@ -259,5 +259,39 @@ def test_init_then_run_then_report_and_nwb(tmp_path):
 
 def test_every_public_name_resolves():
     # the lazy top-level API must not list a name its module lacks
-    for name in calcium.__all__:
-        assert getattr(calcium, name) is not None, name
+    from importlib import import_module
+    for module, names in calcium._EXPORTS.items():
+        for name in names:
+            assert hasattr(import_module(module), name), f"{module}.{name}"
+
+
+def test_options_that_do_not_go_together_are_usage_errors(tmp_path, capsys):
+    spikes = tmp_path / "s.csv"
+    write_spike_table(spikes, {0: np.array([0.5])})
+    assert main(["predict", str(spikes), "--frame-rate", "30", "--indicator", "GCaMP6s", "--decay-s", "1",
+                 "--out", str(tmp_path / "p.npy")]) == 2
+    assert main(["predict", str(spikes), "--frame-rate", "30", "--rise-s", "0.1",
+                 "--out", str(tmp_path / "p.npy")]) == 2
+    assert "--rise-s needs --decay-s" in capsys.readouterr().err
+
+
+def test_plot_output_never_replaces_an_existing_file(tmp_path):
+    path, _ = _trace_file(tmp_path)
+    keep = tmp_path / "keep.png"
+    keep.write_bytes(b"precious")
+    assert main(["filter", str(path), "--kind", "lowpass", "--cutoff-hz", "3", "--out", str(tmp_path / "f.npy"),
+                 "--plot", str(keep), "--quiet"]) == 1
+    assert keep.read_bytes() == b"precious" and not (tmp_path / "f.npy").exists()
+
+
+def test_run_command_runs_a_written_configuration(tmp_path):
+    raw = tmp_path / "raw.h5"
+    rng = np.random.default_rng(3)
+    write_traces(raw, 100 + rng.normal(0, 1, (2, 600)), frame_rate=30.0)
+    config = tmp_path / "session.toml"
+    config.write_text(f"[inputs]\ntraces = {str(raw)!r}\n\n[output]\nfolder = {str(tmp_path / 'out')!r}\n\n"
+                      f"[execution]\nbackend = \"serial\"\n\n[report]\nenabled = false\n")
+    assert main(["run", str(config), "--quiet"]) == 0
+    assert any((tmp_path / "out").glob("*.h5"))
+    config.write_text("[inputs]\nno_such_key = 1\n")
+    assert main(["run", str(config), "--quiet"]) == 1
