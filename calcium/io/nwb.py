@@ -45,7 +45,7 @@ def _pynwb():
     return pynwb
 
 
-def _transposed_iterator(dataset, selection_rows=None):
+def _transposed_iterator(dataset):
     """An hdmf chunk iterator giving (frames, rois) blocks of a (rois, frames) HDF5 dataset."""
     from hdmf.data_utils import GenericDataChunkIterator
 

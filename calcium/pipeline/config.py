@@ -470,10 +470,6 @@ class RunConfig:
     def __post_init__(self):
         _check_consistency(self)
 
-    @property
-    def uses_movie(self) -> bool:
-        return self.inputs.movie is not None
-
     def to_dict(self) -> dict:
         """Every key of every section (paths as text, tuples as lists), None for keys not set."""
         out = {}
