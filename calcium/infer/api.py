@@ -17,6 +17,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import math
+
 import numpy as np
 from numba import njit
 
@@ -247,7 +249,8 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
             return _nothing_found(y, frame_rate, missing, kernel, 0.0, level, np.zeros(0))
 
     if kernel is not None and kernel.has_slow_component:
-        return _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold)
+        return _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold,
+                             frame_weights)
 
     yc, w, unit_w, n_obs = _prepare_weights(y_lin, frame_weights)
     lam_hint = b_hint = None
@@ -352,20 +355,24 @@ def _denoised(kernel, b, c):
     return kernel.saturate(np.maximum(linear, low * (1 - 1e-9)))
 
 
-def _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold):
+def _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold, weights):
     """Kernels with a slow component: the general convex solver (AR(3) and beyond)."""
     from .convex import deconvolve_convex
 
     res = deconvolve_convex(y_lin, kernel, frame_rate=frame_rate, penalty=penalty,
-                            noise_sd=None if penalty is not None else noise_sd, baseline=baseline)
+                            noise_sd=None if penalty is not None else noise_sd, baseline=baseline, weights=weights)
     s = res.spikes
     # spikes below a rounding level of the interior-point solver are zeros of the exact solution
     support = s > 1e-7 * max(float(s.max()), 1e-300)
-    fit = _convex_refit(y_lin, kernel, frame_rate, baseline, support) if support.any() else res
+    fit = _convex_refit(y_lin, kernel, frame_rate, baseline, support, weights) if support.any() else res
     # the convolution uses the kernel's own samples (amplitude included): activity is close to spikes
     unit = _convex_unit(kernel, frame_rate)
     activity = fit.spikes / unit.size
-    times, counts = events_to_spikes(activity, frame_rate, lag_frames=unit.lag_frames, threshold=threshold,
+    # as on the AR path, an event must stand out of the noise of its own least-squares size (z >= 2.5)
+    h = kernel.impulse_response(frame_rate, y.size)
+    size_noise = float(noise_sd) / math.sqrt(float(h @ h)) / unit.size
+    times, counts = events_to_spikes(activity, frame_rate, lag_frames=unit.lag_frames,
+                                     threshold=max(threshold, _MIN_EVENT_Z * size_noise),
                                      merge_gap=merge_gap_frames(kernel, frame_rate))
     return SpikeInference(activity=_shift(activity, int(round(unit.lag_frames))), spike_times=times,
                           spike_counts=counts, denoised=_denoised(kernel, fit.baseline, fit.calcium),
@@ -374,28 +381,24 @@ def _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, mis
                           iterations=1, missing=missing, coefficients=np.zeros(0), spike_size=float(unit.size))
 
 
-def _convex_refit(y, kernel, frame_rate, baseline, support):
+def _convex_refit(y, kernel, frame_rate, baseline, support, weights=None):
+    """Least squares without the penalty, spikes allowed only on ``support`` (sparse design matrix)."""
     import cvxpy as cp
+    import scipy.sparse
 
-    from .convex import ConvexDeconvolution, kernel_operator
+    from .convex import ConvexDeconvolution
 
-    yc, w, unit_w, _ = _prepare_weights(np.asarray(y, dtype=np.float64), None)
+    yc, w, unit_w, _ = _prepare_weights(np.asarray(y, dtype=np.float64), weights)
     T = yc.size
     w = np.ones(T) if unit_w else w
     cols = np.flatnonzero(support)
-    form = kernel_operator(kernel, T, frame_rate)
-    h = np.zeros(T)
-    if form[0] == "matrix":
-        h = np.asarray(form[1][:, 0].todense()).ravel()
-    else:
-        from scipy.signal import lfilter
-
-        impulse = np.zeros(T)
-        impulse[0] = 1.0
-        h = lfilter(form[2], form[1], impulse)
-    K = np.zeros((T, cols.size))
-    for j, t in enumerate(cols):
-        K[t:, j] = h[:T - t]
+    h = kernel.impulse_response(frame_rate, T)
+    # columns are shifted copies of the kernel, cut where it has decayed below 1e-12 of its peak
+    significant = np.flatnonzero(np.abs(h) > 1e-12 * np.abs(h).max())
+    h = h[:significant[-1] + 1]
+    rows = [np.arange(t, min(T, t + h.size)) for t in cols]
+    K = scipy.sparse.csc_matrix((np.concatenate([h[:r.size] for r in rows]), np.concatenate(rows),
+                                 np.concatenate([[0], np.cumsum([r.size for r in rows])])), shape=(T, cols.size))
     u = cp.Variable(cols.size, nonneg=True)
     b = cp.Variable() if baseline == "fit" else float(baseline)
     problem = cp.Problem(cp.Minimize(0.5 * cp.sum_squares(cp.multiply(np.sqrt(w), yc - b - K @ u))))
