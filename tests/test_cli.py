@@ -295,3 +295,13 @@ def test_run_command_runs_a_written_configuration(tmp_path):
     assert any((tmp_path / "out").glob("*.h5"))
     config.write_text("[inputs]\nno_such_key = 1\n")
     assert main(["run", str(config), "--quiet"]) == 1
+
+
+def test_infer_never_replaces_an_unrelated_spike_table(tmp_path, capsys):
+    path, _ = _simulated_dff(tmp_path, n_rois=1, seconds=10.0)
+    out = tmp_path / "result.h5"
+    (tmp_path / "result.csv").write_text("mine\n")
+    assert main(["infer", str(path), "--indicator", "GCaMP6s", "--out", str(out), "--workers", "1",
+                 "--quiet"]) == 1
+    assert (tmp_path / "result.csv").read_text() == "mine\n"
+    assert "result.csv" in capsys.readouterr().err

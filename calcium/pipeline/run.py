@@ -643,6 +643,10 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     for target in (out, spikes_path):
         if target.exists() and os.path.samefile(target, path):
             raise ValueError(f"refusing to write {target}: it is the input file")
+    if spikes_path.exists() and not out.exists() and not overwrite:
+        # a spike table of this run is only ever rewritten from its own results file
+        raise ValueError(f"{spikes_path} already exists (the spike table goes beside {out.name}); pass "
+                         f"overwrite=True (--overwrite) or choose another output")
     work = folder / f".{out.stem}.calcium-work"
     sha = file_sha256(path)
     source, found = _trace_source(path, dataset, work, sha, "the ΔF/F file")
