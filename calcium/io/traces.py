@@ -102,8 +102,6 @@ def _checked_traces(data, path: Path) -> np.ndarray:
         arr = as_traces(data, name=f"traces in {path}")
     except ValueError as exc:
         raise CalciumInputError(str(exc)) from None
-    if arr.dtype == bool:
-        arr = arr.astype(np.float64)
     return np.ascontiguousarray(arr.reshape(1, -1) if arr.ndim == 1 else arr)
 
 
@@ -426,7 +424,7 @@ def write_traces(path, traces, *, frame_rate: float | None = None, dataset: str 
     frame_rate : float, optional
         Frames per second. CSV: a ``time_s`` column (frame k at k /
         frame_rate) is written first. HDF5: a ``frame_rate`` file attribute.
-        ``.npy`` cannot hold it (ValueError).
+        ``.npy`` cannot hold it: a UserWarning says so and the rate is not stored.
     dataset : str, default "traces"
         HDF5 only: name of the dataset.
     inputs : sequence of path-like, optional
