@@ -165,7 +165,9 @@ class Kernel:
                             ("hill_n", check_positive(self.hill_n, "hill_n")),
                             ("hill_k", check_positive(self.hill_k, "hill_k"))):
             object.__setattr__(self, name, value)
-        object.__setattr__(self, "_terms", self._compute_terms())
+        t_peak = self._peak_time_unnormalised()  # solved once: the derived times all start from it
+        object.__setattr__(self, "_t_peak", t_peak)
+        object.__setattr__(self, "_terms", self._compute_terms(t_peak))
 
     # ------------------------------------------------------------------ shape
     def _unnormalised_terms(self) -> list[tuple[float, float]]:
@@ -195,9 +197,8 @@ class Kernel:
             hi *= 1.0 + 1e-9
         return _brentq(slope_sign, 0.0, hi, rise)
 
-    def _compute_terms(self) -> tuple[tuple[float, float], ...]:
+    def _compute_terms(self, t_peak: float) -> tuple[tuple[float, float], ...]:
         terms = self._unnormalised_terms()
-        t_peak = self._peak_time_unnormalised()
         peak = sum(w * math.exp(-t_peak / tau) for w, tau in terms)
         return tuple((self.amplitude * w / peak, tau) for w, tau in terms)
 
@@ -241,7 +242,7 @@ class Kernel:
     @property
     def time_to_peak_s(self) -> float:
         """Time from the spike to the peak of the response (0 for an instantaneous rise)."""
-        return self._peak_time_unnormalised()
+        return self._t_peak
 
     def _time_scale(self) -> float:
         return max(tau for _, tau in self._terms)
