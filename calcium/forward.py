@@ -44,6 +44,7 @@ from scipy.signal import lfilter
 
 from ._checks import check_choice, check_frame_rate, check_int, check_nonnegative, check_positive
 from .kernel import Kernel
+from .io.results import json_value
 
 __all__ = ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SPIKE_MODELS"]
 
@@ -445,14 +446,6 @@ class SimulatedRecording:
         return written
 
 
-def _json_ready(value):
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, np.generic):
-        return value.item()
-    return value
-
-
 def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator=None, rate_hz=1.0,
                        spike_model="poisson", refractory_s=0.002, isi_shape=1.0, burst_size_mean=3.0,
                        burst_isi_s=0.01, rate_modulation=None, rate_modulation_depth=0.5,
@@ -553,7 +546,7 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     (2, 300)
     """
     arguments = dict(locals())  # every parameter, before any is normalised
-    params = {key: _json_ready(value) for key, value in arguments.items() if key != "kernel"}
+    params = {key: json_value(value) for key, value in arguments.items() if key != "kernel"}
     n_rois = check_int(n_rois, "n_rois", minimum=1)
     duration_s = check_positive(duration_s, "duration_s")
     frame_rate = check_frame_rate(frame_rate)

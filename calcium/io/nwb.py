@@ -30,6 +30,7 @@ import numpy as np
 
 from .._checks import CalciumInputError
 from .results import _existing_file, atomic_output
+from .traces import _SPACING_TOLERANCE
 
 __all__ = ["export_nwb", "read_nwb_traces", "list_nwb_series"]
 
@@ -239,7 +240,7 @@ def _rate_of(series, path, name) -> float:
         raise CalciumInputError(f"{path}: series {name!r} has neither a rate nor two timestamps")
     steps = np.diff(stamps)
     step = float(np.median(steps))
-    if not step > 0 or np.max(np.abs(steps - step)) > 0.1 * step:
+    if not step > 0 or np.max(np.abs(steps - step)) > _SPACING_TOLERANCE * step:
         raise CalciumInputError(f"{path}: series {name!r} has unevenly spaced timestamps (median step "
                                 f"{step:.6g} s); a constant frame rate is required")
     return 1.0 / step

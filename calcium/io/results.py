@@ -218,14 +218,22 @@ def _attr_value(name, value):
         raise ValueError(f"attrs[{name!r}] cannot be stored in HDF5: {exc}") from None
 
 
-def _json_default(value):
+def json_value(value):
+    """``value`` with numpy scalars/arrays and paths turned into plain JSON types (other values unchanged)."""
     if isinstance(value, np.generic):
         return value.item()
     if isinstance(value, np.ndarray):
         return value.tolist()
     if isinstance(value, os.PathLike):
         return os.fspath(value)
-    raise TypeError(f"{type(value).__name__} is not JSON serialisable")
+    return value
+
+
+def _json_default(value):
+    converted = json_value(value)
+    if converted is value:
+        raise TypeError(f"{type(value).__name__} is not JSON serialisable")
+    return converted
 
 
 def _dataset_array(name, value) -> np.ndarray:

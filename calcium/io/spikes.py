@@ -29,7 +29,7 @@ from .results import _existing_file, write_csv
 
 __all__ = ["read_spike_times", "write_spike_table"]
 
-_TIME_NAMES = ("time_s", "time")
+from .traces import _TIME_COLUMNS as _TIME_NAMES  # one spelling of the time column for every CSV
 
 
 def _header_index(header: list[str], path: Path) -> tuple[int | None, int, int | None]:
