@@ -289,6 +289,32 @@ def test_a_full_disk_stops_the_run_clearly_and_the_rerun_completes(session, tmp_
     _assert_same_results(session["summary"].results_path, tmp_path / "out" / "results.h5")
 
 
+def test_a_disk_that_fills_up_under_the_rows_written_by_the_workers_stops_clearly(session, tmp_path, monkeypatch):
+    # The (rois, frames) rows go from the worker straight into the file (store.RowWriter); a full disk there
+    # must end the run as clearly as one under the parent's writes, and the rerun must complete.
+    from calcium.pipeline import store as store_module
+
+    config = _same_config(session, tmp_path / "out")
+    pwrite, calls = store_module._pwrite_all, []
+
+    def disk_fills_up(fd, data, offset):
+        calls.append(offset)
+        if len(calls) > 20:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        pwrite(fd, data, offset)
+
+    monkeypatch.setattr(store_module, "_pwrite_all", disk_fills_up)
+    with pytest.raises(OutputError, match="disk is full.*rerun the same command"):
+        run_pipeline(config, progress=False)
+    with open_results(tmp_path / "out" / "results.h5", allow_incomplete=True) as view:
+        assert 0 < view.chunk_done.sum() < N_ROIS and not view.complete
+    assert not (tmp_path / "out" / "spikes.csv").exists()
+    monkeypatch.setattr(store_module, "_pwrite_all", pwrite)
+    summary = run_pipeline(config, progress=False)
+    assert 0 < summary.chunks_resumed < N_ROIS
+    _assert_same_results(session["summary"].results_path, summary.results_path)
+
+
 def test_a_finished_run_is_not_computed_again(session, tmp_path, monkeypatch):
     config = _same_config(session, tmp_path / "out")
     run_pipeline(config, progress=False)

@@ -56,6 +56,24 @@ def test_chunks_written_are_read_back_with_their_done_flags(tmp_path):
         assert np.isnan(view.read("summary/value")).all()  # the fill value of a one-off dataset
 
 
+def test_chunks_written_between_commits_are_marked_done_only_by_the_next_commit(tmp_path):
+    path = tmp_path / "results.h5"
+    store = _open(path)
+    store.commit_interval_s = 3600.0
+    store.write_chunk(0, _chunk(0))  # the first chunk is committed at once
+    store.write_chunk(2, _chunk(2))  # within the interval: written, not yet marked done
+    # what a kill now would leave: the bytes of progress/chunk_done in the file (HDF5 contiguous storage)
+    offset = store._file["progress/chunk_done"].id.get_offset()
+    with open(path, "rb") as raw:
+        raw.seek(offset)
+        assert list(raw.read(3)) == [1, 0, 0]
+    assert store.done.tolist() == [True, False, False]
+    store.close()  # commits
+    with open_results(path, allow_incomplete=True) as view:
+        assert view.chunk_done.tolist() == [True, False, True]
+        assert np.array_equal(view.read("noise_sd", np.s_[8:10]), [4.0, 4.5])
+
+
 def test_reopening_the_same_run_resumes_and_keeps_finished_chunks(tmp_path):
     path = tmp_path / "results.h5"
     with _open(path) as store:

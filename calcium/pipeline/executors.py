@@ -35,7 +35,7 @@ from collections.abc import Callable, Iterable, Iterator
 from .._checks import check_choice, check_int
 
 __all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "ExecutorError",
-           "make_executor", "progress_bar", "BACKENDS"]
+           "make_executor", "prestart", "progress_bar", "BACKENDS"]
 
 BACKENDS = ("serial", "processes", "dask")
 # Chunks in flight per worker: one running, one queued so the worker never waits
@@ -175,11 +175,26 @@ def _process_context():
     """forkserver where available: no fork of a parent that holds threads or open HDF5 files."""
     if sys.platform.startswith("linux") and "forkserver" in multiprocessing.get_all_start_methods():
         context = multiprocessing.get_context("forkserver")
-        # The server imports the stages and the science modules once; every worker forked from it
-        # starts with them imported.
-        context.set_forkserver_preload(["calcium.pipeline.stages", "calcium.signal", "calcium.infer"])
+        # The server imports the stages and runs them once on a small invented chunk (calcium.pipeline._preload);
+        # every worker forked from it starts with the modules imported and the compiled functions loaded.
+        context.set_forkserver_preload(["calcium.pipeline._preload"])
         return context
     return multiprocessing.get_context("spawn")
+
+
+def prestart(backend: str) -> None:
+    """Start what the ``backend`` needs to start workers, in the background, before they are asked for.
+
+    For "processes" on Linux: the fork server, which spends a second or two
+    importing and warming up the stages (see :func:`_process_context`) while
+    the caller prepares the run. Does nothing for the other backends, or
+    when the server already runs (it lives as long as this process).
+    """
+    if backend != "processes" or _process_context().get_start_method() != "forkserver":
+        return
+    from multiprocessing import forkserver
+
+    forkserver.ensure_running()
 
 
 class ProcessExecutor(Executor):

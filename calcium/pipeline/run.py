@@ -29,7 +29,7 @@ from .. import __version__
 from .._checks import CalciumInputError
 from . import stages
 from .config import ConfigError, RunConfig, load_config, parameters_digest
-from .executors import make_executor, progress_bar
+from .executors import make_executor, prestart, progress_bar
 from .store import DatasetSpec, OutputError, ResultStore, check_output_folder, open_results
 
 __all__ = ["RunSummary", "run_pipeline", "infer_file", "write_session_report", "write_spike_table_from_results", "RESULTS_NAME", "SPIKES_NAME", "REPORT_FOLDER", "NWB_NAME"]
@@ -373,6 +373,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     """
     started = time.perf_counter()
     config = config_or_path if isinstance(config_or_path, RunConfig) else load_config(config_or_path)
+    prestart(config.execution.backend)  # the workers' fork server warms up while the inputs are checked
     folder = _output_folder(config)
     work = folder / _WORK_FOLDER  # created only when an input needs a binary copy
     results_path = folder / RESULTS_NAME
@@ -394,6 +395,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         "calcium_version": __version__,
     }
     run_hash = parameters_digest(parameters)
+    parts = work / f"spikes-{run_hash[:16]}"
     attrs = {
         "calcium_version": __version__,
         "frame_rate": prepared.frame_rate,
@@ -433,7 +435,8 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
                 prepared.source = _extraction(config, prepared, store, work, run_hash, progress)
             backend, workers, computed_rois = _run_chunks(
                 prepared.source, params, store, todo, backend=config.execution.backend,
-                workers=config.execution.workers, scheduler=config.execution.scheduler, progress=progress)
+                workers=config.execution.workers, scheduler=config.execution.scheduler, progress=progress,
+                parts=parts)
         if electrical_rois and not store.flag("electrical"):
             stages.electrical_step(store, prepared.electrical, prepared.frame_rate, prepared.n_frames,
                                    fit_options=_fit_options(config), scoring=config.scoring,
@@ -441,8 +444,8 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         if not store.complete:
             store.mark_complete()
     except KeyboardInterrupt:
+        store.close()  # (commits the chunks finished so far)
         done = int(store.done.sum())
-        store.close()
         _say(True, f"\ninterrupted: {done} of {store.n_chunks} chunks are saved in {results_path}; "
                    f"run the same command again to continue")
         raise
@@ -451,7 +454,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
 
     with open_results(results_path) as results:
         quality = results.read("quality_flags")
-    spikes_path = write_spike_table_from_results(results_path, folder / SPIKES_NAME)
+    spikes_path = write_spike_table_from_results(results_path, folder / SPIKES_NAME, parts=parts)
     report_path = None
     if config.report.enabled:
         report_path = write_session_report(results_path, folder / REPORT_FOLDER,
@@ -508,11 +511,21 @@ def _extraction(config: RunConfig, prepared: _Inputs, store: ResultStore, work: 
 
 
 def _run_chunks(source: stages.TraceSource, params, store: ResultStore, todo, *, backend: str, workers: int,
-                scheduler, progress, label: str = "ΔF/F + inference"):
-    """Compute the chunks ``todo`` with the chosen executor and write each to ``store`` as it arrives."""
+                scheduler, progress, parts: Path, label: str = "ΔF/F + inference"):
+    """Compute the chunks ``todo`` with the chosen executor and write each to ``store`` as it arrives.
+
+    The workers write the (rois, frames) results into the file themselves
+    (:class:`~calcium.pipeline.store.RowWriter`), except on a dask cluster
+    reached by address, whose workers may not see this machine's disk: there
+    the results come back to this process. Each chunk's lines of the spike
+    table are kept in ``parts`` (one file per chunk) until the table is
+    written.
+    """
     if backend != "serial" and len(todo) == 1:
         backend = "serial"  # one chunk: starting workers would only cost time
-    tasks = [(c, stages.ChunkTask(c, int(store.chunk_bounds[c]), int(store.chunk_bounds[c + 1]), source, params))
+    writer = None if backend == "dask" and scheduler else store.row_writer()
+    tasks = [(c, stages.ChunkTask(c, int(store.chunk_bounds[c]), int(store.chunk_bounds[c + 1]), source, params,
+                                  writer))
              for c in todo]
     bar = progress_bar(label if progress else False, total=source.n_rois, unit="ROI")
     if bar is not None:
@@ -531,6 +544,7 @@ def _run_chunks(source: stages.TraceSource, params, store: ResultStore, todo, *,
             results = executor.map_chunks(stages.process_chunk, tasks, progress=finished)
             with contextlib.closing(results):
                 for chunk_id, values in results:
+                    _write_part(parts, chunk_id, values.pop(stages.SPIKE_TABLE_KEY))
                     store.write_chunk(chunk_id, values)
                     rows = store.chunk_rows(chunk_id)
                     computed += rows.stop - rows.start
@@ -541,7 +555,27 @@ def _run_chunks(source: stages.TraceSource, params, store: ResultStore, todo, *,
     return backend, workers, computed
 
 
-def write_spike_table_from_results(results_path, path) -> Path:
+def _part_path(parts: Path, chunk_id: int) -> Path:
+    return parts / f"chunk-{chunk_id:06d}.csv"
+
+
+def _write_part(parts: Path, chunk_id: int, text: str) -> None:
+    """One chunk's spike-table lines, written under a temporary name and renamed into place."""
+    target = _part_path(parts, chunk_id)
+    tmp = target.with_name(f".{target.name}.tmp")
+    try:
+        parts.mkdir(parents=True, exist_ok=True)
+        with open(tmp, "w", encoding="utf-8", newline="") as handle:
+            handle.write(text)
+        os.replace(tmp, target)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise OutputError(exc.errno or errno.EIO, f"writing the spike lines of chunk {chunk_id} to {parts} "
+                                                  f"failed: {exc.strerror or exc}") from None
+
+
+def write_spike_table_from_results(results_path, path, *, parts=None) -> Path:
     """``roi,time_s,count`` CSV of the inferred spikes of a results file, written atomically.
 
     The layout of :func:`calcium.io.write_spike_table` (read it back with
@@ -549,7 +583,10 @@ def write_spike_table_from_results(results_path, path) -> Path:
     at ``k / frame_rate + spike_time_offset_s`` with the frame's count (spikes
     sharing a frame share the mean of their sub-frame times); a ROI without
     spikes gets the line ``roi,,0``. Streamed chunk by chunk, so the table
-    of a long session never sits in memory.
+    of a long session never sits in memory. ``parts`` is a folder of the
+    lines each chunk's worker produced (``chunk-NNNNNN.csv``, see
+    :func:`calcium.pipeline.stages.spike_table_text`); a chunk without its
+    file there is read from the results.
     """
     from ..io import atomic_output
 
@@ -559,17 +596,15 @@ def write_spike_table_from_results(results_path, path) -> Path:
         bounds = results.read("progress/chunk_bounds")
         with open(tmp, "w", encoding="utf-8", newline="") as handle:
             handle.write("roi,time_s,count\n")
-            for start, stop in zip(bounds[:-1], bounds[1:]):
-                counts = results.read("spike_counts", np.s_[start:stop])
-                offsets = results.read("spike_time_offset_s", np.s_[start:stop])
-                for k in range(counts.shape[0]):
-                    roi = int(start) + k
-                    frames = np.flatnonzero(counts[k])
-                    if frames.size == 0:
-                        handle.write(f"{roi},,0\n")
-                        continue
-                    times = np.maximum(frames / rate + offsets[k, frames].astype(np.float64), 0.0).tolist()
-                    handle.write("".join(f"{roi},{t!r},{n}\n" for t, n in zip(times, counts[k, frames].tolist())))
+            for chunk_id, (start, stop) in enumerate(zip(bounds[:-1], bounds[1:])):
+                part = _part_path(Path(parts), chunk_id) if parts is not None else None
+                if part is not None and part.is_file():
+                    with open(part, encoding="utf-8", newline="") as lines:
+                        shutil.copyfileobj(lines, handle)
+                    continue
+                handle.write(stages.spike_table_text(int(start), results.read("spike_counts", np.s_[start:stop]),
+                                                     results.read("spike_time_offset_s", np.s_[start:stop]),
+                                                     rate))
     return path
 
 
@@ -648,6 +683,7 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         raise ValueError(f"{spikes_path} already exists (the spike table goes beside {out.name}); pass "
                          f"overwrite=True (--overwrite) or choose another output")
     work = folder / f".{out.stem}.calcium-work"
+    prestart(backend)
     sha = file_sha256(path)
     source, found = _trace_source(path, dataset, work, sha, "the ΔF/F file")
     rate = _pick_frame_rate(frame_rate, found, path, "frame_rate")
@@ -668,9 +704,11 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
              "stage_arguments_json": json.dumps({"estimate_noise": params.noise,
                                                  "infer_spikes": {k: str(v) for k, v in inference.items()}}),
              "flag_bits_json": json.dumps({str(bit): name for bit, name in stages.FLAG_NAMES.items()})}
+    run_hash = parameters_digest(parameters)
+    parts = work / f"spikes-{run_hash[:16]}"
     store = ResultStore.open(out, datasets=stages.result_datasets(source.n_rois, source.n_frames, filtered=False,
                                                                   with_dff=False),
-                             chunk_bounds=bounds, run_hash=parameters_digest(parameters), attrs=attrs,
+                             chunk_bounds=bounds, run_hash=run_hash, attrs=attrs,
                              parameters=parameters, overwrite=overwrite)
     chunks_resumed = int(store.done.sum())
     computed, used_backend, used_workers = 0, backend, 1
@@ -679,16 +717,17 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         if todo:
             used_backend, used_workers, computed = _run_chunks(source, params, store, todo, backend=backend,
                                                                workers=workers, scheduler=None, progress=progress,
-                                                               label="inference")
+                                                               parts=parts, label="inference")
         if not store.complete:
             store.mark_complete()
     except KeyboardInterrupt:
+        store.close()  # (commits the chunks finished so far)
         _say(True, f"\ninterrupted: {int(store.done.sum())} of {store.n_chunks} chunks are saved in {out}; "
                    f"run the same command again to continue")
         raise
     finally:
         store.close()
-    write_spike_table_from_results(out, spikes_path)
+    write_spike_table_from_results(out, spikes_path, parts=parts)
     with open_results(out) as results:
         quality = results.read("quality_flags")
     shutil.rmtree(work, ignore_errors=True)

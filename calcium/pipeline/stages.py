@@ -35,6 +35,8 @@ __all__ = [
     "result_datasets",
     "auto_chunk_rois",
     "chunk_bounds",
+    "spike_table_text",
+    "SPIKE_TABLE_KEY",
     "FLAG_FAILED",
     "FLAG_LOW_SNR",
     "FLAG_SATURATION",
@@ -55,6 +57,8 @@ FLAG_NOT_CONVERGED = 32  # the inference solver stopped before converging
 FLAG_NAMES = {FLAG_FAILED: "failed", FLAG_LOW_SNR: "low SNR", FLAG_SATURATION: "saturation suspected",
               FLAG_F0: "F0 problem", FLAG_MISSING: "many missing frames", FLAG_NOT_CONVERGED: "not converged"}
 FLAG_TEXT_BYTES = 240
+#: Key of the spike-table lines in the dict returned by :func:`process_chunk` (not a dataset).
+SPIKE_TABLE_KEY = "spike_table_text"
 
 # About this many values per chunk when execution.chunk_rois = 0: 2**21
 # float64 values are 16 MiB per array, so a worker's temporaries stay in the
@@ -235,13 +239,19 @@ class StageParams:
 
 @dataclass(frozen=True)
 class ChunkTask:
-    """One unit of work: rows ``start:stop`` of ``source``."""
+    """One unit of work: rows ``start:stop`` of ``source``.
+
+    With a ``writer`` (:class:`calcium.pipeline.store.RowWriter`) the worker
+    writes the (rois, frames) results into the results file itself and
+    returns only the per-ROI values; without one it returns everything.
+    """
 
     chunk_id: int
     start: int
     stop: int
     source: TraceSource
     params: StageParams
+    writer: object = None
 
 
 def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: bool = True) -> list[DatasetSpec]:
@@ -341,9 +351,21 @@ def process_chunk(task: ChunkTask) -> dict:
 
     Arrays have the chunk's ROIs as first axis; (rois, frames) results are
     float32, counts uint16. Per-ROI failures are flagged, never raised.
+    The entry :data:`SPIKE_TABLE_KEY` holds the chunk's lines of the spike
+    table (:func:`spike_table_text`). With ``task.writer`` the (rois,
+    frames) results are written to the results file here and left out of
+    the returned dict.
     """
-    params = task.params
-    raw = task.source.read_rows(task.start, task.stop)
+    out = _process_rows(task.source.read_rows(task.start, task.stop), task.start, task.params)
+    if task.writer is not None:
+        task.writer.write(task.start, out)
+        for name in task.writer.names:
+            del out[name]
+    return out
+
+
+def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
+    """The stages of :func:`process_chunk` on rows already read (ROIs ``first_roi``, ``first_roi + 1``, ...)."""
     n, n_frames = raw.shape
     filtered = params.filter is not None
     with_dff = params.dff is not None
@@ -390,7 +412,51 @@ def process_chunk(task: ChunkTask) -> dict:
             _infer_roi(signal[k], noise[k], i, params, out, flags, reasons)
 
     out["flags"] = np.array(["; ".join(r) for r in reasons], dtype=object)
+    out[SPIKE_TABLE_KEY] = spike_table_text(first_roi, out["spike_counts"], out["spike_time_offset_s"],
+                                            params.frame_rate)
     return out
+
+
+def warm_up() -> None:
+    """Run the per-chunk stages once on a small invented chunk, so that later chunks start at full speed.
+
+    Loads every compiled (numba) function a chunk needs from its cache, and
+    the libraries behind the stages. Called once in the process that forks
+    the workers (see :mod:`calcium.pipeline._preload`): every worker then
+    starts with all of it loaded instead of loading it on its first chunk.
+    """
+    rng = np.random.default_rng(0)
+    frame_rate, n_frames = 30.0, 1200
+    t = np.arange(60) / frame_rate
+    response = 0.3 * (np.exp(-t / 0.8) - np.exp(-t / 0.08))
+    spikes = (rng.random((2, n_frames)) < 0.02).astype(np.float64)
+    dff = np.array([np.convolve(row, response)[:n_frames] for row in spikes])
+    raw = 100.0 * (1.0 + dff + rng.normal(0.0, 0.02, dff.shape))
+    raw[1, 300:310] = np.nan  # the weighted (missing frames) variants of the solvers as well
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _process_rows(raw, 0, StageParams(frame_rate=frame_rate))
+
+
+def spike_table_text(first_roi: int, counts: np.ndarray, offsets_s: np.ndarray, frame_rate: float) -> str:
+    """Lines ``roi,time_s,count`` of the spike table for consecutive ROIs from ``first_roi``.
+
+    One line per frame with spikes, at ``k / frame_rate + offset`` (at least
+    0) with the frame's count; a ROI without spikes gets ``roi,,0``. The
+    times are written with ``repr`` (they read back to the same float).
+    """
+    lines = []
+    for k in range(counts.shape[0]):
+        roi = int(first_roi) + k
+        frames = np.flatnonzero(counts[k])
+        if frames.size == 0:
+            lines.append(f"{roi},,0\n")
+            continue
+        times = np.maximum(frames / frame_rate + offsets_s[k, frames].astype(np.float64), 0.0).tolist()
+        prefix = f"{roi},"
+        fields = map(",".join, zip(map(repr, times), map(str, counts[k, frames].tolist())))
+        lines.append(prefix + ("\n" + prefix).join(fields) + "\n")
+    return "".join(lines)
 
 
 def _saturation(raw, finite, params: StageParams, out: dict, flags, reasons) -> None:

@@ -13,11 +13,20 @@ How a run survives a crash, a kill or a power cut
 * A chunk's rows are written, flushed and synced to disk, and only then is
   the chunk's byte in ``progress/chunk_done`` set (and flushed). A chunk
   killed half-way keeps its flag 0 and is computed again on the next run.
+  The chunks finished within about a second share one sync (a sync per
+  chunk would cost more than writing them); a kill loses at most that
+  second of work.
 * The file records the SHA-256 of the inputs and of the results-affecting
   parameters (``run_hash``). A rerun with the same ones continues where the
   last one stopped; with different ones it is refused unless the caller asks
   to overwrite.
-* Only the parent process writes; the workers return their results to it.
+* The large (rois, frames) datasets are written by whoever computed the
+  rows, straight into their bytes (:class:`RowWriter`: plain positioned
+  writes at offsets HDF5 fixed at creation, no HDF5 library call), so the
+  results never travel through the parent process. Everything else (the
+  per-ROI values, the done flags, all HDF5 metadata) is written by the
+  parent alone, and the parent's sync before a chunk's done flag covers the
+  rows the workers wrote (a sync flushes the file, whoever wrote to it).
 
 The layout is documented in ``docs/hdf5-layout.md``.
 """
@@ -26,7 +35,9 @@ from __future__ import annotations
 import contextlib
 import errno
 import json
+import math
 import os
+import time
 import shutil
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -34,7 +45,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["DatasetSpec", "ResultStore", "OutputError", "OutputMismatchError", "ResultsFile",
+__all__ = ["DatasetSpec", "ResultStore", "RowWriter", "OutputError", "OutputMismatchError", "ResultsFile",
            "open_results", "read_results", "FORMAT_NAME", "FORMAT_VERSION"]
 
 FORMAT_NAME = "calcium session results"
@@ -122,6 +133,69 @@ def _fixed_dcpl():
     return dcpl
 
 
+@dataclass(frozen=True)
+class RowWriter:
+    """Writes rows of the (rois, frames) datasets of a results file straight into their bytes.
+
+    Made by :meth:`ResultStore.row_writer`; small and picklable, so it goes to
+    the workers with their work. The datasets are contiguous, uncompressed,
+    little-endian and allocated at creation, so row ``i`` of a dataset is a
+    fixed byte range of the file: writing it changes nothing HDF5 keeps track
+    of. Several processes may write disjoint rows at once.
+
+    Attributes
+    ----------
+    path : str
+        The results file.
+    targets : tuple of (name, byte offset, dtype, values per row)
+    """
+
+    path: str
+    targets: tuple
+
+    @property
+    def names(self) -> tuple:
+        return tuple(name for name, *_ in self.targets)
+
+    def write(self, first_row: int, values: dict) -> None:
+        """Write ``values[name]`` (rows, frames) at rows ``first_row:...`` of every target dataset.
+
+        Raises
+        ------
+        OutputError
+            The write failed (disk full, file gone, permission); the chunk
+            is then not marked done and is computed again by a rerun.
+        KeyError, ValueError
+            A target missing from ``values`` or of the wrong shape.
+        """
+        fd = None
+        try:
+            fd = os.open(self.path, os.O_WRONLY)
+            for name, offset, dtype, row_values in self.targets:
+                array = np.ascontiguousarray(values[name], dtype=np.dtype(dtype))
+                if array.ndim != 2 or array.shape[1] != row_values:
+                    raise ValueError(f"{name}: expected rows of {row_values} values, got shape {array.shape}")
+                _pwrite_all(fd, memoryview(array).cast("B"), offset + first_row * row_values * array.itemsize)
+        except OSError as exc:
+            raise OutputError(getattr(exc, "errno", None) or errno.EIO,
+                              f"writing rows {first_row}+ to {self.path} failed: {_describe_oserror(exc)}. The "
+                              f"file stays marked incomplete and keeps every chunk finished so far; fix the cause "
+                              f"and rerun the same command to continue") from None
+        finally:
+            if fd is not None:
+                os.close(fd)
+
+
+def _pwrite_all(fd: int, data: memoryview, offset: int) -> None:
+    """os.pwrite until every byte is written (a positioned write may write fewer bytes than asked)."""
+    while len(data):
+        written = os.pwrite(fd, data, offset)
+        if written <= 0:
+            raise OSError(errno.EIO, "the write made no progress")
+        data = data[written:]
+        offset += written
+
+
 def _describe_oserror(exc: BaseException) -> str:
     code = getattr(exc, "errno", None)
     text = str(exc)
@@ -171,7 +245,12 @@ class ResultStore:
         ROI index where each chunk starts, plus the end (length n_chunks + 1).
     resumed : bool
         True when an existing file of the same run was reopened.
+    commit_interval_s : float
+        Chunks written within this many seconds of the last commit share
+        its next sync (see :meth:`commit`); 0 syncs after every chunk.
     """
+
+    commit_interval_s = 1.0
 
     def __init__(self, path: Path, handle, resumed: bool):
         self.path = path
@@ -180,6 +259,8 @@ class ResultStore:
         self.chunk_bounds = handle[f"{_PROGRESS}/chunk_bounds"][()]
         self._specs = json.loads(handle.attrs["datasets_json"])
         self._done = handle[f"{_PROGRESS}/chunk_done"][()].astype(bool)
+        self._written: list[int] = []  # chunks written since the last commit (not yet marked done)
+        self._last_commit = -math.inf
 
     # -- opening ---------------------------------------------------------
     @classmethod
@@ -363,6 +444,20 @@ class ResultStore:
         return self._file[name][selection]
 
     # -- writing ---------------------------------------------------------
+    def row_writer(self) -> RowWriter:
+        """A :class:`RowWriter` for every per-ROI (rois, frames) numeric dataset of the file."""
+        targets = []
+        for name, spec in self._specs.items():
+            if not spec["per_roi"] or len(spec["shape"]) != 2 or spec["dtype"].startswith("text"):
+                continue
+            dset = self._file[name]
+            offset = dset.id.get_offset()
+            if dset.chunks is not None or dset.compression is not None or offset is None or \
+                    dset.dtype.byteorder not in ("<", "|", "=" if np.little_endian else "<"):
+                raise RuntimeError(f"{self.path}:{name} is not a contiguous, allocated little-endian dataset")
+            targets.append((name, int(offset), dset.dtype.str, int(dset.shape[1])))
+        return RowWriter(str(self.path), tuple(targets))
+
     def _write(self, name: str, selection, values) -> None:
         """The single place where data reach the file (tests patch it to simulate a full disk)."""
         self._file[name][selection] = values
@@ -389,7 +484,10 @@ class ResultStore:
                           f"continue") from exc
 
     def write_chunk(self, chunk_id: int, values: dict) -> None:
-        """Write one chunk's rows of every dataset in ``values``, flush, then mark the chunk done.
+        """Write one chunk's rows of every dataset in ``values``, flush and sync, then mark the chunk done.
+
+        Rows written by a :class:`RowWriter` for this chunk must be written
+        before the call: the sync covers them.
 
         Parameters
         ----------
@@ -409,12 +507,33 @@ class ResultStore:
         try:
             for name, array in values.items():
                 self._write(name, rows, self._encode(name, array))
-            self._flush(sync=True)
-            self._write(f"{_PROGRESS}/chunk_done", chunk_id, 1)
-            self._flush(sync=False)
         except OSError as exc:
             self._fail(f"chunk {chunk_id}", exc)
-        self._done[chunk_id] = True
+        self._written.append(int(chunk_id))
+        if time.monotonic() - self._last_commit >= self.commit_interval_s:
+            self.commit()
+
+    def commit(self) -> None:
+        """Sync everything written so far to disk, then mark the chunks written since the last commit done.
+
+        :meth:`write_chunk` commits by itself when ``commit_interval_s`` has
+        passed since the last commit (one sync for the chunks of that
+        interval instead of one per chunk); :meth:`mark_complete` and
+        :meth:`close` commit what is left.
+        """
+        if not self._written:
+            return
+        written = sorted(self._written)
+        try:
+            self._flush(sync=True)
+            for chunk_id in written:
+                self._write(f"{_PROGRESS}/chunk_done", chunk_id, 1)
+            self._flush(sync=False)
+        except OSError as exc:
+            self._fail("chunk(s) " + ", ".join(map(str, written)), exc)
+        self._done[written] = True
+        self._written = []
+        self._last_commit = time.monotonic()
 
     def write_rows(self, name: str, selection, values) -> None:
         """Write part of any dataset (for the steps done once, after the chunks); not flushed."""
@@ -433,7 +552,8 @@ class ResultStore:
             self._fail(f"the {name} step", exc)
 
     def mark_complete(self) -> None:
-        """Flush, then set ``progress/complete`` (only when every chunk is done)."""
+        """Commit, then set ``progress/complete`` (only when every chunk is done)."""
+        self.commit()
         if not self._done.all():
             missing = np.flatnonzero(~self._done)
             raise RuntimeError(f"cannot mark {self.path} complete: chunk(s) {missing[:10].tolist()} not done")
@@ -447,6 +567,10 @@ class ResultStore:
             self._fail("the completion mark", exc)
 
     def close(self) -> None:
+        """Commit the chunks written (when that still works: an earlier error is not hidden), close the file."""
+        if self._file is not None and self._written:
+            with contextlib.suppress(OSError):
+                self.commit()
         handle, self._file = self._file, None
         if handle is not None:
             with contextlib.suppress(Exception):
