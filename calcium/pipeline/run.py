@@ -364,8 +364,11 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     Notes
     -----
     Memory: each worker holds one chunk of ROIs (``execution.chunk_rois``),
-    read by itself from the input file; the parent holds at most two
-    results per worker on their way to the file.
+    read by itself from the input file, and writes its (rois, frames)
+    results into the results file itself; the parent only receives the
+    per-ROI values and the chunk's spike-table lines. (On a dask cluster
+    reached by address the rows come back to the parent: at most two chunks
+    per worker on their way to the file.)
 
     With the processes or dask backend, a script calling this function must
     keep its top-level code under ``if __name__ == "__main__":`` (the
