@@ -102,6 +102,18 @@ def test_truncated_tiff_is_an_input_error_naming_the_file(tmp_path, compression)
             _all_chunks(movie, 8)
 
 
+def test_running_out_of_memory_is_not_reported_as_a_corrupt_file(tmp_path, monkeypatch):
+    path = tmp_path / "fine.tif"
+    tifffile.imwrite(path, _movie(frames=4), photometric="minisblack")
+
+    def no_memory(*args, **kwargs):
+        raise MemoryError("cannot allocate")
+
+    monkeypatch.setattr(tifffile, "TiffFile", no_memory)
+    with pytest.raises(MemoryError):
+        open_movie(path)
+
+
 def test_garbage_missing_and_empty_movie_files_are_input_errors(tmp_path):
     (tmp_path / "junk.tif").write_bytes(b"II*\x00" + bytes(range(256)) * 4)
     with pytest.raises(CalciumInputError, match="junk.tif"):

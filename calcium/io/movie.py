@@ -20,8 +20,9 @@ from .results import _existing_file, _load_npy, _output_suffix, _refuse_inputs, 
 __all__ = ["Movie", "open_movie", "as_movie", "write_movie", "MOVIE_SUFFIXES"]
 
 MOVIE_SUFFIXES = (".tif", ".tiff", ".npy")
-# What a broken TIFF raises inside tifffile (besides its own TiffFileError).
-_TIFF_ERRORS = (ValueError, OSError, EOFError, IndexError, KeyError, TypeError, RuntimeError, MemoryError)
+# What a broken TIFF raises inside tifffile (besides its own TiffFileError): reading garbage offsets and
+# counts ends in these. (Out of memory is not among them: that is not the file's fault.)
+_TIFF_ERRORS = (ValueError, OSError, EOFError, IndexError, KeyError, TypeError, RuntimeError)
 
 
 class _LogErrors(logging.Handler):
@@ -49,7 +50,10 @@ def _tiff_errors(path: Path, action: str):
     except (tifffile.TiffFileError, *_TIFF_ERRORS, ) as exc:
         if isinstance(exc, CalciumInputError):
             raise
-        raise CalciumInputError(f"{path}: cannot {action} (truncated or corrupt TIFF?): {exc}") from None
+        if isinstance(exc, OSError) and exc.errno is not None:  # the system refused (permissions, a folder, ...)
+            raise CalciumInputError(f"{path}: cannot {action}: {exc.strerror or exc}") from None
+        raise CalciumInputError(f"{path}: cannot {action} (truncated or corrupt TIFF?): "
+                                f"{type(exc).__name__}: {exc}") from None
     finally:
         logger.removeHandler(handler)
         logger.propagate = propagate
