@@ -68,10 +68,9 @@ _OK, _SINGULAR_POOL, _NO_BASELINE = 0, 1, 2
 _TOL_SPIKE = 1e-11
 _TOL_GRADIENT = 1e-11
 _MAX_PIVOTS = 500
-# Rounds of the exact finish during which a noise-matched penalty may still move (see _exact_finish).
-_MATCH_ROUNDS = 3
-# ... and, after the first, by at most this relative step.
-_MATCH_STEP = 0.02
+# Rounds of the exact finish during which a noise-matched penalty follows the support (see _exact_finish); then it
+# is held, and the pivoting's own rule against cycling applies.
+_MATCH_ROUNDS = 20
 # Values below this are set to 0 in the decaying recursions: far below any
 # meaningful calcium level, and it keeps the arithmetic out of the (very slow)
 # subnormal range.
@@ -706,8 +705,7 @@ def _pools_solve(T, g1, g2, h, starts, n, free0, fit_b, shift, lam, sums, dp, pv
     ``shift`` above the sums' level).  The next pool's p is linear in
     (v, p).  A backward recursion over the pools carries the optimal
     cost-to-go as a quadratic in (p, b'); a forward pass recovers each
-    pool's (v, p) into ``pv``, ``pp`` (the calcium itself is filled by _fill
-    or _fill_check).
+    pool's (v, p) into ``pv``, ``pp`` (the calcium itself is filled by _fill).
 
     With ``affine`` the optimum is returned as a function of the penalty,
     (v, p, b') = x0 - lam x1: the penalty only enters the linear terms, so
@@ -851,9 +849,10 @@ def _fill(T, g1, g2, h, starts, n, pv, pp, c, s):
 
 
 @njit(cache=True, fastmath=_FMA)
-def _fill_check(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowed, use_allowed, tol_s, tol_g,
-                c, s, bad, bad_on, bad_grad):
-    """Fill the calcium from the pools' (v, p) and check the KKT conditions, in one backward pass.
+def _check_pools(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowed, use_allowed, tol_s, tol_g, bad,
+                 bad_on, bad_grad):
+    """Check the KKT conditions of the pools' (v, p) in one backward pass (the calcium is computed on the fly;
+    _fill stores it once the check passes).
 
     The gradient lam - z_t, z_t = sum_{tau >= t} h_{tau - t} w_tau (y_tau - b - c_tau),
     is the backward AR recursion of the residual.  The violators (a negative
@@ -875,8 +874,6 @@ def _fill_check(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowed
             for t in range(en - 1, st, -1):
                 k = t - st
                 x = v * h[k] + pg * h[k - 1]
-                c[t] = x
-                s[t] = 0.0
                 z = g1 * z1 + ((y[t] - b - x) + g2 * z2)  # one fused step on the chain through z1
                 z2 = z1
                 z1 = z
@@ -889,8 +886,6 @@ def _fill_check(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowed
             for t in range(en - 1, st, -1):
                 k = t - st
                 x = v * h[k] + pg * h[k - 1]
-                c[t] = x
-                s[t] = 0.0
                 r = (y[t] - b - x) if unit else w[t] * (y[t] - b - x)
                 z = g1 * z1 + (r + g2 * z2)
                 z2 = z1
@@ -902,7 +897,6 @@ def _fill_check(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowed
                     bad_grad[n_bad] = lam - z
                     n_bad += 1
         t = st
-        c[t] = v
         r = (y[t] - b - v) if unit else w[t] * (y[t] - b - v)
         z = g1 * z1 + (r + g2 * z2)
         z2 = z1
@@ -919,19 +913,16 @@ def _fill_check(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowed
                 c1 = 0.0
                 c2 = 0.0
             x = v - g1 * c1 - g2 * c2
-            s[t] = x
             if x < -tol_s:
                 bad[n_bad] = t
                 bad_on[n_bad] = True
                 bad_grad[n_bad] = lam - z
                 n_bad += 1
-        else:
-            s[t] = 0.0
-            if z > limit and (not use_allowed or allowed[t]):
-                bad[n_bad] = t
-                bad_on[n_bad] = False
-                bad_grad[n_bad] = lam - z
-                n_bad += 1
+        elif z > limit and (not use_allowed or allowed[t]):
+            bad[n_bad] = t
+            bad_on[n_bad] = False
+            bad_grad[n_bad] = lam - z
+            n_bad += 1
         en = st
     return n_bad
 
@@ -1149,8 +1140,9 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
     current support equals ``target`` (_match_penalty), so that the
     noise-matched penalty and its support are found together.
 
-    Returns (baseline, penalty, solves, converged, n, free0, whether the
-    final starts are in starts2).
+    The calcium and spikes are stored in ``c``, ``s`` once the conditions
+    hold (not when it fails to converge).  Returns (baseline, penalty,
+    solves, converged, n, free0, whether the final starts are in starts2).
     """
     T = y.shape[0]
     best = T + 2
@@ -1165,13 +1157,13 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
             solves += 1
             b_cur, n, free0 = _solve_pools(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b_cur, cur, n, free0,
                                            sums, dp, pv, pp, tiny, True)
+        moved = False
         if target > 0.0 and it < max_match:
             lam_new, b0, b1, solved = _match_penalty(T, g1, g2, h, cur, n, free0, fit_b, b_cur - bb, lam, sums, dp,
                                                      pv, pp, pv1, pp1, syy, sy, target, tiny)
             if solved:
-                # after the first round only small moves: a penalty that keeps moving while the support
-                # changes can stall the pivoting
-                if lam_new == lam_new and (it == 0 or abs(lam_new - lam) <= _MATCH_STEP * lam):
+                if lam_new == lam_new:
+                    moved = lam_new != lam
                     lam = lam_new
                 _at_penalty(n, pv, pp, pv1, pp1, lam)
                 if fit_b:
@@ -1179,11 +1171,13 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
             else:
                 b_cur, n, free0 = _solve_pools(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b_cur, cur, n,
                                                free0, sums, dp, pv, pp, tiny, True)
-        n_bad = _fill_check(y, w, unit, g1, g2, h, lam, b_cur, cur, n, free0, pv, pp, allowed, use_allowed,
-                            tol_s, _TOL_GRADIENT * (lam + tol_base), c, s, bad, bad_on, bad_grad)
+        n_bad = _check_pools(y, w, unit, g1, g2, h, lam, b_cur, cur, n, free0, pv, pp, allowed, use_allowed,
+                             tol_s, _TOL_GRADIENT * (lam + tol_base), bad, bad_on, bad_grad)
         if n_bad == 0:
+            _fill(T, g1, g2, h, cur, n, pv, pp, c, s)
             return b_cur, lam, solves, True, n, free0, swapped
-        if n_bad < best:
+        if moved or n_bad < best:
+            # (a moved penalty is a new problem: the count of violators starts afresh)
             best = n_bad
             tries = 3
             full = True

@@ -15,10 +15,11 @@ r"""Automatic parameters of the deconvolution: noise level, AR coefficients, pen
   problem of [1]_, solved through its penalised form).  On a fixed support
   the solution is affine in :math:`\lambda`, so the residual is a quadratic
   in :math:`\lambda` that is solved exactly.  That step is taken inside the
-  exact solver right after its first support solve, so that its pivoting
-  already works at (nearly) the final penalty: usually one solve; a
-  safeguarded iteration of such steps (warm-started on the previous
-  support) follows if needed, as suggested by Friedrich et al. (2017) [2]_.
+  exact solver after each support solve of its first rounds, so that the
+  pivoting and the penalty reach the final support together: usually one
+  solve; a safeguarded iteration of such steps (warm-started on the
+  previous support) follows if needed, as suggested by Friedrich et al.
+  (2017) [2]_.
 
 References
 ----------
@@ -358,8 +359,9 @@ def _search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESI
                     b0=None, copy=True):
     """Noise-matching penalty on prepared inputs; returns (lam, c, s, b, iterations, converged, rss, target, solves).
 
-    ``start`` is a first guess of the penalty (default: twice the noise
-    seen through the kernel, where the search usually ends), ``b0`` of a
+    ``start`` is a first guess of the penalty (default: the noise seen
+    through the kernel, a little below where the search usually ends: from
+    below, the first solve can move the penalty onto the target), ``b0`` of a
     free baseline (for the first pool pass).  With ``copy`` False, c and s
     may be the work's own arrays (valid until its next use).
     """
@@ -386,7 +388,7 @@ def _search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESI
         lam = float(start)
     else:
         _, _, tab = engine.work.kernel(engine.g1, engine.g2)
-        lam = 2.0 * noise_sd * math.sqrt(float(tab[0, -1]))  # sqrt(sum h^2)
+        lam = noise_sd * math.sqrt(float(tab[0, -1]))  # sqrt(sum h^2)
     total_its = 0
     best = None
     live = False  # best holds the work's arrays (the latest solve): copied before they are overwritten
