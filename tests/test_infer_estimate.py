@@ -50,6 +50,17 @@ def test_autocovariance_matches_numpy_on_observed_pairs():
         assert got[k] == pytest.approx(expected, rel=1e-12)
 
 
+def test_autocovariance_of_a_fully_observed_trace_matches_numpy():
+    # reference: numpy mean of products of the centred trace (the path without missing frames)
+    rng = np.random.default_rng(1)
+    for size in (7, 501, 4096):
+        y = np.cumsum(rng.normal(size=size)) * 0.1 + 2.0
+        got = _autocovariance(y, np.ones(size, dtype=bool), 5)
+        d = y - y.mean()
+        for k in range(6):
+            assert got[k] == pytest.approx(np.mean(d[:size - k] * d[k:]), rel=1e-11, abs=1e-14)
+
+
 @pytest.mark.parametrize("indicator,frame_rate", [("GCaMP6s", 30.0), ("GCaMP6f", 60.0)])
 def test_noise_and_decay_are_recovered_from_simulated_recordings(indicator, frame_rate):
     # reference: forward model with known kinetics and noise; targets: decay within 10 %, noise within 5 %

@@ -203,14 +203,19 @@ _FMA = {"contract"}
 @njit(cache=True)
 def _impulse_and_length(g1, g2, n):
     """(h, K): the impulse response and the number of its leading entries that can be non-zero."""
-    h = np.zeros(max(n, 2))
+    h = np.empty(max(n, 2))
     h[0] = 1.0
     h[1] = g1
+    h1 = g1  # h[k - 1] and h[k - 2], kept out of memory (the recursion is one long chain)
+    h2 = 1.0
     for k in range(2, n):
-        x = g1 * h[k - 1] + g2 * h[k - 2]
-        if abs(x) < _FLUSH and abs(h[k - 1]) < _FLUSH:
+        x = g1 * h1 + g2 * h2
+        if abs(x) < _FLUSH and abs(h1) < _FLUSH:
+            h[k:] = 0.0
             return h, k  # the rest is 0: stop before subnormal numbers slow everything down
         h[k] = x
+        h2 = h1
+        h1 = x
     return h, max(n, 2)
 
 
@@ -870,29 +875,32 @@ def _check_pools(y, w, unit, g1, g2, h, lam, b, starts, n, free0, pv, pp, allowe
         st = starts[i]
         v = pv[i]
         pg = pp[i] * g2
+        # (the frames of the pool are read through views indexed by k, the frame within the pool: that loop
+        # compiles to noticeably faster code than one indexed by t)
+        yp = y[st:en]
         if unit and not use_allowed:  # the common case, without the per-frame tests of the others
-            for t in range(en - 1, st, -1):
-                k = t - st
+            for k in range(en - st - 1, 0, -1):
                 x = v * h[k] + pg * h[k - 1]
-                z = g1 * z1 + ((y[t] - b - x) + g2 * z2)  # one fused step on the chain through z1
+                z = g1 * z1 + ((yp[k] - b - x) + g2 * z2)  # one fused step on the chain through z1
                 z2 = z1
                 z1 = z
                 if z > limit:
-                    bad[n_bad] = t
+                    bad[n_bad] = st + k
                     bad_on[n_bad] = False
                     bad_grad[n_bad] = lam - z
                     n_bad += 1
         else:
-            for t in range(en - 1, st, -1):
-                k = t - st
+            wp = yp if unit else w[st:en]
+            ap = allowed[st:en] if use_allowed else allowed
+            for k in range(en - st - 1, 0, -1):
                 x = v * h[k] + pg * h[k - 1]
-                r = (y[t] - b - x) if unit else w[t] * (y[t] - b - x)
+                r = (yp[k] - b - x) if unit else wp[k] * (yp[k] - b - x)
                 z = g1 * z1 + (r + g2 * z2)
                 z2 = z1
                 z1 = z
                 # (allowed first: with a restricted support most frames are not, and that test predicts well)
-                if (not use_allowed or allowed[t]) and z > limit:
-                    bad[n_bad] = t
+                if (not use_allowed or ap[k]) and z > limit:
+                    bad[n_bad] = st + k
                     bad_on[n_bad] = False
                     bad_grad[n_bad] = lam - z
                     n_bad += 1
@@ -1153,14 +1161,21 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
     other = starts2
     swapped = False
     for it in range(max_iter):
-        if not (it == 0 and presolved):
-            solves += 1
-            b_cur, n, free0 = _solve_pools(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b_cur, cur, n, free0,
-                                           sums, dp, pv, pp, tiny, True)
         moved = False
         if target > 0.0 and it < max_match:
+            # the solve that matches the penalty also gives the optimum at any penalty (the affine form): no
+            # separate solve at the current one, unless the pools cannot be solved as they are
+            if not (it == 0 and presolved):
+                solves += 1
+                _pool_sums(y, w, unit, g1, g2, h, tab, zy, tail, bb, fit_b, cur, n, sums)
             lam_new, b0, b1, solved = _match_penalty(T, g1, g2, h, cur, n, free0, fit_b, b_cur - bb, lam, sums, dp,
                                                      pv, pp, pv1, pp1, syy, sy, target, tiny)
+            if not solved:
+                # spikes the data cannot determine: taken out of the support by the plain solve (sums current)
+                b_cur, n, free0 = _solve_pools(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b_cur, cur, n,
+                                               free0, sums, dp, pv, pp, tiny, False)
+                lam_new, b0, b1, solved = _match_penalty(T, g1, g2, h, cur, n, free0, fit_b, b_cur - bb, lam, sums,
+                                                         dp, pv, pp, pv1, pp1, syy, sy, target, tiny)
             if solved:
                 if lam_new == lam_new:
                     moved = lam_new != lam
@@ -1171,6 +1186,10 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
             else:
                 b_cur, n, free0 = _solve_pools(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b_cur, cur, n,
                                                free0, sums, dp, pv, pp, tiny, True)
+        elif not (it == 0 and presolved):
+            solves += 1
+            b_cur, n, free0 = _solve_pools(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b_cur, cur, n, free0,
+                                           sums, dp, pv, pp, tiny, True)
         n_bad = _check_pools(y, w, unit, g1, g2, h, lam, b_cur, cur, n, free0, pv, pp, allowed, use_allowed,
                              tol_s, _TOL_GRADIENT * (lam + tol_base), bad, bad_on, bad_grad)
         if n_bad == 0:
