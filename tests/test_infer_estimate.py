@@ -14,10 +14,11 @@ import numpy as np
 import pytest
 
 from calcium.forward import simulate_recording
-from calcium.infer.ar import _prepare_weights, _solve
+from calcium.infer.ar import _Work, _prepare_weights, _solve
 from calcium.infer.estimate import (_autocovariance, _coefficient_derivative, _coefficients_from_times,
-                                    _times_from_coefficients, _yule_walker, estimate_ar_coefficients,
-                                    estimate_noise_sd, penalty_for_noise, signal_detected)
+                                    _event_support, _project_out, _times_from_coefficients, _yule_walker,
+                                    estimate_ar_coefficients, estimate_noise_sd, penalty_for_noise,
+                                    signal_detected)
 from calcium.kernel import Kernel
 from calcium.signal.noise import estimate_noise
 
@@ -152,6 +153,39 @@ def test_kinetics_gradient_matches_finite_differences():
     step = 1e-5
     numeric = [(fit(theta + step * e)[0] - fit(theta - step * e)[0]) / (2 * step) for e in np.eye(2)]
     np.testing.assert_allclose(gradient, numeric, rtol=1e-3)
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_projection_removes_the_least_squares_fit_by_a_constant_and_the_pool_responses(weighted):
+    # reference: numpy.linalg.lstsq on the dense design [1, h shifted to each pool start] (weighted rows by
+    # sqrt(w)); the residual of a least-squares fit is what the projection leaves
+    rng = np.random.default_rng(3)
+    T, g = 300, np.array([1.6, -0.63])
+    x = rng.normal(size=T)
+    starts = np.array([0, 17, 40, 41, 120, 250])
+    w = rng.uniform(0.2, 2.0, size=T) if weighted else np.ones(0)
+    h = np.zeros(T)
+    h[0], h[1] = 1.0, g[0]
+    for k in range(2, T):
+        h[k] = g[0] * h[k - 1] + g[1] * h[k - 2]
+    for free0 in (True, False):
+        cols = [np.ones(T)] + [np.concatenate([np.zeros(t), h[:T - t]]) for t in starts if t > 0 or free0]
+        A = np.array(cols).T
+        sw = np.sqrt(w) if weighted else np.ones(T)
+        coef, *_ = np.linalg.lstsq(A * sw[:, None], x * sw, rcond=None)
+        got = _project_out(x, w, not weighted, g[0], g[1], _Work(T), starts, free0, 1e-13)
+        np.testing.assert_allclose(got, x - A @ coef, atol=1e-10)
+
+
+def test_event_support_marks_the_runs_whose_total_reaches_the_size():
+    # reference: the definition, written out run by run
+    s = np.array([0.0, 0.5, 0.6, 0.0, 0.2, 0.0, 0.0, 1.5, 0.0, 0.3, 0.3, 0.5])
+    expected = np.zeros(s.size, dtype=bool)
+    expected[[1, 2]] = True  # 1.1
+    expected[7] = True  # 1.5
+    expected[[9, 10, 11]] = True  # 1.1 (at the end of the trace)
+    np.testing.assert_array_equal(_event_support(s, 1.0), expected)
+    assert not _event_support(np.zeros(5), 1.0).any()
 
 
 def test_estimation_arguments_are_checked():

@@ -513,14 +513,14 @@ _KINETICS_XTOL = 1e-2  # relative change of a time constant at which the refinem
 
 def _event_support(s: np.ndarray, min_size: float) -> np.ndarray:
     """Frames of the events (runs of adjacent non-zero spikes) whose total is >= min_size."""
-    from .counts import activity_events
+    from .counts import _events
 
-    starts, stops = activity_events(s)
+    starts, stops, totals = _events(s, 0)
     marks = np.zeros(s.size + 1, dtype=np.int64)
-    if starts.size:
-        big = np.add.reduceat(s, starts) >= min_size
-        np.add.at(marks, starts[big], 1)
-        np.add.at(marks, stops[big], -1)
+    big = totals >= min_size
+    # (runs of non-zero frames are separated by a zero frame: no start is also a stop)
+    marks[starts[big]] = 1
+    marks[stops[big]] = -1
     return np.cumsum(marks[:-1]) > 0
 
 
@@ -538,25 +538,45 @@ def _coefficient_derivative(c, g1, g2, u):
         c_prev = c[t]
 
 
-def _project_out(x, w, unit, g1, g2, work, starts, free0, tiny):
-    """x minus its (weighted) least-squares fit by a constant and spikes at the pool ``starts``."""
+def _project_out(x, w, unit, g1, g2, work, starts, free0, tiny, out=None):
+    """x minus its (weighted) least-squares fit by a constant and spikes at the pool ``starts`` (into ``out``)."""
     T = x.size
     n = starts.size
     h, _, tab = work.kernel(g1, g2)
-    bb = float(np.mean(x)) if unit else float(np.dot(w, x) / np.sum(w))
-    zx = np.empty(T + 2)
-    tail = np.empty(T + 1)
+    out = np.empty(T) if out is None else out
+    _project_out_into(x, w, unit, g1, g2, h, tab, starts, n, free0, tiny, np.empty(T + 2), np.empty(T + 1),
+                      np.empty((11, n)), work.dp, work.pv1, work.pp1, out, work.s)
+    return out
+
+
+@njit(cache=True)
+def _project_out_into(x, w, unit, g1, g2, h, tab, starts, n, free0, tiny, zx, tail, sums, dp, pv, pp, out, spare):
+    """_project_out in one call (scratch arrays given; ``spare`` is overwritten)."""
+    T = x.shape[0]
     if unit:
+        acc = 0.0
+        for t in range(T):
+            acc += x[t]
+        bb = acc / T
         _backward_filter(x, bb, g1, g2, zx, tail)
-    sums = np.empty((11, n))
+    else:
+        acc = 0.0
+        sw = 0.0
+        for t in range(T):
+            acc += w[t] * x[t]
+            sw += w[t]
+        bb = acc / sw
     _pool_sums(x, w, unit, g1, g2, h, tab, zx, tail, bb, True, starts, n, sums)
-    bp, _, status, _ = _pools_solve(T, g1, g2, h, starts, n, free0, True, 0.0, 0.0, sums, work.dp, work.pv1,
-                                    work.pp1, work.pv1, work.pp1, False, tiny)
+    bp, _, status, _ = _pools_solve(T, g1, g2, h, starts, n, free0, True, 0.0, 0.0, sums, dp, pv, pp, pv, pp, False,
+                                    tiny)
     if status != _OK:
-        return x - bb
-    fitted = np.empty(T)
-    _fill(T, g1, g2, h, starts, n, work.pv1, work.pp1, fitted, np.empty(T))
-    return x - (bb + bp) - fitted
+        for t in range(T):
+            out[t] = x[t] - bb
+        return
+    _fill(T, g1, g2, h, starts, n, pv, pp, out, spare)
+    level = bb + bp
+    for t in range(T):
+        out[t] = x[t] - level - out[t]
 
 
 def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noise_sd):
@@ -602,8 +622,9 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
         """The criterion at theta, and the state of its solution (calcium, baseline, coefficients, support)."""
         tr, td = (0.0, math.exp(theta[0])) if order == 1 else (math.exp(theta[0]), math.exp(theta[1]))
         gg = _coefficients_from_times(tr, td, frame_rate, order)
+        # (c is the work's own array: it is used up before the next fit)
         c, _, b, _, _ = _solve(yc, w, unit, gg, 0.0, "fit", 0.0, b0=b_cur, support=support if first else PREVIOUS,
-                               allowed=support, work=work)
+                               allowed=support, work=work, copy=False)
         return float(_weighted_rss(yc, w, unit, b, c)), (c, b, gg, work.starts[:work.n_pools].copy(), work.free0)
 
     theta = np.array([math.log(decay_s)] if order == 1 else [math.log(rise_s), math.log(decay_s)])
@@ -625,7 +646,9 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
             J = np.array([(u - d * u_prev) * (-q * math.log(q)), (u - q * u_prev) * (-d * math.log(d))])
         else:
             J = (u * (-d * math.log(d)))[None, :]
-        perp = np.array([_project_out(col, w, unit, g1, g2, work, starts, free0, tiny) for col in J])
+        perp = np.empty_like(J)
+        for i in range(J.shape[0]):
+            _project_out(J[i], w, unit, g1, g2, work, starts, free0, tiny, perp[i])
         grad = -2.0 * (J @ r)
         hess = 2.0 * (perp @ (perp.T if unit else (w * perp).T))
         while True:
