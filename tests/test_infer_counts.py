@@ -13,8 +13,8 @@ import pytest
 import scipy.optimize
 import scipy.signal
 
-from calcium.infer.counts import (activity_events, event_sizes, events_to_spikes, quantal_size,
-                                  refit_on_support, spike_unit)
+from calcium.infer.counts import (_sorted_median, _sorted_quantile, _std, activity_events, event_sizes,
+                                  events_to_spikes, quantal_size, refit_on_support, spike_unit)
 from calcium.kernel import Kernel
 
 PHASES = (np.arange(64) + 0.5) / 64  # the positions within a frame that spike_unit averages over
@@ -95,3 +95,15 @@ def test_refit_on_a_support_is_the_non_negative_least_squares_fit():
     np.testing.assert_allclose(refit[cols], expected, atol=1e-8)
     assert np.all(refit[~support] == 0) and baseline == 0.0
     np.testing.assert_allclose(calcium, K @ expected, atol=1e-8)
+
+
+def test_quantiles_of_sorted_values_and_the_spread_equal_numpys():
+    # reference: numpy.percentile (default linear method), numpy.median and numpy.std, value for value
+    rng = np.random.default_rng(4)
+    for n in (1, 2, 3, 4, 7, 100, 801):
+        x = rng.lognormal(size=n)
+        ordered = np.sort(x)
+        for q in (0.25, 0.5, 0.75, 0.9):
+            assert _sorted_quantile(ordered, q) == np.percentile(x, 100 * q)
+        assert _sorted_median(ordered) == np.median(x)
+        assert _std(x) == np.std(x)

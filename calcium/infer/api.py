@@ -24,8 +24,8 @@ from numba import njit
 
 from .._checks import MissingFrames, as_traces, check_frame_rate, check_int, check_positive, require_some_data
 from .ar import _check_baseline, _check_penalty, _objective, _prepare_weights, _scratch, _solve
-from .counts import SpikeUnit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
-    quantal_size, spike_unit
+from .counts import SpikeUnit, _spike_unit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
+    quantal_size
 from .estimate import MAX_KINETICS_FRAMES, _estimate_kinetics, _search_penalty, estimate_noise_sd, signal_detected
 
 __all__ = ["SpikeInference", "infer_spikes", "infer_spikes_many"]
@@ -299,7 +299,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
 
     if kernel is None:
         shape = Kernel.from_ar_coefficients(g, frame_rate, amplitude=1.0)
-        per_amplitude = spike_unit(shape, frame_rate, g)
+        per_amplitude = _spike_unit(shape, frame_rate, g)
         if spike_size is not None:
             kernel = shape.scaled(spike_size)
             unit = SpikeUnit(per_amplitude.size * spike_size, per_amplitude.lag_frames, per_amplitude.spread)
@@ -316,7 +316,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
             kernel = shape.scaled(amplitude)
             unit = SpikeUnit(q, per_amplitude.lag_frames, per_amplitude.spread)
     else:
-        unit = spike_unit(kernel, frame_rate, g)
+        unit = _spike_unit(kernel, frame_rate, g)
 
     activity = s_fit / unit.size
     # an event must also stand out of the noise of its own size (z >= 2.5)

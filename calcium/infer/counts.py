@@ -86,8 +86,11 @@ def spike_unit(kernel, frame_rate, coefficients) -> SpikeUnit:
     -------
     SpikeUnit
     """
-    frame_rate = check_frame_rate(frame_rate)
-    g = check_ar_coefficients(coefficients)
+    return _spike_unit(kernel, check_frame_rate(frame_rate), check_ar_coefficients(coefficients))
+
+
+def _spike_unit(kernel, frame_rate: float, g: np.ndarray) -> SpikeUnit:
+    """spike_unit on checked arguments."""
     J = 2
     n = J + _EVENT_FRAMES + 2
     frames = np.arange(n)
@@ -100,8 +103,8 @@ def spike_unit(kernel, frame_rate, coefficients) -> SpikeUnit:
     part = s[:, J:J + _EVENT_FRAMES]
     sizes = part.sum(axis=1)
     lags = part @ np.arange(J, J + _EVENT_FRAMES) / sizes - spike
-    return SpikeUnit(size=float(sizes.mean()), lag_frames=float(np.mean(lags)),
-                     spread=float(sizes.std() / sizes.mean()))
+    mean = float(sizes.sum() / sizes.size)  # (numpy's mean and std, without their dispatch)
+    return SpikeUnit(size=mean, lag_frames=float(lags.sum() / lags.size), spread=_std(sizes) / mean)
 
 
 def quantal_size(sizes, *, min_size, min_events=3):
@@ -137,17 +140,21 @@ def quantal_size(sizes, *, min_size, min_events=3):
     if sizes.size < min_events:
         return None
     logs = np.log(sizes)
-    upper, lower = np.percentile(logs, [75, 25])
-    spread = min(np.std(logs), (upper - lower) / 1.34)
+    # (the quantiles and medians below are read off sorted copies: the same values as numpy's, without its
+    # per-call overhead)
+    ordered = np.sort(sizes)
+    ordered_logs = np.sort(logs)
+    upper, lower = _sorted_quantile(ordered_logs, 0.75), _sorted_quantile(ordered_logs, 0.25)
+    spread = min(_std(logs), (upper - lower) / 1.34)
     if not spread > 0:
-        return float(np.median(sizes))
+        return _sorted_median(ordered)
     bandwidth = 0.9 * spread * logs.size ** (-0.2)
 
     # binned estimate: size-weighted histogram of the log sizes (bins of bandwidth / 8) smoothed by the
     # Gaussian kernel
     step = bandwidth / 8.0
-    lo = logs.min() - 4 * bandwidth
-    n_bins = int(np.ceil((logs.max() + 4 * bandwidth - lo) / step)) + 1
+    lo = ordered_logs[0] - 4 * bandwidth
+    n_bins = int(np.ceil((ordered_logs[-1] + 4 * bandwidth - lo) / step)) + 1
     hist = np.bincount(np.round((logs - lo) / step).astype(np.int64), weights=sizes, minlength=n_bins)
     offsets = np.arange(-32, 33)
     density = np.convolve(hist, np.exp(-0.5 * (offsets / 8.0) ** 2), mode="same")
@@ -157,8 +164,10 @@ def quantal_size(sizes, *, min_size, min_events=3):
         return float(np.interp(point, grid, density))
 
     def refine(mode):
-        near = sizes[(sizes > 0.7 * mode) & (sizes < 1.3 * mode)]
-        return (float(np.median(near)) if near.size else mode), near.size
+        # the sizes in (0.7 mode, 1.3 mode): a slice of the sorted sizes
+        near = ordered[np.searchsorted(ordered, 0.7 * mode, side="right"):
+                       np.searchsorted(ordered, 1.3 * mode, side="left")]
+        return (_sorted_median(near) if near.size else mode), near.size
 
     q, _ = refine(float(np.exp(grid[np.argmax(density)])))
     for _ in range(3):  # is the peak really pairs (or triples) of spikes?
@@ -167,6 +176,31 @@ def quantal_size(sizes, *, min_size, min_events=3):
             break
         q = half
     return q
+
+
+def _sorted_quantile(ordered, q: float) -> float:
+    """Quantile q of sorted values with linear interpolation: numpy's default method (Hyndman & Fan 1996,
+    type 7), with numpy's rounding (the upper neighbour is the base when the weight is >= 1/2)."""
+    n = ordered.size
+    position = (n - 1) * q
+    i = int(math.floor(position))
+    weight = position - i
+    below = float(ordered[i])
+    above = float(ordered[min(i + 1, n - 1)])
+    diff = above - below
+    return above - diff * (1.0 - weight) if weight >= 0.5 else below + diff * weight
+
+
+def _std(x) -> float:
+    """numpy's std (population) of a 1-D array, the same operations without its dispatch."""
+    d = x - x.sum() / x.size
+    return math.sqrt(float((d * d).sum()) / x.size)
+
+
+def _sorted_median(ordered) -> float:
+    n = ordered.size
+    k = n // 2
+    return float(ordered[k]) if n % 2 else float((ordered[k - 1] + ordered[k]) / 2.0)
 
 
 def refit_on_support(y, coefficients, support, *, baseline="fit", weights=None):
