@@ -16,7 +16,8 @@ import pytest
 from calcium.forward import simulate_recording
 from calcium.infer.ar import _Work, _prepare_weights, _solve
 from calcium.infer.estimate import (_autocovariance, _coefficient_derivative, _coefficients_from_times,
-                                    _event_support, _project_out, _times_from_coefficients, _yule_walker,
+                                    _event_support, _least_squares, _project_out, _solve_small,
+                                    _times_from_coefficients, _yule_walker,
                                     estimate_ar_coefficients, estimate_noise_sd, penalty_for_noise,
                                     signal_detected)
 from calcium.kernel import Kernel
@@ -186,6 +187,22 @@ def test_event_support_marks_the_runs_whose_total_reaches_the_size():
     expected[[9, 10, 11]] = True  # 1.1 (at the end of the trace)
     np.testing.assert_array_equal(_event_support(s, 1.0), expected)
     assert not _event_support(np.zeros(5), 1.0).any()
+
+
+def test_small_solvers_match_numpy_linalg():
+    # reference: numpy.linalg.lstsq and numpy.linalg.solve (LAPACK)
+    rng = np.random.default_rng(5)
+    for cols in (1, 2):
+        for _ in range(50):
+            M = rng.normal(size=(6, cols))
+            rhs = rng.normal(size=6)
+            np.testing.assert_allclose(_least_squares(M, rhs), np.linalg.lstsq(M, rhs, rcond=None)[0],
+                                       rtol=1e-9, atol=1e-12)
+            A = M.T @ M + 0.1 * np.eye(cols)
+            np.testing.assert_allclose(_solve_small(A, rhs[:cols]), np.linalg.solve(A, rhs[:cols]), rtol=1e-10)
+    # rank-deficient: the minimum-norm least-squares solution, as lstsq gives
+    M = np.array([[1.0, 2.0], [2.0, 4.0], [3.0, 6.0]])
+    np.testing.assert_allclose(_least_squares(M, np.array([1.0, 2.0, 3.0])), [0.2, 0.4])
 
 
 def test_estimation_arguments_are_checked():

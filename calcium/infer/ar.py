@@ -1148,8 +1148,8 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
     current support equals ``target`` (_match_penalty), so that the
     noise-matched penalty and its support are found together.
 
-    The calcium and spikes are stored in ``c``, ``s`` once the conditions
-    hold (not when it fails to converge).  Returns (baseline, penalty,
+    The calcium and spikes (rounding-level negatives cleared) are stored in
+    ``c``, ``s`` once the conditions hold (not when it fails to converge).  Returns (baseline, penalty,
     solves, converged, n, free0, whether the final starts are in starts2).
     """
     T = y.shape[0]
@@ -1194,6 +1194,9 @@ def _exact_finish(y, w, unit, g1, g2, h, tab, zy, tail, bb, lam, fit_b, b, start
                              tol_s, _TOL_GRADIENT * (lam + tol_base), bad, bad_on, bad_grad)
         if n_bad == 0:
             _fill(T, g1, g2, h, cur, n, pv, pp, c, s)
+            for i in range(n):  # rounding-level negatives (|s| <= tol) on the support are cleared
+                if s[cur[i]] < 0.0:
+                    s[cur[i]] = 0.0
             return b_cur, lam, solves, True, n, free0, swapped
         if moved or n_bad < best:
             # (a moved penalty is a new problem: the count of violators starts afresh)
@@ -1552,7 +1555,7 @@ def _solve(y, w, unit, g, lam, baseline, min_spike, *, b0=None, support=None, al
         iterations += its
         work.n_pools = _starts_from_support(on, work.starts)
         work.free0 = bool(on[0])
-    np.maximum(work.s, 0.0, out=work.s)  # clears rounding-level negatives (|s| <= tol) on the support
+        np.maximum(work.s, 0.0, out=work.s)  # clears rounding-level negatives (|s| <= tol) on the support
     if shared:
         return work.c.copy(), work.s.copy(), b, iterations, converged
     return work.c, work.s, b, iterations, converged

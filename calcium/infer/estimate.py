@@ -185,7 +185,25 @@ def _yule_walker(gamma: np.ndarray, order: int, noise_var: float) -> np.ndarray:
     g0[0] = max(gamma[0] - noise_var, 1e-3 * gamma[0])
     lags = np.arange(1, gamma.size)
     M = np.array([[g0[abs(k - i)] for i in range(1, order + 1)] for k in lags])
-    coeffs, *_ = np.linalg.lstsq(M, g0[lags], rcond=None)
+    return _least_squares(M, g0[lags])
+
+
+def _least_squares(M: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """Least-squares solution of M x = rhs for one or two columns: the normal equations solved in closed form
+    when they are well conditioned (far cheaper than a general solver on so small a problem), otherwise
+    numpy.linalg.lstsq."""
+    if M.shape[1] <= 2 and M.shape[0] >= M.shape[1]:
+        A = M.T @ M
+        r = M.T @ rhs
+        if M.shape[1] == 1:
+            if A[0, 0] > 0.0:
+                return np.array([r[0] / A[0, 0]])
+        else:
+            det = A[0, 0] * A[1, 1] - A[0, 1] * A[1, 0]
+            # (the condition number of M is at most about 1e4: the squared system loses at most 8 digits)
+            if det > 1e-8 * (A[0, 0] * A[1, 1]) and det > 0.0:
+                return np.array([(A[1, 1] * r[0] - A[0, 1] * r[1]) / det, (A[0, 0] * r[1] - A[1, 0] * r[0]) / det])
+    coeffs, *_ = np.linalg.lstsq(M, rhs, rcond=None)
     return coeffs
 
 
@@ -579,6 +597,18 @@ def _project_out_into(x, w, unit, g1, g2, h, tab, starts, n, free0, tiny, zx, ta
         out[t] = x[t] - level - out[t]
 
 
+def _solve_small(A: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """A x = rhs for a 1x1 or 2x2 positive definite A by Cramer's rule (numpy.linalg.solve otherwise, and when
+    A is not clearly positive definite)."""
+    if A.shape == (1, 1) and A[0, 0] > 0.0:
+        return np.array([rhs[0] / A[0, 0]])
+    if A.shape == (2, 2):
+        det = A[0, 0] * A[1, 1] - A[0, 1] * A[1, 0]
+        if A[0, 0] > 0.0 and det > 1e-12 * (A[0, 0] * A[1, 1]):
+            return np.array([(A[1, 1] * rhs[0] - A[0, 1] * rhs[1]) / det, (A[0, 0] * rhs[1] - A[1, 0] * rhs[0]) / det])
+    return np.linalg.solve(A, rhs)
+
+
 def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noise_sd):
     r"""The rise and decay (or the decay) that let the detected events explain the trace best.
 
@@ -652,7 +682,7 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
         grad = -2.0 * (J @ r)
         hess = 2.0 * (perp @ (perp.T if unit else (w * perp).T))
         while True:
-            step = -np.linalg.solve(hess + damping * np.diag(np.diag(hess)), grad)
+            step = -_solve_small(hess + damping * np.diag(np.diag(hess)), grad)
             new = theta + step
             new[-1] = min(max(new[-1], lo_decay), hi_decay)
             if order == 2:
