@@ -109,6 +109,13 @@ def estimate_noise_sd(y, frame_rate, *, max_frames=MAX_ESTIMATION_FRAMES) -> flo
 def _autocovariance(y, observed, max_lag):
     """Autocovariance at lags 0..max_lag over pairs of observed frames (mean removed)."""
     T = y.shape[0]
+    everything = True
+    for t in range(T):
+        if not observed[t]:
+            everything = False
+            break
+    if everything:
+        return _autocovariance_observed(y, max_lag)
     total = 0.0
     count = 0
     for t in range(T):
@@ -117,27 +124,6 @@ def _autocovariance(y, observed, max_lag):
             count += 1
     mean = total / max(count, 1)
     out = np.zeros(max_lag + 1)
-    if count == T:
-        # every frame observed: the centred trace once, and each lag summed in four interleaved parts
-        # (independent chains of additions) without the per-pair tests
-        d = np.empty(T)
-        for t in range(T):
-            d[t] = y[t] - mean
-        for k in range(max_lag + 1):
-            n = T - k
-            a0 = a1 = a2 = a3 = 0.0
-            t = 0
-            while t + 4 <= n:
-                a0 += d[t] * d[t + k]
-                a1 += d[t + 1] * d[t + k + 1]
-                a2 += d[t + 2] * d[t + k + 2]
-                a3 += d[t + 3] * d[t + k + 3]
-                t += 4
-            while t < n:
-                a0 += d[t] * d[t + k]
-                t += 1
-            out[k] = ((a0 + a1) + (a2 + a3)) / n if n > 0 else 0.0
-        return out
     for k in range(max_lag + 1):
         acc = 0.0
         pairs = 0
@@ -146,6 +132,23 @@ def _autocovariance(y, observed, max_lag):
                 acc += (y[t] - mean) * (y[t + k] - mean)
                 pairs += 1
         out[k] = acc / pairs if pairs > 0 else 0.0
+    return out
+
+
+@njit(cache=True, fastmath={"reassoc", "contract"})
+def _autocovariance_observed(y, max_lag):
+    """_autocovariance when every frame is observed: no per-pair tests, sums in any order (vectorised)."""
+    T = y.shape[0]
+    total = 0.0
+    for t in range(T):
+        total += y[t]
+    d = y - total / T
+    out = np.zeros(max_lag + 1)
+    for k in range(max_lag + 1):
+        acc = 0.0
+        for t in range(T - k):
+            acc += d[t] * d[t + k]
+        out[k] = acc / (T - k) if T > k else 0.0
     return out
 
 
