@@ -376,7 +376,8 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     """
     started = time.perf_counter()
     config = config_or_path if isinstance(config_or_path, RunConfig) else load_config(config_or_path)
-    prestart(config.execution.backend)  # the workers' fork server warms up while the inputs are checked
+    # the workers' fork server warms up while the inputs are checked
+    prestart(config.execution.backend, scheduler=config.execution.scheduler)
     folder = _output_folder(config)
     work = folder / _WORK_FOLDER  # created only when an input needs a binary copy
     results_path = folder / RESULTS_NAME
