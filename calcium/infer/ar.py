@@ -1093,9 +1093,7 @@ def _match_penalty(T, g1, g2, h, starts, n, free0, fit_b, shift, lam, sums, dp, 
     if status != _OK:
         return math.nan, 0.0, 0.0, False
     scale = lam if lam > 0.0 else 1.0
-    r0 = _pools_rss_at(n, pv, pp, pv1, pp1, b0, b1, 0.0, sums, syy, sy)
-    r1 = _pools_rss_at(n, pv, pp, pv1, pp1, b0, b1, scale, sums, syy, sy)
-    r2 = _pools_rss_at(n, pv, pp, pv1, pp1, b0, b1, 2.0 * scale, sums, syy, sy)
+    r0, r1, r2 = _pools_rss_at(n, pv, pp, pv1, pp1, b0, b1, 0.0, scale, 2.0 * scale, sums, syy, sy)
     a2 = (r2 - 2.0 * r1 + r0) / (2.0 * scale * scale)
     a1 = (r1 - r0) / scale - a2 * scale
     disc = a1 * a1 - 4.0 * a2 * (r0 - target)
@@ -1114,21 +1112,46 @@ def _at_penalty(n, pv, pp, pv1, pp1, lam):
 
 
 @njit(cache=True, fastmath={"contract", "reassoc"})
-def _pools_rss_at(n, pv0, pp0, pv1, pp1, b0, b1, lam, sums, syy, sy):
-    """_pools_rss of the affine pools (v, p, b') = x0 - lam x1."""
-    cross = 0.0
-    square = 0.0
-    level = 0.0
+def _pools_rss_at(n, pv0, pp0, pv1, pp1, b0, b1, lam_a, lam_b, lam_c, sums, syy, sy):
+    """_pools_rss of the affine pools (v, p, b') = x0 - lam x1 at three penalties, in one pass over the pools."""
+    cross_a = cross_b = cross_c = 0.0
+    square_a = square_b = square_c = 0.0
+    level_a = level_b = level_c = 0.0
     weight = 0.0
     for i in range(n):
-        v = pv0[i] - lam * pv1[i]
-        p = pp0[i] - lam * pp1[i]
-        cross += v * sums[_DY, i] + p * sums[_EY, i]
-        square += v * v * sums[_A, i] + 2.0 * v * p * sums[_B, i] + p * p * sums[_C, i]
-        level += v * sums[_H, i] + p * sums[_F, i]
+        dy = sums[_DY, i]
+        ey = sums[_EY, i]
+        sa = sums[_A, i]
+        sb = sums[_B, i]
+        sc = sums[_C, i]
+        sh = sums[_H, i]
+        sf = sums[_F, i]
         weight += sums[_SW, i]
-    bp = b0 - lam * b1
-    return syy - 2.0 * bp * sy + bp * bp * weight - 2.0 * cross + 2.0 * bp * level + square
+        v0 = pv0[i]
+        v1 = pv1[i]
+        p0 = pp0[i]
+        p1 = pp1[i]
+        v = v0 - lam_a * v1
+        p = p0 - lam_a * p1
+        cross_a += v * dy + p * ey
+        square_a += v * v * sa + 2.0 * v * p * sb + p * p * sc
+        level_a += v * sh + p * sf
+        v = v0 - lam_b * v1
+        p = p0 - lam_b * p1
+        cross_b += v * dy + p * ey
+        square_b += v * v * sa + 2.0 * v * p * sb + p * p * sc
+        level_b += v * sh + p * sf
+        v = v0 - lam_c * v1
+        p = p0 - lam_c * p1
+        cross_c += v * dy + p * ey
+        square_c += v * v * sa + 2.0 * v * p * sb + p * p * sc
+        level_c += v * sh + p * sf
+    ba = b0 - lam_a * b1
+    bb = b0 - lam_b * b1
+    bc = b0 - lam_c * b1
+    return (syy - 2.0 * ba * sy + ba * ba * weight - 2.0 * cross_a + 2.0 * ba * level_a + square_a,
+            syy - 2.0 * bb * sy + bb * bb * weight - 2.0 * cross_b + 2.0 * bb * level_b + square_b,
+            syy - 2.0 * bc * sy + bc * bc * weight - 2.0 * cross_c + 2.0 * bc * level_c + square_c)
 
 
 @njit(cache=True)
