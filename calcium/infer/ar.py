@@ -1533,7 +1533,7 @@ def _solve(y, w, unit, g, lam, baseline, min_spike, *, b0=None, support=None, al
             b = float(b0)
     else:
         on = np.asarray(support, dtype=bool)
-        if use_allowed:
+        if use_allowed and allowed is not support:
             presolved = presolved and not np.any(on & ~allowed_arr)
             on = on & allowed_arr
         if presolved:

@@ -300,9 +300,8 @@ def _level_stats(y, w, unit, b):
     return s2, s1, sw
 
 
-def _quiet_solution(y, w, unit, fit_b, b):
-    """Baseline and residual of the solution without any spike."""
-    s2, s1, sw = _level_stats(y, w, unit, b)
+def _quiet_solution(fit_b, b, s2, s1, sw):
+    """Baseline and residual of the solution without any spike, from the _level_stats at ``b``."""
     if fit_b:
         # the weighted mean: sum w (y - m)^2 = s2 - s1^2 / sw
         return b + s1 / sw, s2 - s1 * s1 / sw
@@ -412,7 +411,9 @@ def _search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESI
     engine = _PenaltyEngine(y, w, unit, g, baseline, work)
     # (a free baseline is taken about the mean, where the sums are best conditioned)
     level = engine.work.level(y, w, unit, True, 0.0) if fit_b else float(baseline)
-    b_quiet, rss_quiet = _quiet_solution(y, w, unit, fit_b, level)
+    s2, s1, sw = _level_stats(y, w, unit, level)
+    engine._level, engine._level_key = (s2, s1), level  # (the level sums the penalty match needs, at its level)
+    b_quiet, rss_quiet = _quiet_solution(fit_b, level, s2, s1, sw)
     if rss_quiet <= target:
         # even no spike at all leaves a residual within the noise: a quiet trace (a hair above the
         # smallest spike-free penalty, where the optimum is unique)
