@@ -46,6 +46,7 @@ def test_chunks_written_are_read_back_with_their_done_flags(tmp_path):
     with _open(path) as store:
         assert not store.resumed and store.n_chunks == 3 and not store.done.any()
         store.write_chunk(1, _chunk(1))
+        store.commit()
         assert store.done.tolist() == [False, True, False]
     with open_results(path, allow_incomplete=True) as view:
         assert not view.complete
@@ -59,8 +60,9 @@ def test_chunks_written_are_read_back_with_their_done_flags(tmp_path):
 def test_chunks_written_between_commits_are_marked_done_only_by_the_next_commit(tmp_path):
     path = tmp_path / "results.h5"
     store = _open(path)
+    store.write_chunk(0, _chunk(0))
+    store.commit()
     store.commit_interval_s = 3600.0
-    store.write_chunk(0, _chunk(0))  # the first chunk is committed at once
     store.write_chunk(2, _chunk(2))  # within the interval: written, not yet marked done
     # what a kill now would leave: the bytes of progress/chunk_done in the file (HDF5 contiguous storage)
     offset = store._file["progress/chunk_done"].id.get_offset()
@@ -72,6 +74,30 @@ def test_chunks_written_between_commits_are_marked_done_only_by_the_next_commit(
     with open_results(path, allow_incomplete=True) as view:
         assert view.chunk_done.tolist() == [True, False, True]
         assert np.array_equal(view.read("noise_sd", np.s_[8:10]), [4.0, 4.5])
+
+
+def test_a_chunk_is_marked_done_only_after_the_sync_of_its_rows_has_finished(tmp_path, monkeypatch):
+    import threading
+
+    from calcium.pipeline import store as store_module
+
+    released, synced = threading.Event(), []
+
+    def slow_disk(fd):
+        released.wait(10)
+        os.fsync(fd)
+        synced.append(fd)
+
+    monkeypatch.setattr(store_module, "_sync_descriptor", slow_disk)
+    path = tmp_path / "results.h5"
+    store = _open(path)
+    store.write_chunk(0, _chunk(0))   # starts the sync of chunk 0 in the background
+    store.write_chunk(1, _chunk(1))   # the sync still runs: nothing is marked
+    assert store.done.tolist() == [False, False, False] and not synced
+    released.set()
+    store.commit()                    # waits for it, marks 0, then syncs and marks 1
+    assert store.done.tolist() == [True, True, False] and len(synced) == 2
+    store.close()
 
 
 def test_reopening_the_same_run_resumes_and_keeps_finished_chunks(tmp_path):
@@ -114,6 +140,7 @@ def test_a_chunk_interrupted_half_way_is_not_marked_done(tmp_path, monkeypatch):
     path = tmp_path / "results.h5"
     store = _open(path)
     store.write_chunk(0, _chunk(0))
+    store.commit()
     original = ResultStore._write
     calls = []
 
@@ -136,6 +163,7 @@ def test_disk_full_gives_a_clear_message_and_the_file_stays_incomplete(tmp_path,
     path = tmp_path / "results.h5"
     store = _open(path)
     store.write_chunk(0, _chunk(0))
+    store.commit()
 
     def disk_full(self, name, selection, values):
         raise OSError(errno.ENOSPC, "No space left on device")

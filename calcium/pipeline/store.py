@@ -14,8 +14,9 @@ How a run survives a crash, a kill or a power cut
   the chunk's byte in ``progress/chunk_done`` set (and flushed). A chunk
   killed half-way keeps its flag 0 and is computed again on the next run.
   The chunks finished within about a second share one sync (a sync per
-  chunk would cost more than writing them); a kill loses at most that
-  second of work.
+  chunk would cost more than writing them), which runs in a thread while
+  the run goes on; their flags are set once it has finished. A kill loses
+  at most the last second or two of work.
 * The file records the SHA-256 of the inputs and of the results-affecting
   parameters (``run_hash``). A rerun with the same ones continues where the
   last one stopped; with different ones it is refused unless the caller asks
@@ -196,6 +197,12 @@ def _pwrite_all(fd: int, data: memoryview, offset: int) -> None:
         offset += written
 
 
+def _sync_descriptor(fd) -> None:
+    """os.fsync(fd), or nothing for None (runs in the store's sync thread: no HDF5 call here)."""
+    if fd is not None:
+        os.fsync(fd)
+
+
 def _describe_oserror(exc: BaseException) -> str:
     code = getattr(exc, "errno", None)
     text = str(exc)
@@ -259,7 +266,9 @@ class ResultStore:
         self.chunk_bounds = handle[f"{_PROGRESS}/chunk_bounds"][()]
         self._specs = json.loads(handle.attrs["datasets_json"])
         self._done = handle[f"{_PROGRESS}/chunk_done"][()].astype(bool)
-        self._written: list[int] = []  # chunks written since the last commit (not yet marked done)
+        self._written: list[int] = []  # chunks written since the last commit began (not yet marked done)
+        self._syncing = None            # (chunks, future of their sync) while a sync runs
+        self._sync_thread = None
         self._last_commit = -math.inf
 
     # -- opening ---------------------------------------------------------
@@ -468,11 +477,15 @@ class ResultStore:
             return _text_bytes(values, int(dtype[4:]))
         return values
 
+    @property
+    def _fd(self) -> int:
+        return self._file.id.get_vfd_handle()
+
     def _flush(self, *, sync: bool) -> None:
         self._file.flush()
         if sync:
             try:
-                os.fsync(self._file.id.get_vfd_handle())
+                os.fsync(self._fd)
             except (OSError, ValueError, TypeError, AttributeError):  # a driver without a file descriptor
                 pass
 
@@ -510,30 +523,60 @@ class ResultStore:
         except OSError as exc:
             self._fail(f"chunk {chunk_id}", exc)
         self._written.append(int(chunk_id))
-        if time.monotonic() - self._last_commit >= self.commit_interval_s:
-            self.commit()
+        self._finish_sync(wait=False)
+        if self._syncing is None and time.monotonic() - self._last_commit >= self.commit_interval_s:
+            self._start_sync()
 
     def commit(self) -> None:
         """Sync everything written so far to disk, then mark the chunks written since the last commit done.
 
-        :meth:`write_chunk` commits by itself when ``commit_interval_s`` has
-        passed since the last commit (one sync for the chunks of that
-        interval instead of one per chunk); :meth:`mark_complete` and
-        :meth:`close` commit what is left.
+        :meth:`write_chunk` commits by itself, without waiting: when
+        ``commit_interval_s`` has passed since the last commit, a thread
+        syncs the file while the run goes on, and the chunks written before
+        the sync began are marked done by a later call once it has finished
+        (one sync for the chunks of an interval instead of one per chunk, and
+        no wait for the disk). This method, :meth:`mark_complete` and
+        :meth:`close` wait for it.
         """
-        if not self._written:
-            return
-        written = sorted(self._written)
+        self._finish_sync(wait=True)
+        if self._written:
+            self._start_sync()
+            self._finish_sync(wait=True)
+
+    def _start_sync(self) -> None:
+        """Hand what HDF5 holds to the system, then sync the file in a thread; the chunks written so far wait."""
+        chunks, self._written = sorted(self._written), []
         try:
-            self._flush(sync=True)
-            for chunk_id in written:
+            self._flush(sync=False)
+        except OSError as exc:
+            self._fail("chunk(s) " + ", ".join(map(str, chunks)), exc)
+        if self._sync_thread is None:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._sync_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="results-sync")
+        try:
+            fd = self._fd
+        except (ValueError, TypeError, AttributeError):  # a driver without a file descriptor: nothing to sync
+            fd = None
+        self._syncing = (chunks, self._sync_thread.submit(_sync_descriptor, fd))
+        self._last_commit = time.monotonic()
+
+    def _finish_sync(self, *, wait: bool) -> None:
+        """Once the sync has finished (or at once, with ``wait``): mark its chunks done."""
+        if self._syncing is None:
+            return
+        chunks, future = self._syncing
+        if not wait and not future.done():
+            return
+        self._syncing = None
+        try:
+            future.result()
+            for chunk_id in chunks:
                 self._write(f"{_PROGRESS}/chunk_done", chunk_id, 1)
             self._flush(sync=False)
         except OSError as exc:
-            self._fail("chunk(s) " + ", ".join(map(str, written)), exc)
-        self._done[written] = True
-        self._written = []
-        self._last_commit = time.monotonic()
+            self._fail("chunk(s) " + ", ".join(map(str, chunks)), exc)
+        self._done[chunks] = True
 
     def write_rows(self, name: str, selection, values) -> None:
         """Write part of any dataset (for the steps done once, after the chunks); not flushed."""
@@ -568,9 +611,12 @@ class ResultStore:
 
     def close(self) -> None:
         """Commit the chunks written (when that still works: an earlier error is not hidden), close the file."""
-        if self._file is not None and self._written:
+        if self._file is not None and (self._written or self._syncing is not None):
             with contextlib.suppress(OSError):
                 self.commit()
+        if self._sync_thread is not None:
+            self._sync_thread.shutdown(wait=True)
+            self._sync_thread = None
         handle, self._file = self._file, None
         if handle is not None:
             with contextlib.suppress(Exception):
