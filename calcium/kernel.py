@@ -32,7 +32,6 @@ import math
 from dataclasses import KW_ONLY, dataclass
 
 import numpy as np
-from scipy.optimize import brentq
 
 from ._checks import check_frame_rate, check_int, check_nonnegative, check_positive
 
@@ -45,6 +44,8 @@ _RTOL = 4 * np.finfo(float).eps
 
 
 def _brentq(func, lo: float, hi: float, scale: float) -> float:
+    from scipy.optimize import brentq  # (scipy.optimize takes a third of a second to import: only when needed)
+
     return float(brentq(func, lo, hi, xtol=_XTOL_FRACTION * scale, rtol=_RTOL, maxiter=500))
 
 
@@ -193,6 +194,10 @@ class Kernel:
         w0, tau0 = decays[0]
         # The first decay term alone reaches 1/rise here, so the bracket is closed.
         hi = math.log(tau0 / (w0 * rise)) / (1.0 / rise - 1.0 / tau0)
+        if len(decays) == 1:
+            # one decay: that end is the root itself, t = ln(w tau / rise) rise tau / (tau - rise) (set the
+            # derivative of w exp(-t/tau) - exp(-t/rise) to zero)
+            return hi
         while slope_sign(hi) <= 0:  # rounding at the bracket end (the root can sit exactly there)
             hi *= 1.0 + 1e-9
         return _brentq(slope_sign, 0.0, hi, rise)
@@ -553,6 +558,8 @@ def time_constants_from_half_times(half_decay_s, *, half_rise_s=None, time_to_pe
     if not (r_lo < wanted < r_hi):
         raise ValueError(f"{name}={target!r} s with half_decay_s={half_decay_s!r} s: the ratio {wanted:.4g} is "
                          f"outside ({r_lo:.3g}, {r_hi:.5f}), the range a difference of exponentials can have")
+    from scipy.optimize import brentq
+
     log_rho = brentq(lambda v: ratio(v) - wanted, lo, hi, xtol=1e-14, rtol=_RTOL, maxiter=500)
     shape = Kernel(math.exp(log_rho), 1.0)
     decay = half_decay_s / shape.half_decay_s

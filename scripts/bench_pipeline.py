@@ -2,9 +2,11 @@
 
 Runs the same session (a synthetic recording written as float32 .npy) with the three backends, in this order:
   serial (the reference), processes with --workers workers, dask with a --workers-worker local cluster,
-and prints for each: wall time, throughput in million ROI-frames per second, and the peak memory summed over
-the parent and all its child processes (proportional set size sampled every second, and the summed
-resident set size sampled every 50 ms, an upper bound; psutil). Then the ratios measured in this run:
+each in a fresh Python process (as `calcium run` would run it: the run loads the science modules and compiled
+functions itself, or in its workers), and prints for each: the wall time of run_pipeline, throughput in million
+ROI-frames per second, and the peak memory summed over that process and all its descendants (proportional set
+size sampled every second, and the summed resident set size sampled every 50 ms, an upper bound; psutil).
+Then the ratios measured in this run:
   speed-up of processes over serial                         (target >= 1.8 with 2 workers)
   overhead of the local dask cluster over processes         (target <= 15 %)
   throughput of processes on this machine                   (target >= 5 million frames/s on 2 cores)
@@ -18,9 +20,11 @@ Usage: python scripts/bench_pipeline.py [--rois 2000] [--frames 36000] [--frame-
 from __future__ import annotations
 
 import argparse
+import json
 import math
 import os
 import shutil
+import subprocess
 import sys
 import tempfile
 import threading
@@ -33,7 +37,7 @@ TARGETS = {"speed-up": 1.8, "dask overhead": 0.15, "throughput": 5e6}
 
 
 class PeakMemory:
-    """Peak memory of this process and all its descendants, sampled by a thread (psutil).
+    """Peak memory of process ``pid`` (default: this one) and all its descendants, sampled by a thread (psutil).
 
     Two figures: ``peak`` is the summed proportional set size (PSS: pages shared between the parent, the process
     server and the workers, such as the libraries, are counted once), sampled every ``pss_interval_s`` because
@@ -42,10 +46,11 @@ class PeakMemory:
     (cheap, sampled every ``interval_s``), an upper bound that counts shared pages once per process.
     """
 
-    def __init__(self, interval_s: float = 0.05, pss_interval_s: float = 1.0):
+    def __init__(self, pid: int | None = None, interval_s: float = 0.05, pss_interval_s: float = 1.0):
         import psutil
 
         self._psutil = psutil
+        self.pid = pid
         self.interval_s = interval_s
         self.pss_interval_s = pss_interval_s
         self.peak = 0
@@ -54,9 +59,13 @@ class PeakMemory:
         self._thread = threading.Thread(target=self._run, daemon=True)
 
     def _sample(self, pss: bool) -> int:
-        me = self._psutil.Process()
+        try:
+            root = self._psutil.Process(self.pid)
+            tree = [root, *root.children(recursive=True)]
+        except self._psutil.NoSuchProcess:
+            return 0
         total = 0
-        for process in [me, *me.children(recursive=True)]:
+        for process in tree:
             try:
                 info = process.memory_full_info() if pss else process.memory_info()
                 total += getattr(info, "pss", info.rss) if pss else info.rss
@@ -126,21 +135,45 @@ def science_per_roi(traces: Path, frame_rate: float, n_sample: int, indicator=No
 
 def run_once(folder: Path, traces: Path, frame_rate: float, backend: str, workers: int, report: bool,
              indicator=None):
+    """One run of the pipeline in a fresh Python process, as ``calcium run`` would do it.
+
+    Returns (backend, workers used, seconds of run_pipeline, (peak PSS, peak summed RSS) of that process and
+    its descendants). The time is taken inside the child around ``run_pipeline``: it includes loading the
+    science modules and compiled functions (in the process itself, or in the workers' fork server), which a
+    run in an already warm process would not pay, but not the interpreter's own start-up.
+    """
+    shutil.rmtree(folder, ignore_errors=True)  # a fresh run, never a resumed one (--keep reuses the folder)
+    command = [sys.executable, str(Path(__file__).resolve()), "--child", backend, "--child-traces", str(traces),
+               "--child-out", str(folder), "--frame-rate", repr(frame_rate), "--workers", str(workers)]
+    if report:
+        command.append("--report")
+    if indicator:
+        command += ["--indicator", indicator]
+    child = subprocess.Popen(command, stdout=subprocess.PIPE, text=True)
+    with PeakMemory(child.pid) as memory:
+        out, _ = child.communicate()
+    if child.returncode != 0:
+        raise RuntimeError(f"the {backend} run failed (exit {child.returncode})")
+    result = json.loads(out.strip().splitlines()[-1])
+    return result["backend"], result["workers"], result["elapsed_s"], (memory.peak, memory.peak_rss)
+
+
+def _child(args) -> int:
+    """The body of run_once's process: one timed run_pipeline, its result as one JSON line on stdout."""
     from calcium.pipeline import config_from_dict, run_pipeline
 
     config = config_from_dict({
-        "inputs": {"traces": str(traces), "frame_rate": frame_rate},
-        "inference": {} if indicator is None else {"indicator": indicator},
-        "output": {"folder": str(folder)},
-        "report": {"enabled": report},
-        "execution": {"backend": backend, "workers": workers},
+        "inputs": {"traces": args.child_traces, "frame_rate": args.frame_rate},
+        "inference": {} if args.indicator is None else {"indicator": args.indicator},
+        "output": {"folder": args.child_out},
+        "report": {"enabled": args.report},
+        "execution": {"backend": args.child, "workers": args.workers},
     })
-    shutil.rmtree(folder, ignore_errors=True)  # a fresh run, never a resumed one (--keep reuses the folder)
-    with PeakMemory() as memory:
-        start = time.perf_counter()
-        summary = run_pipeline(config, progress=False)
-        elapsed = time.perf_counter() - start
-    return summary, elapsed, (memory.peak, memory.peak_rss)
+    start = time.perf_counter()
+    summary = run_pipeline(config, progress=False)
+    elapsed = time.perf_counter() - start
+    print(json.dumps({"backend": summary.backend, "workers": summary.workers, "elapsed_s": elapsed}))
+    return 0
 
 
 def same_results(a: Path, b: Path) -> bool:
@@ -173,7 +206,12 @@ def main(argv=None) -> int:
     parser.add_argument("--indicator", help="infer with this indicator's published kernel instead of estimating "
                                             "the kinetics of every ROI (e.g. GCaMP6s)")
     parser.add_argument("--keep", type=Path, help="work in this folder and keep it")
+    parser.add_argument("--child", help=argparse.SUPPRESS)          # (run_once's fresh process)
+    parser.add_argument("--child-traces", help=argparse.SUPPRESS)
+    parser.add_argument("--child-out", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
+    if args.child:
+        return _child(args)
 
     root = args.keep or Path(tempfile.mkdtemp(prefix="bench_pipeline_"))
     root.mkdir(parents=True, exist_ok=True)
@@ -201,11 +239,11 @@ def main(argv=None) -> int:
         print(f"\n{'backend':<10} {'workers':>7} {'wall (s)':>9} {'Mframes/s':>10} {'peak PSS (MB)':>14} "
               f"{'peak summed RSS (MB)':>21}")
         for backend, workers in backends:
-            summary, elapsed, peak = run_once(root / f"out-{backend}", traces, args.frame_rate, backend, workers,
+            _, used, elapsed, peak = run_once(root / f"out-{backend}", traces, args.frame_rate, backend, workers,
                                               False, args.indicator)
             rate = args.rois * args.frames / elapsed
             timings[backend] = elapsed
-            print(f"{backend:<10} {summary.workers:>7} {elapsed:>9.2f} {rate / 1e6:>10.2f} {peak[0] / 2**20:>14.0f} "
+            print(f"{backend:<10} {used:>7} {elapsed:>9.2f} {rate / 1e6:>10.2f} {peak[0] / 2**20:>14.0f} "
                   f"{peak[1] / 2**20:>21.0f}",
                   flush=True)
 

@@ -167,3 +167,18 @@ def test_estimate_is_positive_finite_and_scales_with_the_trace(rois, frames, see
     assert base.shape == ((rois,) if two_d else (1,))
     assert np.isfinite(base).all() and (base > 0).all()
     np.testing.assert_allclose(scaled, scale * base, rtol=1e-9)
+
+
+@pytest.mark.parametrize("n", [8, 64, 255, 256])
+def test_the_window_is_scipys_hann_and_the_chi_square_median_is_scipys(n):
+    # References: scipy.signal.get_window("hann", n) (periodic, as scipy.signal.welch uses it) and
+    # scipy.stats.chi2.median, which the per-ROI path computes without importing scipy.signal / scipy.stats.
+    import scipy.special
+    import scipy.stats
+
+    from calcium.signal.noise import _hann
+
+    np.testing.assert_allclose(_hann(n), ss.get_window("hann", n), rtol=0, atol=1e-15)
+    dof = np.array([2.0, 3.7, 18.0, 250.0])
+    np.testing.assert_allclose(2.0 * scipy.special.gammaincinv(dof / 2.0, 0.5), scipy.stats.chi2.median(dof),
+                               rtol=1e-12)

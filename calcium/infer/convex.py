@@ -39,7 +39,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
+import scipy  # scipy.sparse loads on first use (the AR path never needs it)
 
 from .._checks import as_traces, check_frame_rate, check_positive
 from .ar import _check_baseline, _check_penalty, _prepare_weights, check_ar_coefficients
@@ -153,13 +153,13 @@ def kernel_operator(kernel_or_impulse_response, n_frames: int, frame_rate=None):
     h = h[:min(keep[-1] + 1, n_frames)]
     diags = [np.full(n_frames - k, h[k]) for k in range(h.size) if h[k] != 0.0]
     offsets = [-k for k in range(h.size) if h[k] != 0.0]
-    return "matrix", sp.diags(diags, offsets, shape=(n_frames, n_frames), format="csc")
+    return "matrix", scipy.sparse.diags(diags, offsets, shape=(n_frames, n_frames), format="csc")
 
 
-def _banded(coeffs: np.ndarray, n: int) -> sp.csc_matrix:
+def _banded(coeffs: np.ndarray, n: int) -> "scipy.sparse.csc_matrix":
     """Lower-triangular banded Toeplitz matrix with first column ``coeffs``."""
     coeffs = coeffs[:n]
-    return sp.diags([np.full(n - k, coeffs[k]) for k in range(coeffs.size)], [-k for k in range(coeffs.size)],
+    return scipy.sparse.diags([np.full(n - k, coeffs[k]) for k in range(coeffs.size)], [-k for k in range(coeffs.size)],
                     shape=(n, n), format="csc")
 
 

@@ -6,7 +6,7 @@ docstrings what they do with missing frames.
 from __future__ import annotations
 
 import numpy as np
-import scipy.ndimage
+import scipy  # scipy.ndimage loads on first use
 
 __all__ = ["fill_gaps_linear", "grow_mask", "finite_runs", "row_chunks"]
 

@@ -13,8 +13,7 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.optimize
-import scipy.signal
+import scipy  # submodules (signal, optimize) load on first use
 
 from .._checks import (
     MissingFrames,

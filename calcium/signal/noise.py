@@ -9,9 +9,7 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-import scipy.signal
-import scipy.special
-import scipy.stats
+import scipy  # scipy loads its submodules on first use: the per-ROI path needs only special
 
 from .._checks import as_traces, check_choice, check_frame_rate, require_some_data
 from ._missing import finite_runs, row_chunks
@@ -44,6 +42,15 @@ def _segments(n: int, nperseg: int) -> int:
     return (n - nperseg) // step + 1
 
 
+@functools.lru_cache(maxsize=64)
+def _hann(n: int) -> np.ndarray:
+    """The periodic Hann window of n samples, 0.5 - 0.5 cos(2 pi k / n): the window of scipy.signal.welch
+    (``get_window("hann", n)``; Harris 1978, Proc. IEEE 66, 51-83). Read-only (cached)."""
+    window = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)
+    window.flags.writeable = False
+    return window
+
+
 @functools.lru_cache(maxsize=256)
 def _welch_dof(n_segments: int, nperseg: int) -> float:
     """Equivalent degrees of freedom of a Welch estimate (Hann window, half overlap).
@@ -52,7 +59,7 @@ def _welch_dof(n_segments: int, nperseg: int) -> float:
     ρ(m) the overlap correlation of the normalised window at a shift of m
     segments.
     """
-    window = scipy.signal.get_window("hann", nperseg)
+    window = _hann(nperseg)
     window = window / np.sqrt(np.sum(window ** 2))
     step = nperseg - nperseg // 2
     total = 0.0
@@ -70,7 +77,8 @@ def _band_average(psd: np.ndarray, average: str, dof: np.ndarray) -> np.ndarray:
         return psd.mean(axis=-1)
     if average == "median":
         # Each Welch value is ~ (mean level) · χ²_ν / ν; the median of χ²_ν / ν is below 1.
-        return np.median(psd, axis=-1) / (scipy.stats.chi2.median(dof) / dof)
+        # (the median of χ²_ν is 2 P⁻¹(ν/2, 1/2), P the regularised lower incomplete gamma function)
+        return np.median(psd, axis=-1) / (2.0 * scipy.special.gammaincinv(dof / 2.0, 0.5) / dof)
     # logmeanexp: exp(mean(log PSD)); E[log(χ²_ν / ν)] = ψ(ν/2) − log(ν/2).
     with np.errstate(divide="ignore"):
         log_mean = np.log(psd).mean(axis=-1)
@@ -116,7 +124,7 @@ def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, 
     segments = np.lib.stride_tricks.sliding_window_view(block, nperseg, axis=-1)[seg_row, starts[seg_index]]
     if _remove_segment_mean(keep):
         segments = segments - segments.mean(axis=-1, keepdims=True)
-    window = scipy.signal.get_window("hann", nperseg)
+    window = _hann(nperseg)
     spectrum = np.fft.rfft(segments * window, axis=-1)[:, keep]
     power = spectrum.real ** 2 + spectrum.imag ** 2                              # (usable segments, bins)
     psd = np.zeros((block.shape[0], power.shape[1]))
