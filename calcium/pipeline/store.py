@@ -268,6 +268,7 @@ class ResultStore:
         self._done = handle[f"{_PROGRESS}/chunk_done"][()].astype(bool)
         self._written: list[int] = []  # chunks written since the last commit began (not yet marked done)
         self._syncing = None            # (chunks, future of their sync) while a sync runs
+        self._open_datasets: dict = {}
         self._sync_thread = None
         self._last_commit = -math.inf
 
@@ -469,7 +470,10 @@ class ResultStore:
 
     def _write(self, name: str, selection, values) -> None:
         """The single place where data reach the file (tests patch it to simulate a full disk)."""
-        self._file[name][selection] = values
+        dataset = self._open_datasets.get(name)
+        if dataset is None:  # (looking a dataset up by name costs more than writing a chunk's values)
+            dataset = self._open_datasets[name] = self._file[name]
+        dataset[selection] = values
 
     def _encode(self, name: str, values):
         dtype = self._specs[name]["dtype"] if name in self._specs else None
@@ -618,6 +622,7 @@ class ResultStore:
             self._sync_thread.shutdown(wait=True)
             self._sync_thread = None
         handle, self._file = self._file, None
+        self._open_datasets = {}
         if handle is not None:
             with contextlib.suppress(Exception):
                 handle.close()
