@@ -74,13 +74,14 @@ def session(tmp_path_factory):
     on_ephys_clock = {r: recording.spike_times[r] - CLOCK_OFFSET_S for r in ELECTRICAL}
     electrical = write_spike_table(root / "ephys.csv", {r: t[t >= 0] for r, t in on_ephys_clock.items()})
     config = _config(root / "reference", traces, inputs={"electrical_spikes": str(electrical)},
-                     report={"enabled": True, "n_examples": 3}, nwb={"enabled": True})
+                     report={"enabled": True, "n_examples": 3}, nwb={"enabled": True}, output={"f0": True})
     summary = run_pipeline(config, progress=False)
     return {"root": root, "raw": raw, "recording": recording, "traces": traces, "electrical": electrical,
             "config": config, "summary": summary}
 
 
 def _same_config(session, folder, **sections):
+    sections.setdefault("output", {}).setdefault("f0", True)  # as the reference run
     return _config(folder, session["traces"], inputs={"electrical_spikes": str(session["electrical"])},
                    **sections)
 
@@ -109,6 +110,25 @@ def test_each_roi_gets_the_results_of_the_stage_functions_called_directly(sessio
     assert np.allclose(times, inferred.spike_times, atol=0.5 / RATE)
     assert attrs["inputs"]["traces"]["sha256"] == __import__("calcium").io.file_sha256(session["traces"])
     assert "[inputs]" in attrs["config_toml"] and data["progress/complete"][0] == 1
+
+
+def test_by_default_f0_is_left_out_and_the_report_draws_it_from_f_and_dff(session, tmp_path):
+    config = _config(tmp_path / "out", session["traces"], report={"enabled": True, "n_examples": 2})
+    summary = run_pipeline(config, progress=False)
+    data, _ = read_results(summary.results_path)
+    reference, _ = read_results(session["summary"].results_path)
+    assert "f0" not in data and "f0" in reference
+    # the rest is the reference run's (its electrical step aside)
+    for name in ("dff", "f0_min", "spike_counts", "quality_flags", "activity"):
+        assert np.array_equal(data[name], reference[name], equal_nan=data[name].dtype.kind == "f"), name
+    # 4 bytes per ROI-frame less on disk (contiguous datasets, allocated at creation)
+    size, reference_size = summary.results_path.stat().st_size, session["summary"].results_path.stat().st_size
+    assert reference_size - size >= 4 * N_ROIS * data["dff"].shape[1]
+    # F0 = F / (1 + ΔF/F) (ΔF/F = (F - F0) / F0) where F is known: what the report draws for an example ROI
+    roi = 0
+    f0 = session["raw"][roi] / (1.0 + data["dff"][roi].astype(np.float64))
+    np.testing.assert_allclose(f0, reference["f0"][roi], rtol=1e-5)
+    assert (summary.report_path.parent / "figures").is_dir() and summary.report_path.is_file()
 
 
 def test_spikes_of_the_simulated_session_are_recovered(session):
@@ -210,7 +230,7 @@ def test_a_run_killed_part_way_resumes_to_identical_results(session, tmp_path):
     config_path = tmp_path / "run.toml"
     config_path.write_text(f'[inputs]\ntraces = "{session["traces"].as_posix()}"\n'
                            f'electrical_spikes = "{session["electrical"].as_posix()}"\n'
-                           f'[output]\nfolder = "{folder.as_posix()}"\n[report]\nenabled = false\n'
+                           f'[output]\nfolder = "{folder.as_posix()}"\nf0 = true\n[report]\nenabled = false\n'
                            f'[kernel_fit]\nn_bootstrap = 0\n[execution]\nbackend = "serial"\nchunk_rois = 1\n')
     # The child slows every chunk down so that it can be killed part-way.
     script = textwrap.dedent(f"""

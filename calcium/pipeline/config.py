@@ -267,6 +267,9 @@ class OutputConfig:
     folder: Path = _key(Path("results"), _Path("a folder path (relative to this file's folder)"),
                         "Output folder (created if needed): results.h5, spikes.csv, report/, results.nwb.",
                         hashed=False)
+    f0: bool = _key(False, _Bool(), "Also store the baseline F0 of every frame in results.h5 (4 bytes per ROI and "
+                                    "frame; F0 = F / (1 + ΔF/F) where F is known). Its minimum per ROI and the F0 "
+                                    "quality flags are always stored.")
 
 
 @dataclass(frozen=True)

@@ -249,7 +249,8 @@ def _stage_params(config: RunConfig, frame_rate: float, n_frames: int) -> stages
                               inference=_inference_kwargs(config),
                               min_snr=config.quality.min_snr,
                               max_missing_fraction=config.quality.max_missing_fraction,
-                              saturation_frames=config.quality.saturation_frames)
+                              saturation_frames=config.quality.saturation_frames,
+                              keep_f0=config.output.f0)
 
 
 def _inference_kwargs(config: RunConfig) -> dict:
@@ -292,7 +293,7 @@ def _fit_options(config: RunConfig) -> dict:
 # ---------------------------------------------------------------------------
 def _layout(config: RunConfig, prepared: _Inputs, electrical_rois: list[int]) -> list[DatasetSpec]:
     n, t = prepared.n_rois, prepared.n_frames
-    specs = stages.result_datasets(n, t, filtered=config.filter.kind != "none")
+    specs = stages.result_datasets(n, t, filtered=config.filter.kind != "none", with_f0=config.output.f0)
     if prepared.kind == "movie":
         specs += [
             DatasetSpec("raw", (n, t), "f4", "neuropil-corrected ROI fluorescence extracted from the movie "
@@ -788,6 +789,8 @@ def _raw_rows(results, roi: int):
                 return trace, "raw F (from the input file)"
         except (OSError, ValueError, KeyError):
             pass
+    if "f0" not in results:
+        return None, "raw F not available (the input file was not readable and F0 was not stored)"
     f0 = results.read("f0", roi).astype(np.float64)
     dff = results.read("dff", roi).astype(np.float64)
     return f0 * (1.0 + dff), "F = F0 (1 + ΔF/F) (the input file was not readable)"
@@ -914,6 +917,13 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
                 raw, where = _raw_rows(results, roi)
                 values = {name: results.read(name, roi).astype(np.float64)
                           for name in ("f0", "dff", "dff_filtered", "denoised") if name in results}
+                if "f0" not in values and raw is not None and "dff" in values:
+                    with np.errstate(divide="ignore", invalid="ignore"):
+                        values["f0"] = raw / (1.0 + values["dff"])  # (ΔF/F = F / F0 - 1; F0 not stored)
+                missing = None  # (the frames where raw is NaN)
+                if raw is None:
+                    raw = np.full(results.n_frames, np.nan)
+                    missing = ~np.isfinite(values["dff"]) if "dff" in values else None
                 if flags[roi] & stages.FLAG_FAILED:
                     values = {k: v for k, v in values.items() if np.isfinite(v).any()}
                 fig = stages_figure(rate, raw, f0=values.get("f0"), dff=values.get("dff"),
@@ -921,7 +931,7 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
                                     spike_times=trains[roi],
                                     true_spike_times=(electrical_spikes[roi] + lags.get(roi, 0.0)
                                                       if roi in electrical_spikes else None),
-                                    roi_label=f"ROI {roi}")
+                                    missing=missing, roi_label=f"ROI {roi}")
                 note = f"; flags: {per_roi['flags'][roi]}" if flags[roi] else ""
                 report.add_figure(fig, name=f"roi-{roi}", caption=f"ROI {roi}: {where}, F0, ΔF/F, denoised fit "
                                                                    f"and inferred spikes{note}.")

@@ -225,6 +225,9 @@ class StageParams:
         level is passed per ROI).
     min_snr, max_missing_fraction : float
     saturation_frames : int
+    keep_f0 : bool
+        Return the per-frame baseline F0 (``f0``); its minimum ``f0_min``
+        and the F0 flags are always computed.
     """
 
     frame_rate: float
@@ -235,6 +238,7 @@ class StageParams:
     min_snr: float = 3.0
     max_missing_fraction: float = 0.1
     saturation_frames: int = 3
+    keep_f0: bool = True
 
 
 @dataclass(frozen=True)
@@ -254,18 +258,19 @@ class ChunkTask:
     writer: object = None
 
 
-def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: bool = True) -> list[DatasetSpec]:
-    """Layout of the per-ROI results (see docs/hdf5-layout.md); ``with_dff=False`` for ΔF/F input."""
+def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: bool = True,
+                    with_f0: bool = True) -> list[DatasetSpec]:
+    """Layout of the per-ROI results (see docs/hdf5-layout.md); ``with_dff=False`` for ΔF/F input,
+    ``with_f0=False`` without the per-frame F0."""
     big = (n_rois, n_frames)
     one = (n_rois,)
     specs = []
     if with_dff:
-        specs += [
-            DatasetSpec("dff", big, "f4", "ΔF/F = (F - F0) / F0; NaN at missing frames and for failed ROIs",
-                        "ΔF/F"),
-            DatasetSpec("f0", big, "f4", "baseline fluorescence F0", "a.u."),
-            DatasetSpec("f0_min", one, "f8", "smallest F0 of the ROI", "a.u."),
-        ]
+        specs.append(DatasetSpec("dff", big, "f4", "ΔF/F = (F - F0) / F0; NaN at missing frames and for failed "
+                                                   "ROIs", "ΔF/F"))
+        if with_f0:
+            specs.append(DatasetSpec("f0", big, "f4", "baseline fluorescence F0", "a.u."))
+        specs.append(DatasetSpec("f0_min", one, "f8", "smallest F0 of the ROI", "a.u."))
     if filtered:
         specs.append(DatasetSpec("dff_filtered", big, "f4", "zero-phase filtered ΔF/F (input of the inference)",
                                  "ΔF/F"))
@@ -296,13 +301,15 @@ def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: boo
     return specs
 
 
-def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool) -> dict:
+def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool, with_f0: bool) -> dict:
     big = lambda: np.full((n, n_frames), np.nan, dtype=np.float32)  # noqa: E731
     out = {"denoised": big(), "activity": big(),
            "spike_counts": np.zeros((n, n_frames), dtype=np.uint16),
            "spike_time_offset_s": np.zeros((n, n_frames), dtype=np.float32)}
     if with_dff:
-        out.update(dff=big(), f0=big(), f0_min=np.full(n, np.nan))
+        out.update(dff=big(), f0_min=np.full(n, np.nan))
+        if with_f0:
+            out["f0"] = big()
     if filtered:
         out["dff_filtered"] = big()
     for name in ("baseline", "noise_sd", "snr", "penalty", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude"):
@@ -369,7 +376,7 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
     n, n_frames = raw.shape
     filtered = params.filter is not None
     with_dff = params.dff is not None
-    out = _empty_results(n, n_frames, filtered, with_dff)
+    out = _empty_results(n, n_frames, filtered, with_dff, with_dff and params.keep_f0)
     flags = out["quality_flags"]
     reasons: list[list[str]] = [[] for _ in range(n)]
 
@@ -393,7 +400,8 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
         rows, dff, f0 = usable, raw[usable], None
     if rows.size and with_dff:
         out["dff"][rows] = dff
-        out["f0"][rows] = f0
+        if "f0" in out:
+            out["f0"][rows] = f0
         out["f0_min"][rows] = f0.min(axis=1)
         floor = params.dff.get("floor")
         if floor is not None:
