@@ -136,6 +136,23 @@ def science_per_roi(traces: Path, frame_rate: float, n_sample: int, indicator=No
     return (time.perf_counter() - start) / n_sample
 
 
+def machine_speed(traces: Path, n_sample: int) -> float:
+    """Frames per second of one scipy.signal.lfilter pass (an AR(2) recursion) on one core, best of 5.
+
+    Not a target: a yardstick of how fast this machine is right now, so that throughputs measured on different
+    days (or on a shared machine under other load) can be compared.
+    """
+    import scipy.signal
+
+    rows = np.asarray(np.load(traces, mmap_mode="r")[:n_sample], dtype=np.float64)
+    best = math.inf
+    for _ in range(5):
+        start = time.perf_counter()
+        scipy.signal.lfilter([1.0], [1.0, -1.6, 0.63], rows, axis=-1)
+        best = min(best, time.perf_counter() - start)
+    return rows.size / best
+
+
 def run_once(folder: Path, traces: Path, frame_rate: float, backend: str, workers: int, report: bool,
              indicator=None):
     """One run of the pipeline in a fresh Python process, as ``calcium run`` would do it.
@@ -232,6 +249,8 @@ def main(argv=None) -> int:
         run_once(root / "out-warm", warm, args.frame_rate, "serial", 1, False)
 
         n_sample = min(args.rois, 100)
+        print(f"machine yardstick: one lfilter pass (AR(2)) runs at {machine_speed(traces, n_sample) / 1e6:.0f} "
+              f"million frames/s on one core")
         per_roi = science_per_roi(traces, args.frame_rate, n_sample, args.indicator)
         print(f"reference: the stage functions alone (ΔF/F, noise, inference; {n_sample} ROIs in memory, one "
               f"process): {per_roi * 1e3:.1f} ms per ROI = {args.frames / per_roi / 1e6:.2f} million frames/s")
