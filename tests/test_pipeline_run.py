@@ -511,3 +511,4 @@ def test_infer_file_gives_the_inference_of_each_dff_row_and_resumes(session, tmp
     with pytest.raises(OutputMismatchError, match="indicator"):
         infer_file(source, tmp_path / "spikes.h5", indicator="GCaMP6f", backend="serial", chunk_rois=1,
                    progress=False)
+

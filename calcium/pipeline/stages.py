@@ -18,6 +18,7 @@ fails) is *flagged*: its results are NaN (counts 0), ``quality_flags`` has
 from __future__ import annotations
 
 import math
+import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -190,7 +191,8 @@ def npy_source(path) -> TraceSource:
         raise CalciumInputError(f"{path} is not a readable numeric .npy file: {exc}") from None
     n_rois, n_frames = _numeric_2d(array.shape, array.dtype, str(path))
     plain = c_order or array.ndim == 1
-    return TraceSource(str(path), "npy", None, n_rois, n_frames, offset=offset if plain else None,
+    # (an absolute path: workers of a dask cluster reached by address have folders of their own)
+    return TraceSource(os.path.abspath(path), "npy", None, n_rois, n_frames, offset=offset if plain else None,
                        dtype=array.dtype.str)
 
 
@@ -200,7 +202,7 @@ def hdf5_source(path, dataset: str | None) -> tuple[TraceSource, float | None]:
 
     found = find_trace_dataset(path, dataset=dataset)
     n_rois, n_frames = _numeric_2d(found.shape, found.dtype, f"{found.path}:{found.dataset}")
-    return TraceSource(str(found.path), "hdf5", found.dataset, n_rois, n_frames), found.frame_rate
+    return TraceSource(os.path.abspath(found.path), "hdf5", found.dataset, n_rois, n_frames), found.frame_rate
 
 
 # ---------------------------------------------------------------------------

@@ -466,7 +466,8 @@ class ResultStore:
                     dset.dtype.byteorder not in ("<", "|", "=" if np.little_endian else "<"):
                 raise RuntimeError(f"{self.path}:{name} is not a contiguous, allocated little-endian dataset")
             targets.append((name, int(offset), dset.dtype.str, int(dset.shape[1])))
-        return RowWriter(str(self.path), tuple(targets))
+        # (an absolute path: workers of a dask cluster reached by address have folders of their own)
+        return RowWriter(os.path.abspath(self.path), tuple(targets))
 
     def _write(self, name: str, selection, values) -> None:
         """The single place where data reach the file (tests patch it to simulate a full disk)."""
