@@ -466,7 +466,7 @@ class ResultStore:
                     dset.dtype.byteorder not in ("<", "|", "=" if np.little_endian else "<"):
                 raise RuntimeError(f"{self.path}:{name} is not a contiguous, allocated little-endian dataset")
             targets.append((name, int(offset), dset.dtype.str, int(dset.shape[1])))
-        # (an absolute path: workers of a dask cluster reached by address have folders of their own)
+        # (absolute: whatever folder a worker runs in)
         return RowWriter(os.path.abspath(self.path), tuple(targets))
 
     def _write(self, name: str, selection, values) -> None:
