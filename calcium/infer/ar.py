@@ -1083,7 +1083,7 @@ def _match_penalty(T, g1, g2, h, starts, n, free0, fit_b, shift, lam, sums, dp, 
     On a fixed support the optimum is affine in the penalty, (v, p, b') =
     x0 - lam x1 (_pools_solve with ``affine``; x0 is left in pv, pp and x1
     in pv1, pp1: apply a penalty with _at_penalty), so the residual is a
-    quadratic in it, evaluated through the pool sums (_pools_rss_at) and
+    quadratic in it, whose coefficients come from the pool sums (_pools_rss_quadratic), and
     solved exactly (the root where it grows with the penalty).  Returns
     (penalty or NaN when there is none, b'0, b'1, solved: False when the
     pools could not be solved at all).
@@ -1092,10 +1092,7 @@ def _match_penalty(T, g1, g2, h, starts, n, free0, fit_b, shift, lam, sums, dp, 
                                      True, tiny)
     if status != _OK:
         return math.nan, 0.0, 0.0, False
-    scale = lam if lam > 0.0 else 1.0
-    r0, r1, r2 = _pools_rss_at(n, pv, pp, pv1, pp1, b0, b1, 0.0, scale, 2.0 * scale, sums, syy, sy)
-    a2 = (r2 - 2.0 * r1 + r0) / (2.0 * scale * scale)
-    a1 = (r1 - r0) / scale - a2 * scale
+    r0, a1, a2 = _pools_rss_quadratic(n, pv, pp, pv1, pp1, b0, b1, sums, syy, sy)
     disc = a1 * a1 - 4.0 * a2 * (r0 - target)
     if not (a2 > 0.0 and disc >= 0.0):
         return math.nan, b0, b1, True
@@ -1112,11 +1109,12 @@ def _at_penalty(n, pv, pp, pv1, pp1, lam):
 
 
 @njit(cache=True, fastmath={"contract", "reassoc"})
-def _pools_rss_at(n, pv0, pp0, pv1, pp1, b0, b1, lam_a, lam_b, lam_c, sums, syy, sy):
-    """_pools_rss of the affine pools (v, p, b') = x0 - lam x1 at three penalties, in one pass over the pools."""
-    cross_a = cross_b = cross_c = 0.0
-    square_a = square_b = square_c = 0.0
-    level_a = level_b = level_c = 0.0
+def _pools_rss_quadratic(n, pv0, pp0, pv1, pp1, b0, b1, sums, syy, sy):
+    """Coefficients (c0, c1, c2) of the residual c0 + c1 lam + c2 lam^2 of the affine pools
+    (v, p, b') = x0 - lam x1 (the terms of _pools_rss expanded in lam), in one pass over the pools."""
+    cross0 = cross1 = 0.0
+    level0 = level1 = 0.0
+    square0 = square01 = square1 = 0.0
     weight = 0.0
     for i in range(n):
         dy = sums[_DY, i]
@@ -1124,34 +1122,22 @@ def _pools_rss_at(n, pv0, pp0, pv1, pp1, b0, b1, lam_a, lam_b, lam_c, sums, syy,
         sa = sums[_A, i]
         sb = sums[_B, i]
         sc = sums[_C, i]
-        sh = sums[_H, i]
-        sf = sums[_F, i]
         weight += sums[_SW, i]
         v0 = pv0[i]
         v1 = pv1[i]
         p0 = pp0[i]
         p1 = pp1[i]
-        v = v0 - lam_a * v1
-        p = p0 - lam_a * p1
-        cross_a += v * dy + p * ey
-        square_a += v * v * sa + 2.0 * v * p * sb + p * p * sc
-        level_a += v * sh + p * sf
-        v = v0 - lam_b * v1
-        p = p0 - lam_b * p1
-        cross_b += v * dy + p * ey
-        square_b += v * v * sa + 2.0 * v * p * sb + p * p * sc
-        level_b += v * sh + p * sf
-        v = v0 - lam_c * v1
-        p = p0 - lam_c * p1
-        cross_c += v * dy + p * ey
-        square_c += v * v * sa + 2.0 * v * p * sb + p * p * sc
-        level_c += v * sh + p * sf
-    ba = b0 - lam_a * b1
-    bb = b0 - lam_b * b1
-    bc = b0 - lam_c * b1
-    return (syy - 2.0 * ba * sy + ba * ba * weight - 2.0 * cross_a + 2.0 * ba * level_a + square_a,
-            syy - 2.0 * bb * sy + bb * bb * weight - 2.0 * cross_b + 2.0 * bb * level_b + square_b,
-            syy - 2.0 * bc * sy + bc * bc * weight - 2.0 * cross_c + 2.0 * bc * level_c + square_c)
+        cross0 += v0 * dy + p0 * ey
+        cross1 += v1 * dy + p1 * ey
+        level0 += v0 * sums[_H, i] + p0 * sums[_F, i]
+        level1 += v1 * sums[_H, i] + p1 * sums[_F, i]
+        square0 += v0 * v0 * sa + 2.0 * v0 * p0 * sb + p0 * p0 * sc
+        square01 += v0 * v1 * sa + (v0 * p1 + v1 * p0) * sb + p0 * p1 * sc
+        square1 += v1 * v1 * sa + 2.0 * v1 * p1 * sb + p1 * p1 * sc
+    c0 = syy - 2.0 * b0 * sy + b0 * b0 * weight - 2.0 * cross0 + 2.0 * b0 * level0 + square0
+    c1 = 2.0 * (b1 * sy - b0 * b1 * weight + cross1 - b0 * level1 - b1 * level0 - square01)
+    c2 = b1 * b1 * weight + 2.0 * b1 * level1 + square1
+    return c0, c1, c2
 
 
 @njit(cache=True)
