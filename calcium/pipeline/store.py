@@ -490,9 +490,10 @@ class ResultStore:
         self._file.flush()
         if sync:
             try:
-                os.fsync(self._fd)
-            except (OSError, ValueError, TypeError, AttributeError):  # a driver without a file descriptor
-                pass
+                fd = self._fd
+            except (ValueError, TypeError, AttributeError):  # a driver without a file descriptor: nothing to sync
+                return
+            _sync_descriptor(fd)  # (a failing sync raises OSError, as in the sync thread)
 
     def _fail(self, what: str, exc: BaseException):
         reason = _describe_oserror(exc)
@@ -502,10 +503,10 @@ class ResultStore:
                           f"continue") from exc
 
     def write_chunk(self, chunk_id: int, values: dict) -> None:
-        """Write one chunk's rows of every dataset in ``values``, flush and sync, then mark the chunk done.
+        """Write one chunk's rows of every dataset in ``values``; the chunk is marked done by a later commit.
 
         Rows written by a :class:`RowWriter` for this chunk must be written
-        before the call: the sync covers them.
+        before the call: the commit's sync covers them (see :meth:`commit`).
 
         Parameters
         ----------
