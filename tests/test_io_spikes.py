@@ -107,3 +107,60 @@ def test_writing_bad_times_or_roi_keys_is_refused(tmp_path):
     with pytest.raises(ValueError, match="spike_times must be a dict"):
         write_spike_table(tmp_path / "s.csv", np.array([0.1]))
     assert not (tmp_path / "s.csv").exists()
+
+
+# --------------------------------------------------------------------------- times in fixed decimals
+def test_times_to_fixed_decimals_are_rounded_and_folded(tmp_path):
+    # Reference: the times written out by hand (0.1234564 rounds down, 0.1234566 up; 2.0 gets its zeros).
+    spikes = {0: [0.1234564, 0.1234566, 2.0], 1: [], 4: [0.25000001, 0.25]}
+    path = write_spike_table(tmp_path / "s.csv", spikes, decimals=6)
+    assert _rows(path) == [["roi", "time_s", "count"], ["0", "0.123456", "1"], ["0", "0.123457", "1"],
+                           ["0", "2.000000", "1"], ["1", "", "0"], ["4", "0.250000", "2"]]
+    path = write_spike_table(tmp_path / "s0.csv", {3: [1.4, 12.6]}, decimals=0)
+    assert _rows(path)[1:] == [["3", "1", "1"], ["3", "13", "1"]]
+    for bad in (-1, 10, 2.5, True):
+        with pytest.raises(ValueError, match="decimals must be a whole number in"):
+            write_spike_table(tmp_path / "bad.csv", spikes, decimals=bad)
+    assert not (tmp_path / "bad.csv").exists()
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.floats(0, 1e5, allow_nan=False, allow_infinity=False), max_size=20), st.integers(0, 9))
+def test_fixed_decimal_times_read_back_within_half_a_unit(times, decimals):
+    # Reference: Python's decimal module gives the exact value of each written time; it must lie within
+    # half a unit of the last decimal of the true time (plus the rounding of t * 10**decimals in float64).
+    from decimal import Decimal
+
+    with tempfile.TemporaryDirectory() as folder:
+        path = write_spike_table(Path(folder) / "s.csv", {0: times}, decimals=decimals)
+        written = [row[1] for row in _rows(path)[1:]]
+    if not times:
+        assert written == [""]
+        return
+    assert all(len(text.partition(".")[2]) == decimals for text in written)
+    unit = Decimal(1).scaleb(-decimals)
+    for t in times:
+        nearest = min(written, key=lambda text: abs(Decimal(text) - Decimal(t)))
+        assert abs(Decimal(nearest) - Decimal(t)) <= unit / 2 + Decimal(t) * Decimal(2) ** -50
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 10**12), st.integers(-1, 2**62), st.integers(0, 10**6)), max_size=30),
+       st.integers(0, 9))
+def test_compiled_spike_lines_match_the_plain_python_reference(lines, decimals):
+    # Reference: the plain-Python formatter beside the compiled one (f-strings), on any whole numbers.
+    from calcium.io._spike_text import fixed_lines, fixed_lines_reference
+
+    rois, units, counts = (np.array([line[i] for line in lines], dtype=np.int64) for i in range(3))
+    assert fixed_lines(rois, units, counts, decimals) == fixed_lines_reference(rois, units, counts, decimals)
+
+
+def test_compiled_spike_lines_refuse_bad_arrays():
+    from calcium.io._spike_text import fixed_lines
+
+    with pytest.raises(ValueError, match="equally long"):
+        fixed_lines([0, 1], [5], [1, 1], 3)
+    with pytest.raises(ValueError, match=">= 0"):
+        fixed_lines([-1], [5], [1], 3)
+    with pytest.raises(ValueError, match="decimals must be in"):
+        fixed_lines([0], [5], [1], 12)

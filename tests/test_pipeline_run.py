@@ -164,7 +164,7 @@ def test_spike_table_lists_the_counts_of_the_results_file(session, tmp_path):
         assert np.array_equal(np.bincount(frames, minlength=1200), data["spike_counts"][roi])
     trains = {roi: stages.inferred_spike_times(data["spike_counts"][roi], data["spike_time_offset_s"][roi], RATE)
               for roi in range(N_ROIS)}
-    reference = write_spike_table(tmp_path / "reference.csv", trains)
+    reference = write_spike_table(tmp_path / "reference.csv", trains, decimals=stages.SPIKE_TIME_DECIMALS)
     assert session["summary"].spikes_path.read_bytes() == reference.read_bytes()
 
 

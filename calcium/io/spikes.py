@@ -148,7 +148,7 @@ def _as_mapping(spike_times) -> Mapping:
                      f"got {type(spike_times).__name__}")
 
 
-def write_spike_table(path, spike_times, *, inputs=()) -> Path:
+def write_spike_table(path, spike_times, *, decimals=None, inputs=()) -> Path:
     """Write spike times as a CSV table ``roi,time_s,count``, atomically.
 
     Parameters
@@ -160,6 +160,10 @@ def write_spike_table(path, spike_times, *, inputs=()) -> Path:
         indexed by position. Equal times of one ROI are folded into one line
         with their ``count``; a ROI with no spikes gets one line with an empty
         time and count 0, so :func:`read_spike_times` still lists it.
+    decimals : int, optional
+        Write the times rounded to this many decimals (0-9; times equal once
+        rounded are folded). By default they are written in full (``repr``),
+        so that they read back exactly.
     inputs : sequence of path-like, optional
         Input files; ``path`` may not be one of them.
 
@@ -175,6 +179,12 @@ def write_spike_table(path, spike_times, *, inputs=()) -> Path:
         non-finite or not a number (the message names the ROI).
     """
     mapping = _as_mapping(spike_times)
+    if decimals is not None:
+        from ._spike_text import MAX_DECIMALS
+
+        if isinstance(decimals, bool) or not isinstance(decimals, (int, np.integer)) or \
+                not 0 <= decimals <= MAX_DECIMALS:
+            raise ValueError(f"decimals must be a whole number in [0, {MAX_DECIMALS}], got {decimals!r}")
     rows = []
     for key in mapping:
         if isinstance(key, bool) or not isinstance(key, (int, np.integer)) or key < 0:
@@ -190,6 +200,12 @@ def write_spike_table(path, spike_times, *, inputs=()) -> Path:
         if times.size == 0:
             rows.append((int(key), "", 0))
             continue
-        unique, counts = np.unique(times, return_counts=True)
-        rows.extend((int(key), float(t), int(n)) for t, n in zip(unique, counts))
+        if decimals is None:
+            unique, counts = np.unique(times, return_counts=True)
+            rows.extend((int(key), float(t), int(n)) for t, n in zip(unique, counts))
+            continue
+        from ._spike_text import fixed_time_text, time_units
+
+        units, counts = np.unique(time_units(times, int(decimals)), return_counts=True)
+        rows.extend((int(key), fixed_time_text(u, int(decimals)), int(n)) for u, n in zip(units.tolist(), counts))
     return write_csv(path, ["roi", "time_s", "count"], rows, inputs=inputs)
