@@ -2,11 +2,13 @@
 
 Runs the same session (a synthetic recording written as float32 .npy) with the three backends, in this order:
   serial (the reference), processes with --workers workers, dask with a --workers-worker local cluster,
+--repeat times over (interleaved: serial, processes, dask, serial, ...; the disk is synced before each run),
 each in a fresh Python process (as `calcium run` would run it: the run loads the science modules and compiled
 functions itself, or in its workers), and prints for each: the wall time of run_pipeline, throughput in million
 ROI-frames per second, and the peak memory summed over that process and all its descendants (proportional set
 size sampled every 2 s, and the summed resident set size sampled every 50 ms, an upper bound; psutil).
-Then the ratios measured in this run:
+Then the medians over the repeats, and the ratios of those medians, measured in this run (with the range of the
+ratios of single runs: identical runs on a shared machine differ by 10 % or more):
   speed-up of processes over serial                         (target >= 1.8 with 2 workers)
   overhead of the local dask cluster over processes         (target <= 15 %)
   throughput of processes on this machine                   (target >= 5 million frames/s on 2 cores)
@@ -15,7 +17,7 @@ the stage functions called directly on a sample of ROIs in memory (serial pipeli
 the NWB export are off in the timed runs; pass --report to time the report once at the end.
 
 Usage: python scripts/bench_pipeline.py [--rois 2000] [--frames 36000] [--frame-rate 30] [--workers 2]
-                                        [--indicator NAME] [--skip-serial] [--skip-dask] [--report] [--keep FOLDER]
+                                        [--repeat 3] [--indicator NAME] [--skip-serial] [--skip-dask] [--report] [--keep FOLDER]
 """
 from __future__ import annotations
 
@@ -220,6 +222,8 @@ def main(argv=None) -> int:
     parser.add_argument("--frames", type=int, default=36000)
     parser.add_argument("--frame-rate", type=float, default=30.0)
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--repeat", type=int, default=3,
+                        help="runs per backend, interleaved; the figures are the medians (default 3)")
     parser.add_argument("--skip-serial", action="store_true", help="no serial run (no speed-up figure)")
     parser.add_argument("--skip-dask", action="store_true", help="no dask run")
     parser.add_argument("--report", action="store_true", help="also time the HTML report (processes run)")
@@ -257,17 +261,36 @@ def main(argv=None) -> int:
 
         backends = ([] if args.skip_serial else [("serial", 1)]) + [("processes", args.workers)] + \
                    ([] if args.skip_dask else [("dask", args.workers)])
-        timings = {}
-        print(f"\n{'backend':<10} {'workers':>7} {'wall (s)':>9} {'Mframes/s':>10} {'peak PSS (MB)':>14} "
+        # Repeats are interleaved (serial, processes, dask, serial, ...), so that a slow spell of a shared
+        # machine falls on every backend alike; the ratios are those of the medians.
+        walls = {backend: [] for backend, _ in backends}
+        peaks = {backend: (0, 0) for backend, _ in backends}
+        used = {}
+        print(f"\n{'backend':<10} {'workers':>7} {'run':>4} {'wall (s)':>9} {'Mframes/s':>10} {'peak PSS (MB)':>14} "
               f"{'peak summed RSS (MB)':>21}")
-        for backend, workers in backends:
-            _, used, elapsed, peak = run_once(root / f"out-{backend}", traces, args.frame_rate, backend, workers,
-                                              False, args.indicator)
-            rate = args.rois * args.frames / elapsed
-            timings[backend] = elapsed
-            print(f"{backend:<10} {used:>7} {elapsed:>9.2f} {rate / 1e6:>10.2f} {peak[0] / 2**20:>14.0f} "
-                  f"{peak[1] / 2**20:>21.0f}",
-                  flush=True)
+        for repeat in range(args.repeat):
+            for backend, workers in backends:
+                os.sync()  # the previous run's results are on disk before this one starts
+                _, used[backend], elapsed, peak = run_once(root / f"out-{backend}", traces, args.frame_rate,
+                                                           backend, workers, False, args.indicator)
+                walls[backend].append(elapsed)
+                peaks[backend] = (max(peaks[backend][0], peak[0]), max(peaks[backend][1], peak[1]))
+                print(f"{backend:<10} {used[backend]:>7} {repeat + 1:>4} {elapsed:>9.2f} "
+                      f"{args.rois * args.frames / elapsed / 1e6:>10.2f} {peak[0] / 2**20:>14.0f} "
+                      f"{peak[1] / 2**20:>21.0f}", flush=True)
+        timings = {backend: float(np.median(values)) for backend, values in walls.items()}
+        if args.repeat > 1:
+            print(f"\nmedian of {args.repeat} runs each:")
+            for backend, _ in backends:
+                values = walls[backend]
+                print(f"{backend:<10} {used[backend]:>7} {'med':>4} {timings[backend]:>9.2f} "
+                      f"{args.rois * args.frames / timings[backend] / 1e6:>10.2f} {peaks[backend][0] / 2**20:>14.0f} "
+                      f"{peaks[backend][1] / 2**20:>21.0f}   (range {min(values):.2f}-{max(values):.2f} s)")
+
+        def spread(a, b, f, style):
+            """Range of f over the repeats' pairs (run i of a with run i of b), formatted with ``style``."""
+            values = [f(x, y) for x, y in zip(walls[a], walls[b])]
+            return (f" (single runs: {min(values):{style}} to {max(values):{style}})" if len(values) > 1 else "")
 
         print()
         if "serial" in timings:
@@ -276,12 +299,14 @@ def main(argv=None) -> int:
         if "serial" in timings:
             speedup = timings["serial"] / timings["processes"]
             print(f"speed-up processes/serial ({args.workers} workers): {speedup:.2f}x "
-                  f"(target >= {TARGETS['speed-up']}x) -> {'met' if speedup >= TARGETS['speed-up'] else 'NOT met'}")
+                  f"(target >= {TARGETS['speed-up']}x) -> {'met' if speedup >= TARGETS['speed-up'] else 'NOT met'}"
+                  + spread("serial", "processes", lambda a, b: a / b, ".2f"))
         if "dask" in timings:
             overhead = timings["dask"] / timings["processes"] - 1.0
             print(f"dask local-cluster overhead over processes: {overhead:+.1%} "
                   f"(target <= {TARGETS['dask overhead']:.0%}) -> "
-                  f"{'met' if overhead <= TARGETS['dask overhead'] else 'NOT met'}")
+                  f"{'met' if overhead <= TARGETS['dask overhead'] else 'NOT met'}"
+                  + spread("dask", "processes", lambda a, b: a / b - 1.0, "+.1%"))
         throughput = args.rois * args.frames / timings["processes"]
         print(f"throughput (processes): {throughput / 1e6:.2f} million frames/s "
               f"(target >= {TARGETS['throughput'] / 1e6:g} on 2 cores) -> "
