@@ -242,3 +242,33 @@ def test_the_residual_of_the_affine_pools_is_the_quadratic_in_the_penalty_it_is_
     c0, c1, c2 = ar._pools_rss_quadratic(n, pv0, pp0, pv1, pp1, b0, b1, sums, syy, sy)
     for lam in (0.0, 0.3, 1.7, -2.5):
         assert c0 + c1 * lam + c2 * lam * lam == pytest.approx(residual(lam), rel=1e-12, abs=1e-12)
+
+
+@pytest.mark.parametrize("g", [(1.7, -0.72), (0.9, 0.0), (1.2, -0.3)])
+def test_kernel_tables_of_a_longer_trace_from_a_shorter_one(g):
+    # Reference: the AR(2) impulse response h_k = g1 h_{k-1} + g2 h_{k-2} (Box & Jenkins 1976) written out in
+    # plain Python, and its prefix sums of h_k^2 with numpy; the tables for 36000 frames taken from those of
+    # an 8192-frame block (the kernel has decayed to 0 within it) must equal the ones computed afresh.
+    from calcium.infer import ar
+
+    g1, g2 = g
+    saved = dict(ar._KERNEL_CACHE)
+    try:
+        ar._KERNEL_CACHE.clear()
+        ar._kernel_tables(g1, g2, 8192)
+        h, n_nonzero, tab = ar._kernel_tables(g1, g2, 36000)
+        ar._KERNEL_CACHE.clear()
+        h_new, n_new, tab_new = ar._kernel_tables(g1, g2, 36000)
+    finally:
+        ar._KERNEL_CACHE.clear()
+        ar._KERNEL_CACHE.update(saved)
+    assert n_nonzero == n_new < 8192
+    assert h.shape == h_new.shape == (36001,) and not h.flags.writeable
+    np.testing.assert_array_equal(h, h_new)
+    np.testing.assert_array_equal(tab, tab_new)
+    plain = [1.0, g1]
+    for _ in range(200):
+        plain.append(g1 * plain[-1] + g2 * plain[-2])
+    np.testing.assert_allclose(h[:202], plain, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(tab[0, 1:203], np.cumsum(np.square(plain)), rtol=1e-12)
+    assert np.all(h[n_nonzero:] == 0.0)

@@ -252,7 +252,11 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
         return _infer_convex(y, y_lin, frame_rate, kernel, noise_sd, penalty, baseline, missing, threshold,
                              frame_weights)
 
-    yc, w, unit_w, n_obs = _prepare_weights(y_lin, frame_weights)
+    if frame_weights is None and not missing.any:
+        # (every frame finite, no weights: what _prepare_weights returns, without a second finiteness pass)
+        yc, w, unit_w, n_obs = y_lin, np.ones(0), True, y_lin.size
+    else:
+        yc, w, unit_w, n_obs = _prepare_weights(y_lin, frame_weights)
     lam_hint = b_hint = None
     if kernel is not None:
         g = kernel.ar_coefficients(frame_rate)
@@ -294,6 +298,10 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
     else:
         c_fit, s_fit, b_fit = c, s, b
 
+    # least-squares size of a one-frame event in the noise (activity units): the smallest quantum that counts,
+    # and the yardstick of each event's own z
+    noise_size = event_noise_size(g, noise_sd, yc.size)
+
     # size of one spike
     from ..kernel import Kernel
 
@@ -305,7 +313,6 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
             unit = SpikeUnit(per_amplitude.size * spike_size, per_amplitude.lag_frames, per_amplitude.spread)
         else:
             sizes = event_sizes(s_fit, merge_gap=merge_gap_frames(shape, frame_rate))
-            noise_size = event_noise_size(g, noise_sd, yc.size)
             q = quantal_size(sizes, min_size=3.0 * noise_size)
             if q is None:
                 denoised = _denoised(kernel, b_fit, c_fit)
@@ -320,7 +327,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
 
     activity = s_fit / unit.size
     # an event must also stand out of the noise of its own size (z >= 2.5)
-    size_noise = event_noise_size(g, noise_sd, yc.size) / unit.size
+    size_noise = noise_size / unit.size
     spike_times, spike_counts = events_to_spikes(activity, frame_rate, lag_frames=unit.lag_frames,
                                                  threshold=max(threshold, _MIN_EVENT_Z * size_noise),
                                                  merge_gap=merge_gap_frames(kernel, frame_rate))

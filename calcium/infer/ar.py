@@ -1313,6 +1313,9 @@ def _kernel_tables(g1: float, g2: float, T: int):
     """(h, n_nonzero, tab) for coefficients (g1, g2) and T frames; the last few are kept (read-only)."""
     key = (g1, g2, T)
     found = _KERNEL_CACHE.get(key)
+    if found is not None:
+        return found
+    found = _tables_from_shorter(g1, g2, T)
     if found is None:
         h, n_nonzero = _impulse_and_length(g1, g2, T + 1)
         length = min(T, n_nonzero + 1)
@@ -1320,10 +1323,25 @@ def _kernel_tables(g1: float, g2: float, T: int):
         _response_tables(g2, h, n_nonzero, length, tab)
         h.flags.writeable = False
         found = (h, n_nonzero, tab)
-        if len(_KERNEL_CACHE) >= _KERNEL_CACHE_SIZE:
-            _KERNEL_CACHE.pop(next(iter(_KERNEL_CACHE)))
-        _KERNEL_CACHE[key] = found
+    if len(_KERNEL_CACHE) >= _KERNEL_CACHE_SIZE:
+        _KERNEL_CACHE.pop(next(iter(_KERNEL_CACHE)))
+    _KERNEL_CACHE[key] = found
     return found
+
+
+def _tables_from_shorter(g1: float, g2: float, T: int):
+    """The tables for T frames from those of fewer frames, when the kernel had decayed to 0 within them (the
+    kernel's estimate on a block, then the whole trace): the same impulse response padded with zeros and the
+    same prefix sums (they stop growing where it is 0).  None when no such entry is kept."""
+    for (k1, k2, shorter), (h, n_nonzero, tab) in _KERNEL_CACHE.items():
+        # (flushed to 0 at n_nonzero < shorter: the recursion for T frames stops at the same frame, and the
+        # table length min(T, n_nonzero + 1) is the same)
+        if k1 == g1 and k2 == g2 and shorter < T and n_nonzero < shorter:
+            padded = np.zeros(max(T + 1, 2))
+            padded[:h.size] = h
+            padded.flags.writeable = False
+            return padded, n_nonzero, tab
+    return None
 
 
 class _Work:
