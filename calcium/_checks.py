@@ -144,7 +144,10 @@ class MissingFrames:
 def find_missing(traces: np.ndarray) -> MissingFrames:
     """Report the NaN/inf samples of ``traces`` (1-D or 2-D, time last)."""
     mask = ~np.isfinite(traces)
-    per_roi = mask.reshape(-1, mask.shape[-1]).sum(axis=1)
+    if mask.ndim == 1:  # (one trace: a plain count, much faster than the sum over an axis)
+        per_roi = np.array([np.count_nonzero(mask)], dtype=np.int64)
+    else:
+        per_roi = mask.reshape(-1, mask.shape[-1]).sum(axis=1)
     return MissingFrames(mask=mask, count=int(per_roi.sum()), per_roi=per_roi)
 
 

@@ -671,13 +671,20 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
         r = (yc - b_cur - c) if unit else w * (yc - b_cur - c)
         u = np.empty(yc.size)
         _coefficient_derivative(c, g1, g2, u)
-        u_prev = np.concatenate([[0.0], u[:-1]])  # dc/dg2
+        u_prev = np.empty(yc.size)  # dc/dg2: u one frame later
+        u_prev[0] = 0.0
+        u_prev[1:] = u[:-1]
         # chain rule to the log time constants: g1 = d + q, g2 = -d q (d, q the decay and rise roots), and
         # d(root)/d(log tau) = -root log(root)
         d = math.exp(-1.0 / (math.exp(theta[-1]) * frame_rate))
         if order == 2:
             q = math.exp(-1.0 / (math.exp(theta[0]) * frame_rate))
-            J = np.array([(u - d * u_prev) * (-q * math.log(q)), (u - q * u_prev) * (-d * math.log(d))])
+            # rows (u - d u_prev) (-q log q) and (u - q u_prev) (-d log d), written in place (the same operations)
+            J = np.empty((2, yc.size))
+            for row, root, other in ((J[0], d, q), (J[1], q, d)):
+                np.multiply(u_prev, root, out=row)
+                np.subtract(u, row, out=row)
+                np.multiply(row, -other * math.log(other), out=row)
         else:
             J = (u * (-d * math.log(d)))[None, :]
         perp = np.empty_like(J)
