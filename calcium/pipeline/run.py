@@ -365,9 +365,9 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     Notes
     -----
     Memory: each worker holds one chunk of ROIs (``execution.chunk_rois``),
-    read by itself from the input file, and writes its (rois, frames)
-    results into the results file itself; the parent only receives the
-    per-ROI values and the chunk's spike-table lines. (On a dask cluster
+    read by itself from the input file, and writes its results into the
+    results file itself; the parent only receives the chunk's spike-table
+    lines and sets the done flags. (On a dask cluster
     reached by address the rows come back to the parent: at most two chunks
     per worker on their way to the file.)
 
@@ -519,7 +519,7 @@ def _run_chunks(source: stages.TraceSource, params, store: ResultStore, todo, *,
                 scheduler, progress, parts: Path, label: str = "ΔF/F + inference"):
     """Compute the chunks ``todo`` with the chosen executor and write each to ``store`` as it arrives.
 
-    The workers write the (rois, frames) results into the file themselves
+    The workers write the results into the file themselves
     (:class:`~calcium.pipeline.store.RowWriter`), except on a dask cluster
     reached by address, whose workers may not see this machine's disk: there
     the results come back to this process. Each chunk's lines of the spike

@@ -252,8 +252,8 @@ class ChunkTask:
     """One unit of work: rows ``start:stop`` of ``source``.
 
     With a ``writer`` (:class:`calcium.pipeline.store.RowWriter`) the worker
-    writes the (rois, frames) results into the results file itself and
-    returns only the per-ROI values; without one it returns everything.
+    writes the results into the results file itself and returns only the
+    chunk's spike-table lines; without one it returns everything.
     """
 
     chunk_id: int
@@ -365,9 +365,9 @@ def process_chunk(task: ChunkTask) -> dict:
     Arrays have the chunk's ROIs as first axis; (rois, frames) results are
     float32, counts uint16. Per-ROI failures are flagged, never raised.
     The entry :data:`SPIKE_TABLE_KEY` holds the chunk's lines of the spike
-    table (:func:`spike_table_text`). With ``task.writer`` the (rois,
-    frames) results are written to the results file here and left out of
-    the returned dict.
+    table (:func:`spike_table_text`). With ``task.writer`` the results it
+    covers (every per-ROI dataset) are written to the results file here and
+    left out of the returned dict.
     """
     out = _process_rows(task.source.read_rows(task.start, task.stop), task.start, task.params)
     if task.writer is not None:

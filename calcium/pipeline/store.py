@@ -21,13 +21,13 @@ How a run survives a crash, a kill or a power cut
   parameters (``run_hash``). A rerun with the same ones continues where the
   last one stopped; with different ones it is refused unless the caller asks
   to overwrite.
-* The large (rois, frames) datasets are written by whoever computed the
-  rows, straight into their bytes (:class:`RowWriter`: plain positioned
-  writes at offsets HDF5 fixed at creation, no HDF5 library call), so the
-  results never travel through the parent process. Everything else (the
-  per-ROI values, the done flags, all HDF5 metadata) is written by the
-  parent alone, and the parent's sync before a chunk's done flag covers the
-  rows the workers wrote (a sync flushes the file, whoever wrote to it).
+* The per-ROI datasets are written by whoever computed the rows, straight
+  into their bytes (:class:`RowWriter`: plain positioned writes at offsets
+  HDF5 fixed at creation, no HDF5 library call), so the results never travel
+  through the parent process. Everything else (the done flags, all HDF5
+  metadata) is written by the parent alone, and the parent's sync before a
+  chunk's done flag covers the rows the workers wrote (a sync flushes the
+  file, whoever wrote to it).
 
 The layout is documented in ``docs/hdf5-layout.md``.
 """
@@ -136,7 +136,7 @@ def _fixed_dcpl():
 
 @dataclass(frozen=True)
 class RowWriter:
-    """Writes rows of the (rois, frames) datasets of a results file straight into their bytes.
+    """Writes rows of the per-ROI datasets of a results file straight into their bytes.
 
     Made by :meth:`ResultStore.row_writer`; small and picklable, so it goes to
     the workers with their work. The datasets are contiguous, uncompressed,
@@ -148,7 +148,9 @@ class RowWriter:
     ----------
     path : str
         The results file.
-    targets : tuple of (name, byte offset, dtype, values per row)
+    targets : tuple of (name, byte offset, dtype, shape of one row, text size)
+        The text size is the byte length of a fixed-length text dataset
+        (written as UTF-8, see :func:`_text_bytes`), 0 for numbers.
     """
 
     path: str
@@ -159,7 +161,7 @@ class RowWriter:
         return tuple(name for name, *_ in self.targets)
 
     def write(self, first_row: int, values: dict) -> None:
-        """Write ``values[name]`` (rows, frames) at rows ``first_row:...`` of every target dataset.
+        """Write ``values[name]`` (rows first) at rows ``first_row:...`` of every target dataset.
 
         Raises
         ------
@@ -169,14 +171,20 @@ class RowWriter:
         KeyError, ValueError
             A target missing from ``values`` or of the wrong shape.
         """
+        arrays = []
+        for name, offset, dtype, row_shape, text_size in self.targets:
+            if text_size:
+                array = _text_bytes(values[name], text_size)
+            else:
+                array = np.ascontiguousarray(values[name], dtype=np.dtype(dtype))
+            if array.ndim != 1 + len(row_shape) or array.shape[1:] != tuple(row_shape):
+                raise ValueError(f"{name}: expected rows of shape {tuple(row_shape)}, got shape {array.shape}")
+            arrays.append((array, offset + first_row * array[:1].nbytes))
         fd = None
         try:
             fd = os.open(self.path, os.O_WRONLY)
-            for name, offset, dtype, row_values in self.targets:
-                array = np.ascontiguousarray(values[name], dtype=np.dtype(dtype))
-                if array.ndim != 2 or array.shape[1] != row_values:
-                    raise ValueError(f"{name}: expected rows of {row_values} values, got shape {array.shape}")
-                _pwrite_all(fd, memoryview(array).cast("B"), offset + first_row * row_values * array.itemsize)
+            for array, offset in arrays:
+                _pwrite_all(fd, memoryview(array).cast("B"), offset)
         except OSError as exc:
             raise OutputError(getattr(exc, "errno", None) or errno.EIO,
                               f"writing rows {first_row}+ to {self.path} failed: {_describe_oserror(exc)}. The "
@@ -455,17 +463,23 @@ class ResultStore:
 
     # -- writing ---------------------------------------------------------
     def row_writer(self) -> RowWriter:
-        """A :class:`RowWriter` for every per-ROI (rois, frames) numeric dataset of the file."""
+        """A :class:`RowWriter` for every per-ROI dataset of the file.
+
+        With it a worker writes all of its chunk's results, and this process
+        only sets the done flags. (Every dataset this module creates can be
+        written so; one that cannot raises RuntimeError.)
+        """
         targets = []
         for name, spec in self._specs.items():
-            if not spec["per_roi"] or len(spec["shape"]) != 2 or spec["dtype"].startswith("text"):
+            if not spec["per_roi"]:
                 continue
             dset = self._file[name]
             offset = dset.id.get_offset()
             if dset.chunks is not None or dset.compression is not None or offset is None or \
                     dset.dtype.byteorder not in ("<", "|", "=" if np.little_endian else "<"):
                 raise RuntimeError(f"{self.path}:{name} is not a contiguous, allocated little-endian dataset")
-            targets.append((name, int(offset), dset.dtype.str, int(dset.shape[1])))
+            text_size = int(spec["dtype"][4:]) if spec["dtype"].startswith("text") else 0
+            targets.append((name, int(offset), dset.dtype.str, tuple(int(n) for n in dset.shape[1:]), text_size))
         # (absolute: whatever folder a worker runs in)
         return RowWriter(os.path.abspath(self.path), tuple(targets))
 
