@@ -3,6 +3,8 @@
 Runs the same session (a synthetic recording written as float32 .npy) with the three backends, in this order:
   serial (the reference), processes with --workers workers, dask with a --workers-worker local cluster,
 --repeat times over (interleaved: serial, processes, dask, serial, ...; the disk is synced before each run),
+plus, as a yardstick, two unrelated serial runs at once, one per half of the ROIs (what two cores of this
+machine give when the work is split with nothing shared),
 each in a fresh Python process (as `calcium run` would run it: the run loads the science modules and compiled
 functions itself, or in its workers), and prints for each: the wall time of run_pipeline, throughput in million
 ROI-frames per second, and the peak memory summed over that process and all its descendants (proportional set
@@ -190,6 +192,31 @@ def run_once(folder: Path, traces: Path, frame_rate: float, backend: str, worker
     return result["backend"], result["workers"], result["elapsed_s"], (memory.peak, memory.peak_rss)
 
 
+def run_pair(folders, halves, frame_rate: float, indicator=None) -> float:
+    """Two unrelated serial runs at once, one per half of the ROIs, each in its own fresh process.
+
+    Not a backend: a yardstick of what two cores give on this machine when the work is split in two with
+    nothing shared at all (each process loads the stages and writes its own results file). A parallel
+    backend that matched it would lose nothing to its own organisation. Returns the seconds until both
+    runs were done (the longer of the two ``run_pipeline`` times; they start together).
+    """
+    children = []
+    for folder, traces in zip(folders, halves):
+        shutil.rmtree(folder, ignore_errors=True)
+        command = [sys.executable, str(Path(__file__).resolve()), "--child", "serial", "--child-traces",
+                   str(traces), "--child-out", str(folder), "--frame-rate", repr(frame_rate), "--workers", "1"]
+        if indicator:
+            command += ["--indicator", indicator]
+        children.append(subprocess.Popen(command, stdout=subprocess.PIPE, text=True))
+    elapsed = []
+    for child in children:
+        out, _ = child.communicate()
+        if child.returncode != 0:
+            raise RuntimeError(f"a serial run on half of the ROIs failed (exit {child.returncode})")
+        elapsed.append(json.loads(out.strip().splitlines()[-1])["elapsed_s"])
+    return max(elapsed)
+
+
 def _child(args) -> int:
     """The body of run_once's process: one timed run_pipeline, its result as one JSON line on stdout."""
     from calcium.pipeline import config_from_dict, run_pipeline
@@ -261,6 +288,13 @@ def main(argv=None) -> int:
         warm = root / "warm.npy"
         np.save(warm, np.load(traces, mmap_mode="r")[:2, : min(args.frames, 3000)])
         run_once(root / "out-warm", warm, args.frame_rate, "serial", 1, False)
+        halves = []
+        if not args.skip_serial and args.rois >= 2:
+            source = np.load(traces, mmap_mode="r")
+            for i, part in enumerate((slice(0, args.rois // 2), slice(args.rois // 2, args.rois))):
+                halves.append(root / f"half-{i}.npy")
+                np.save(halves[-1], source[part])
+            del source
 
         n_sample = min(args.rois, 100)
         print(f"machine yardstick: one lfilter pass (AR(2)) runs at {machine_speed(traces, n_sample) / 1e6:.0f} "
@@ -288,6 +322,14 @@ def main(argv=None) -> int:
                 print(f"{backend:<10} {used[backend]:>7} {repeat + 1:>4} {elapsed:>9.2f} "
                       f"{args.rois * args.frames / elapsed / 1e6:>10.2f} {peak[0] / 2**20:>14.0f} "
                       f"{peak[1] / 2**20:>21.0f}", flush=True)
+            if halves:
+                os.sync()
+                elapsed = run_pair([root / "out-half-0", root / "out-half-1"], halves, args.frame_rate,
+                                   args.indicator)
+                walls.setdefault("2 x serial", []).append(elapsed)
+                print(f"{'2 x serial':<10} {'1+1':>7} {repeat + 1:>4} {elapsed:>9.2f} "
+                      f"{args.rois * args.frames / elapsed / 1e6:>10.2f}   (two unrelated runs, one per half of "
+                      f"the ROIs, at once)", flush=True)
         timings = {backend: float(np.median(values)) for backend, values in walls.items()}
         if args.repeat > 1:
             print(f"\nmedian of {args.repeat} runs each:")
@@ -296,6 +338,11 @@ def main(argv=None) -> int:
                 print(f"{backend:<10} {used[backend]:>7} {'med':>4} {timings[backend]:>9.2f} "
                       f"{args.rois * args.frames / timings[backend] / 1e6:>10.2f} {peaks[backend][0] / 2**20:>14.0f} "
                       f"{peaks[backend][1] / 2**20:>21.0f}   (range {min(values):.2f}-{max(values):.2f} s)")
+            if "2 x serial" in walls:
+                values = walls["2 x serial"]
+                print(f"{'2 x serial':<10} {'1+1':>7} {'med':>4} {timings['2 x serial']:>9.2f} "
+                      f"{args.rois * args.frames / timings['2 x serial'] / 1e6:>10.2f}   "
+                      f"(range {min(values):.2f}-{max(values):.2f} s)")
 
         def spread(a, b, f, style):
             """Range of f over the repeats' pairs (run i of a with run i of b), formatted with ``style``."""
@@ -311,6 +358,12 @@ def main(argv=None) -> int:
             print(f"speed-up processes/serial ({args.workers} workers): {speedup:.2f}x "
                   f"(target >= {TARGETS['speed-up']}x) -> {'met' if speedup >= TARGETS['speed-up'] else 'NOT met'}"
                   + spread("serial", "processes", lambda a, b: a / b, ".2f"))
+        if "2 x serial" in timings:
+            ceiling = timings["serial"] / timings["2 x serial"]
+            print(f"yardstick: serial / (two unrelated serial runs on the halves at once) = {ceiling:.2f}x; "
+                  f"processes reach {timings['2 x serial'] / timings['processes']:.0%} of it"
+                  + spread("2 x serial", "processes", lambda a, b: a / b, ".0%")
+                  + " (the same work split in two with nothing shared: what two cores of this machine give)")
         if "dask" in timings:
             overhead = timings["dask"] / timings["processes"] - 1.0
             print(f"dask local-cluster overhead over processes: {overhead:+.1%} "
@@ -321,7 +374,7 @@ def main(argv=None) -> int:
         print(f"throughput (processes): {throughput / 1e6:.2f} million frames/s "
               f"(target >= {TARGETS['throughput'] / 1e6:g} on 2 cores) -> "
               f"{'met' if throughput >= TARGETS['throughput'] else 'NOT met'}")
-        names = list(timings)
+        names = [backend for backend, _ in backends]
         identical = all(same_results(root / f"out-{names[0]}" / "results.h5", root / f"out-{n}" / "results.h5")
                         for n in names[1:])
         print(f"results identical across backends: {identical}")
