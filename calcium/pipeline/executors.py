@@ -22,6 +22,8 @@ workers must keep its top-level code under ``if __name__ == "__main__":``.
 from __future__ import annotations
 
 import concurrent.futures as cf
+import importlib
+import importlib.util
 import itertools
 import logging
 import multiprocessing
@@ -171,13 +173,17 @@ def _start_worker(parent_pid: int) -> None:  # pragma: no cover - runs in the wo
     threading.Thread(target=_watch_parent, args=(parent_pid, 1.0), daemon=True).start()
 
 
-def _process_context():
-    """forkserver where available: no fork of a parent that holds threads or open HDF5 files."""
+def _process_context(extra_preload=()):
+    """forkserver where available: no fork of a parent that holds threads or open HDF5 files.
+
+    ``extra_preload``: more modules for the server to import when it starts (a server already running
+    keeps what it has).
+    """
     if sys.platform.startswith("linux") and "forkserver" in multiprocessing.get_all_start_methods():
         context = multiprocessing.get_context("forkserver")
         # The server imports the stages and runs them once on a small invented chunk (calcium.pipeline._preload);
         # every worker forked from it starts with the modules imported and the compiled functions loaded.
-        context.set_forkserver_preload(["calcium.pipeline._preload"])
+        context.set_forkserver_preload(["calcium.pipeline._preload", *extra_preload])
         return context
     return multiprocessing.get_context("spawn")
 
@@ -193,7 +199,16 @@ def prestart(backend: str, *, scheduler: str | None = None) -> None:
     (it lives as long as this process).
     """
     local = backend == "processes" or (backend == "dask" and not scheduler)
-    if not local or _process_context().get_start_method() != "forkserver":
+    if not local:
+        return
+    extra = ()
+    if backend == "dask" and importlib.util.find_spec("distributed") is not None:
+        # A local cluster's worker processes come from the server too: it imports dask.distributed for them.
+        # This process needs it as well, to run the scheduler: imported meanwhile, while the inputs are read.
+        extra = ("distributed",)
+        threading.Thread(target=importlib.import_module, args=("distributed",), daemon=True,
+                         name="import-distributed").start()
+    if _process_context(extra).get_start_method() != "forkserver":
         return
     from multiprocessing import forkserver
 
@@ -309,7 +324,8 @@ class DaskExecutor(Executor):
         else:
             import dask
 
-            # The workers inherit this configuration from the process that starts them. Their statistical
+            # No dashboard (nobody would know its port; it only costs CPU). The workers inherit this
+            # configuration from the process that starts them. Their statistical
             # profiler (a stack sample every 10 ms) and GIL monitor (every 1 ms) are for looking into a
             # cluster's dashboard; here they would only take CPU from the chunks. And the default environment
             # of a worker sets glibc's MALLOC_TRIM_THRESHOLD_, which also freezes malloc's mmap threshold at
@@ -320,8 +336,15 @@ class DaskExecutor(Executor):
             # stages on its first chunk.
             environ = dict(dask.config.get("distributed.nanny.pre-spawn-environ", {}))
             environ.pop("MALLOC_TRIM_THRESHOLD_", None)
+            # Every process of the cluster also wakes up every 20 ms to time its event loop (diagnostics only),
+            # samples the machine every 0.5 s for the dashboard, and the workers and their nannies read their
+            # memory use every 0.1 s: less often here (together they took ~5 % of the cores from the chunks,
+            # measured; a second is still soon enough to pause or restart a worker that outgrows its memory).
             settings = {"distributed.worker.profile.enabled": False,
                         "distributed.admin.system-monitor.gil.enabled": False,
+                        "distributed.admin.tick.interval": "1s",
+                        "distributed.admin.system-monitor.interval": "5s",
+                        "distributed.worker.memory.monitor-interval": "1s",
                         "distributed.nanny.pre-spawn-environ": environ}
             method = _process_context().get_start_method()
             if method == "forkserver":
@@ -329,7 +352,7 @@ class DaskExecutor(Executor):
             with dask.config.set(settings):
                 self._cluster = distributed.LocalCluster(
                     n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                    host="127.0.0.1", dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR)
+                    host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR)
             self._client = distributed.Client(self._cluster)
         self.scheduler = self._client.scheduler.address
         self.workers = max(1, sum(self._client.nthreads().values()))
