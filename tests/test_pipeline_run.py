@@ -225,6 +225,19 @@ def test_worker_processes_give_results_identical_to_serial(session, tmp_path):
     _assert_same_results(session["summary"].results_path, summary.results_path)
 
 
+def test_worker_processes_run_the_numerical_libraries_on_one_thread_each():
+    # Common practice for process-level parallelism: with a worker per core, the libraries' own thread pools
+    # (OpenBLAS, OpenMP, MKL) would only compete with the other workers. A user's own setting is kept, and this
+    # process's environment is left as it was.
+    from calcium.pipeline.executors import _SINGLE_THREAD_VARIABLES
+
+    before = dict(os.environ)
+    with ProcessExecutor(1) as executor:
+        seen = dict(executor.map_chunks(os.getenv, list(enumerate(_SINGLE_THREAD_VARIABLES))))
+    assert [seen[i] for i in range(3)] == [before.get(name, "1") for name in _SINGLE_THREAD_VARIABLES]
+    assert dict(os.environ) == before
+
+
 def test_a_run_killed_part_way_resumes_to_identical_results(session, tmp_path):
     folder = tmp_path / "out"
     config_path = tmp_path / "run.toml"

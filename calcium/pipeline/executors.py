@@ -212,7 +212,22 @@ def prestart(backend: str, *, scheduler: str | None = None) -> None:
         return
     from multiprocessing import forkserver
 
-    forkserver.ensure_running()
+    # One thread per worker for the numerical libraries: the workers already fill every core, and a library's
+    # own threads would only compete with them (a user's own setting is kept). The server and the workers
+    # forked from it take the environment of this moment; this process's own is left as it was.
+    saved = dict(os.environ)
+    try:
+        for name in _SINGLE_THREAD_VARIABLES:
+            os.environ.setdefault(name, "1")
+        forkserver.ensure_running()
+    finally:
+        for name in _SINGLE_THREAD_VARIABLES:
+            if name not in saved:
+                os.environ.pop(name, None)
+
+
+#: Thread counts of the numerical libraries (OpenBLAS, OpenMP, MKL), set to 1 for the worker processes.
+_SINGLE_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 class ProcessExecutor(Executor):
@@ -233,6 +248,7 @@ class ProcessExecutor(Executor):
 
     def _get_pool(self):
         if self._pool is None:
+            prestart("processes")  # (started already by a pipeline run; here for callers that did not)
             self._pool = cf.ProcessPoolExecutor(max_workers=self.workers, mp_context=_process_context(),
                                                 initializer=_start_worker, initargs=(os.getpid(),))
         return self._pool
@@ -346,6 +362,7 @@ class DaskExecutor(Executor):
                         "distributed.admin.system-monitor.interval": "5s",
                         "distributed.worker.memory.monitor-interval": "1s",
                         "distributed.nanny.pre-spawn-environ": environ}
+            prestart("dask")  # (started already by a pipeline run; here for callers that did not)
             method = _process_context().get_start_method()
             if method == "forkserver":
                 settings["distributed.worker.multiprocessing-method"] = method
