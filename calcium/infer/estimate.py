@@ -196,18 +196,24 @@ def _least_squares(M: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     when they are well conditioned (far cheaper than a general solver on so small a problem), otherwise
     numpy.linalg.lstsq."""
     if M.shape[1] <= 2 and M.shape[0] >= M.shape[1]:
-        A = M.T @ M
-        r = M.T @ rhs
-        if M.shape[1] == 1:
-            if A[0, 0] > 0.0:
-                return np.array([r[0] / A[0, 0]])
-        else:
-            det = A[0, 0] * A[1, 1] - A[0, 1] * A[1, 0]
-            # (the condition number of M is at most about 1e4: the squared system loses at most 8 digits)
-            if det > 1e-8 * (A[0, 0] * A[1, 1]) and det > 0.0:
-                return np.array([(A[1, 1] * r[0] - A[0, 1] * r[1]) / det, (A[0, 0] * r[1] - A[1, 0] * r[0]) / det])
+        # (the condition number of M is at most about 1e4: the squared system loses at most 8 digits)
+        x = _cramer(M.T @ M, M.T @ rhs, 1e-8)
+        if x is not None:
+            return x
     coeffs, *_ = np.linalg.lstsq(M, rhs, rcond=None)
     return coeffs
+
+
+def _cramer(A: np.ndarray, rhs: np.ndarray, rel_det: float):
+    """A x = rhs for a 1x1 or 2x2 A by Cramer's rule; None unless A is clearly positive definite (A[0, 0] > 0
+    and det A > max(0, rel_det A[0, 0] A[1, 1]))."""
+    if A.shape == (1, 1):
+        return np.array([rhs[0] / A[0, 0]]) if A[0, 0] > 0.0 else None
+    if A.shape == (2, 2):
+        det = A[0, 0] * A[1, 1] - A[0, 1] * A[1, 0]
+        if A[0, 0] > 0.0 and det > 0.0 and det > rel_det * (A[0, 0] * A[1, 1]):
+            return np.array([(A[1, 1] * rhs[0] - A[0, 1] * rhs[1]) / det, (A[0, 0] * rhs[1] - A[1, 0] * rhs[0]) / det])
+    return None
 
 
 def _roots_to_coefficients(decay_root: float, rise_root: float) -> np.ndarray:
@@ -604,13 +610,8 @@ def _project_out_into(x, w, unit, g1, g2, h, tab, starts, n, free0, tiny, zx, ta
 def _solve_small(A: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     """A x = rhs for a 1x1 or 2x2 positive definite A by Cramer's rule (numpy.linalg.solve otherwise, and when
     A is not clearly positive definite)."""
-    if A.shape == (1, 1) and A[0, 0] > 0.0:
-        return np.array([rhs[0] / A[0, 0]])
-    if A.shape == (2, 2):
-        det = A[0, 0] * A[1, 1] - A[0, 1] * A[1, 0]
-        if A[0, 0] > 0.0 and det > 1e-12 * (A[0, 0] * A[1, 1]):
-            return np.array([(A[1, 1] * rhs[0] - A[0, 1] * rhs[1]) / det, (A[0, 0] * rhs[1] - A[1, 0] * rhs[0]) / det])
-    return np.linalg.solve(A, rhs)
+    x = _cramer(A, rhs, 1e-12)
+    return np.linalg.solve(A, rhs) if x is None else x
 
 
 def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noise_sd):
