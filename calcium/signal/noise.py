@@ -111,12 +111,11 @@ def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, 
     overlap, same scaling); a segment touching a missing sample is dropped
     from the average.
     """
-    n = block.shape[-1]
-    step = nperseg - nperseg // 2
-    n_seg = _segments(n, nperseg)
     if not hole.any():
         return _welch_level(block, frame_rate, nperseg, keep, average)
-    starts = np.arange(n_seg) * step
+    n = block.shape[-1]
+    step = nperseg - nperseg // 2
+    starts = np.arange(_segments(n, nperseg)) * step
     holes_before = np.zeros((hole.shape[0], n + 1), np.int64)
     np.cumsum(hole, axis=-1, out=holes_before[:, 1:])
     usable = (holes_before[:, starts + nperseg] - holes_before[:, starts]) == 0   # (rows, segments)
@@ -124,18 +123,13 @@ def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, 
     # Only the usable segments are copied and transformed; they hold no missing sample.
     seg_row, seg_index = np.nonzero(usable)
     segments = np.lib.stride_tricks.sliding_window_view(block, nperseg, axis=-1)[seg_row, starts[seg_index]]
-    if _remove_segment_mean(keep):
-        segments = segments - segments.mean(axis=-1, keepdims=True)
-    window = _hann(nperseg)
-    spectrum = np.fft.rfft(segments * window, axis=-1)[:, keep]
-    power = spectrum.real ** 2 + spectrum.imag ** 2                              # (usable segments, bins)
+    power = _segment_power(segments, keep, nperseg)                               # (usable segments, bins)
     psd = np.zeros((block.shape[0], power.shape[1]))
     has = n_ok > 0
     if has.any():
         first = np.concatenate([[0], np.cumsum(n_ok[has])[:-1]])
         psd[has] = np.add.reduceat(power, first, axis=0)
-    # One-sided density, as scipy.signal.welch: 2 |X|^2 / (fs * sum(window^2)) away from DC and Nyquist.
-    psd *= 2.0 / (frame_rate * np.sum(window ** 2)) / np.maximum(n_ok, 1)[:, None]
+    psd *= _density_scale(frame_rate, nperseg) / np.maximum(n_ok, 1)[:, None]
     dof = np.array([_welch_dof(int(k), nperseg) if k else 2.0 for k in n_ok])
     level = _band_average(psd, average, dof)
     level[n_ok == 0] = np.nan
@@ -148,13 +142,22 @@ def _welch_level(block: np.ndarray, frame_rate: float, nperseg: int, keep: np.nd
     step = nperseg - nperseg // 2
     n_seg = _segments(block.shape[-1], nperseg)
     segments = np.lib.stride_tricks.sliding_window_view(block, nperseg, axis=-1)[:, ::step][:, :n_seg]
+    power = _segment_power(segments, keep, nperseg)                               # (rows, segments, bins)
+    psd = power.sum(axis=1) * (_density_scale(frame_rate, nperseg) / n_seg)
+    return _band_average(psd, average, np.full(block.shape[0], _welch_dof(n_seg, nperseg)))
+
+
+def _segment_power(segments: np.ndarray, keep: np.ndarray, nperseg: int) -> np.ndarray:
+    """|X|^2 at the ``keep`` bins of each Hann-windowed segment (last axis), its mean removed when that matters."""
     if _remove_segment_mean(keep):
         segments = segments - segments.mean(axis=-1, keepdims=True)
-    window = _hann(nperseg)
-    spectrum = np.fft.rfft(segments * window, axis=-1)[..., keep]             # (rows, segments, bins)
-    power = spectrum.real ** 2 + spectrum.imag ** 2
-    psd = power.sum(axis=1) * (2.0 / (frame_rate * np.sum(window ** 2)) / n_seg)
-    return _band_average(psd, average, np.full(block.shape[0], _welch_dof(n_seg, nperseg)))
+    spectrum = np.fft.rfft(segments * _hann(nperseg), axis=-1)[..., keep]
+    return spectrum.real ** 2 + spectrum.imag ** 2
+
+
+def _density_scale(frame_rate: float, nperseg: int) -> float:
+    """One-sided density, as scipy.signal.welch: 2 |X|^2 / (fs * sum(window^2)) away from DC and Nyquist."""
+    return 2.0 / (frame_rate * np.sum(_hann(nperseg) ** 2))
 
 
 def _noise_with_gaps(row: np.ndarray, frame_rate: float, band, average: str, roi: str) -> float:
