@@ -177,6 +177,9 @@ def test_boolean_stacks_round_trip_and_may_overlap(tmp_path, suffix):
     np.testing.assert_array_equal(read_masks(write_masks(tmp_path / f"m{suffix}", masks)), masks)
     with pytest.raises(ValueError, match="ROIs 0 and 1 share pixel"):
         masks_to_labels(masks)
+    with pytest.raises(ValueError, match="ROIs 0 and 1 share pixel"):
+        write_masks(tmp_path / f"labels{suffix}", masks, as_labels=True)
+    assert not (tmp_path / f"labels{suffix}").exists()
 
 
 def test_label_round_trip_through_a_file(tmp_path):

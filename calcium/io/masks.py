@@ -80,7 +80,11 @@ def masks_to_labels(masks) -> np.ndarray:
         If ROIs overlap (a label image holds one ROI per pixel); the message
         names two overlapping ROIs.
     """
-    stack = check_masks(masks)
+    return _stack_to_labels(check_masks(masks))
+
+
+def _stack_to_labels(stack: np.ndarray) -> np.ndarray:
+    """:func:`masks_to_labels` of a stack that :func:`check_masks` has already passed."""
     counts = stack.sum(axis=0)
     if counts.max() > 1:
         pixel = np.unravel_index(int(np.argmax(counts)), counts.shape)
@@ -177,7 +181,7 @@ def write_masks(path, masks, *, as_labels: bool = False, inputs=()) -> Path:
     path = Path(path)
     suffix = _output_suffix(path, MASK_SUFFIXES)
     stack = check_masks(masks)
-    data = masks_to_labels(stack) if as_labels else stack
+    data = _stack_to_labels(stack) if as_labels else stack
     if suffix == ".npy":
         return _save_npy(path, data, inputs=inputs)
     with atomic_output(path, inputs=inputs) as tmp:
