@@ -422,6 +422,33 @@ def _store_top(n, tst, L, v, p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, p
     return e1, e2
 
 
+@njit(cache=True, inline="always")
+def _merge_down(n, tst, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pp, pq):
+    """The top pool merged into pool n - 1, which becomes the top: its sums, start, start values
+    (p, q) = (c_{t0-1}, c_{t0-2}) and the new pool count."""
+    j = n - 1
+    tA, tB, tC, tD, tE = _merge_into(j, tst - pstart[j], g2, h, tA, tB, tC, tD, tE, pA, pB, pC, pD, pE)
+    return tA, tB, tC, tD, tE, pstart[j], pp[j], (pq[j - 1] if j >= 1 else 0.0), j
+
+
+@njit(cache=True, inline="always")
+def _top_value(n, v0, tA, tB, tD, p):
+    """The top pool's value: v0 for pool 0 (pinned or free), else the 1-D least squares (D - B p) / A."""
+    return v0 if n == 0 else (tD - tB * p) / tA
+
+
+@njit(cache=True, inline="always")
+def _close_pass(T, g1, g2, h, n, tst, v, p, pstart, pv, pp, c, s):
+    """End of a pool pass: the top pool stored as pool n, the pools expanded into c and s; returns
+    the number of pools."""
+    pstart[n] = tst
+    pv[n] = v
+    pp[n] = p
+    n += 1
+    _fill(T, g1, g2, h, pstart, n, pv, pp, c, s)
+    return n
+
+
 @njit(cache=True)
 def _pass_ar2_unit(y, g1, g2, h, lam, b, c, s, pstart, pv, pp, pA, pB, pC, pD, pE, pe, pq):
     """_pass_ar2 for unit weights and thr = 0 (the common case), with the pass's constants hoisted.
@@ -450,8 +477,7 @@ def _pass_ar2_unit(y, g1, g2, h, lam, b, c, s, pstart, pv, pp, pA, pB, pC, pD, p
         m = (y[t] - bl) if t < T - 2 else (y[t] - b) - lam * _frame_penalty(t, T, g1, g2)
         if m * pred_d >= pred_n:  # the frame opens a pool
             L = t - tst
-            v = v0 if n == 0 else (tD - tB * p) / tA
-            e1, e2 = _store_top(n, tst, L, v, p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
+            e1, e2 = _store_top(n, tst, L, _top_value(n, v0, tA, tB, tD, p), p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
             n += 1
             p = e1
             pg = e1 * g2
@@ -475,14 +501,10 @@ def _pass_ar2_unit(y, g1, g2, h, lam, b, c, s, pstart, pv, pp, pA, pB, pC, pD, p
         tD += m * a1
         tE += m * a2
         while n > 0 and (tD - tB * p) - tA * kq < 0.0:
-            j = n - 1
-            tA, tB, tC, tD, tE = _merge_into(j, tst - pstart[j], g2, h, tA, tB, tC, tD, tE, pA, pB, pC, pD, pE)
-            tst = pstart[j]
-            p = pp[j]
+            tA, tB, tC, tD, tE, tst, p, q, n = _merge_down(n, tst, g2, h, tA, tB, tC, tD, tE,
+                                                            pstart, pA, pB, pC, pD, pE, pp, pq)
             pg = p * g2
-            q = pq[j - 1] if j >= 1 else 0.0
             kq = g1 * p + g2 * q
-            n -= 1
         L = t + 1 - tst
         if n == 0:
             pinned0 = not (tA > 0.0 and tD > 0.0)
@@ -492,12 +514,7 @@ def _pass_ar2_unit(y, g1, g2, h, lam, b, c, s, pstart, pv, pp, pA, pB, pC, pD, p
         else:
             pred_n = (tD - tB * p) * h[L] + tA * pg * h[L - 1]
             pred_d = tA
-    pstart[n] = tst
-    pv[n] = v0 if n == 0 else (tD - tB * p) / tA
-    pp[n] = p
-    n += 1
-    _fill(T, g1, g2, h, pstart, n, pv, pp, c, s)
-    return n, pinned0
+    return _close_pass(T, g1, g2, h, n, tst, _top_value(n, v0, tA, tB, tD, p), p, pstart, pv, pp, c, s), pinned0
 
 
 @njit(cache=True)
@@ -537,8 +554,7 @@ def _pass_ar2(y, w, unit, g1, g2, h, lam, b, thr, c, s, pstart, pv, pp, pA, pB, 
         if wt > 0.0 and m * pred_d >= wt * (pred_n + thr * pred_d):
             # the frame opens a pool; the top is stored with its value and end values (c_{t-1}, c_{t-2})
             L = t - tst
-            v = v0 if n == 0 else (tD - tB * p) / tA
-            e1, e2 = _store_top(n, tst, L, v, p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
+            e1, e2 = _store_top(n, tst, L, _top_value(n, v0, tA, tB, tD, p), p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
             n += 1
             p = e1
             q = e2
@@ -562,12 +578,8 @@ def _pass_ar2(y, w, unit, g1, g2, h, lam, b, thr, c, s, pstart, pv, pp, pA, pB, 
         tE += m * a2
         while n > 0 and not (tA > 0.0 and (tD - tB * p) - tA * (g1 * p + g2 * q + thr) >= 0.0):
             # the top's spike would be below thr: merge it into pool j
-            j = n - 1
-            tA, tB, tC, tD, tE = _merge_into(j, tst - pstart[j], g2, h, tA, tB, tC, tD, tE, pA, pB, pC, pD, pE)
-            tst = pstart[j]
-            p = pp[j]
-            q = pq[j - 1] if j >= 1 else 0.0
-            n -= 1
+            tA, tB, tC, tD, tE, tst, p, q, n = _merge_down(n, tst, g2, h, tA, tB, tC, tD, tE,
+                                                            pstart, pA, pB, pC, pD, pE, pp, pq)
         L = t + 1 - tst
         if n == 0:
             pinned0 = not (tA > 0.0 and tD > 0.0 and tD >= thr * tA)
@@ -577,12 +589,7 @@ def _pass_ar2(y, w, unit, g1, g2, h, lam, b, thr, c, s, pstart, pv, pp, pA, pB, 
         else:
             pred_n = (tD - tB * p) * h[L] + tA * p * g2 * h[L - 1]
             pred_d = tA
-    pstart[n] = tst
-    pv[n] = v0 if n == 0 else (tD - tB * p) / tA
-    pp[n] = p
-    n += 1
-    _fill(T, g1, g2, h, pstart, n, pv, pp, c, s)
-    return n, pinned0
+    return _close_pass(T, g1, g2, h, n, tst, _top_value(n, v0, tA, tB, tD, p), p, pstart, pv, pp, c, s), pinned0
 
 
 # Rows of the per-pool sums array (see _pool_sums).
