@@ -163,3 +163,58 @@ def test_dff_has_the_input_shape_and_nan_exactly_at_missing_frames(rois, frames,
     assert np.isfinite(result.f0).all()
     finite = raw[~holes]
     assert (result.f0 >= finite.min() - 1e-9).all() and (result.f0 <= finite.max() + 1e-9).all()
+
+
+# ---------------------------------------------------------------------------
+# compiled kernels against numpy (order statistics by np.sort, interpolation by np.interp)
+# ---------------------------------------------------------------------------
+@settings(max_examples=150, deadline=None)
+@given(k=st.integers(1, 60), n_windows=st.integers(1, 25), step=st.integers(1, 60), rank_frac=st.floats(0, 1),
+       seed=st.integers(0, 2**31), ties=st.booleans(), slope=st.floats(-5, 5))
+def test_window_order_statistics_equal_those_of_a_full_sort(k, n_windows, step, rank_frac, seed, ties, slope):
+    # Reference: numpy.sort of every window (ranks rank - 1 and rank); trends and ties exercise the pivot
+    # and the buffer paths.
+    from calcium.signal.baseline import _BUFFER_RANKS, _low_order_pair
+
+    rng = np.random.default_rng(seed)
+    step = min(step, k)
+    starts = np.arange(n_windows) * step
+    x = rng.normal(size=(2, starts[-1] + k)) + np.linspace(0.0, slope, starts[-1] + k)
+    if ties:
+        x = np.round(x, 1)
+    rank = min(int(rank_frac * k), k - 1, _BUFFER_RANKS - 1)
+    lower, upper = np.empty((2, n_windows)), np.empty((2, n_windows))
+    _low_order_pair(x, starts, k, rank, lower, upper)
+    ordered = np.sort(x[:, starts[:, None] + np.arange(k)], axis=-1)
+    np.testing.assert_array_equal(upper, ordered[..., rank])
+    np.testing.assert_array_equal(lower, ordered[..., max(rank - 1, 0)])
+
+
+@settings(max_examples=100, deadline=None)
+@given(n_knots=st.integers(1, 30), seed=st.integers(0, 2**31), hits=st.booleans())
+def test_compiled_interpolation_is_identical_to_numpy_interp(n_knots, seed, hits):
+    # Reference: numpy.interp, bit for bit (points before, between, on and after the knots).
+    from calcium.signal.baseline import _interp_rows
+
+    rng = np.random.default_rng(seed)
+    knots_at = np.cumsum(rng.uniform(0.1, 30.0, n_knots)) - 5.0
+    values = rng.normal(100.0, 20.0, (3, n_knots))
+    where = np.sort(np.concatenate([rng.uniform(knots_at[0] - 10.0, knots_at[-1] + 10.0, 200),
+                                    knots_at if hits else [], [np.nan]]))
+    out = np.empty((3, where.size))
+    _interp_rows(values, knots_at, where, out)
+    np.testing.assert_array_equal(out, np.array([np.interp(where, knots_at, v) for v in values]))
+
+
+def test_high_percentiles_take_the_partition_path_with_the_same_definition():
+    # Reference: numpy.percentile (linear interpolation) of each knot's window of smoothed samples; the
+    # 8th percentile goes through the compiled order statistics, the 90th through np.partition.
+    from calcium.signal.baseline import _plan_grid, _smoothed_samples, _window_percentile
+
+    raw, _ = _recording(4, n=6000, rois=2)
+    grid = _plan_grid(raw.shape[1], FRAME_RATE, 60.0, 1.0)
+    samples = _smoothed_samples(raw, None, grid)
+    windows = samples[:, grid.starts[:, None] + np.arange(grid.window)]
+    for percentile in (8.0, 90.0):
+        np.testing.assert_allclose(_window_percentile(samples, grid, percentile),
+                                   np.percentile(windows, percentile, axis=-1), rtol=1e-13)

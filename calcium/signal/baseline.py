@@ -13,6 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 
 from .._checks import (
     MissingFrames,
@@ -32,6 +33,11 @@ __all__ = ["DeltaF", "delta_f_over_f"]
 _KNOTS_PER_WINDOW = 20
 # Passes of the lag correction of the lower envelope used for detrending.
 _ENVELOPE_PASSES = 3
+# The compiled order statistic keeps the smallest (rank + 1) samples of each window in a sorted buffer;
+# beyond this rank (high percentiles) np.partition is used instead.
+_BUFFER_RANKS = 32
+# Ranks kept beyond the wanted one, so that the next window's pivot rarely falls short.
+_PIVOT_MARGIN = 4
 
 
 @dataclass(frozen=True, eq=False)
@@ -138,17 +144,26 @@ def _smoothed_samples(rows: np.ndarray, finite: np.ndarray | None, grid: _Grid) 
 def _window_percentile(samples: np.ndarray, grid: _Grid, percentile: float) -> np.ndarray:
     """The ``percentile`` of the smoothed samples in each knot's window, skipping NaN."""
     k = grid.window
-    windows = samples[:, grid.starts[:, None] + np.arange(k)]  # (rows, knots, k)
     q = percentile / 100.0 * (k - 1)
     lo = int(np.floor(q))
     hi = min(lo + 1, k - 1)
+    complete = not np.isnan(samples).any()
+    if complete and hi < _BUFFER_RANKS:
+        # the two order statistics of every window in one compiled pass, without copying the windows
+        lower = np.empty((samples.shape[0], grid.starts.size))
+        upper = np.empty_like(lower)
+        _low_order_pair(samples, grid.starts, k, hi, lower, upper)
+        if hi == lo:
+            lower = upper
+        return lower + (q - lo) * (upper - lower)
+    windows = samples[:, grid.starts[:, None] + np.arange(k)]  # (rows, knots, k)
     # One selection at `hi`, then the largest value below it, is about twice as fast as
     # selecting both order statistics. np.partition places NaN after every number.
     part = np.partition(windows, hi, axis=-1)
     upper = part[..., hi]
     lower = part[..., :hi].max(axis=-1) if hi > lo else upper
     knots = lower + (q - lo) * (upper - lower)
-    if not np.isnan(samples).any():
+    if complete:
         return knots
 
     holes = np.isnan(windows)
@@ -175,9 +190,128 @@ def _interpolate_knots(knots: np.ndarray, knots_at: np.ndarray, where: np.ndarra
     """Piecewise-linear interpolation of knot values (rows, knots), constant beyond the end knots."""
     if out is None:
         out = np.empty((knots.shape[0], where.size))
-    for row, values in zip(out, knots):
-        row[:] = np.interp(where, knots_at, values)
+    _interp_rows(knots, knots_at, where, out)
     return out
+
+
+@njit(cache=True)
+def _low_order_pair(samples, starts, k, rank, lower, upper):  # pragma: no cover - compiled
+    """Order statistics ``rank - 1`` and ``rank`` (0-based) of the window samples[r, s:s + k] for every
+    row r and window start s, into lower[r, j] and upper[r, j] (lower = upper when rank is 0).
+
+    The windows must be free of NaN. Neighbouring windows overlap almost entirely, so the value a few
+    ranks above ``rank`` in one window is a pivot for the next: the values at or below it are
+    collected in one branch-free pass and sorted (a handful). When fewer than rank + 1 values are
+    collected (or far too many), the window is read again keeping its smallest values in a sorted
+    buffer. Either way the results are samples of the window, so they equal what a full sort (or
+    np.partition) of the window gives.
+    """
+    m = rank + 1
+    m_keep = min(m + _PIVOT_MARGIN, k)  # ranks kept: the largest of them is the next window's pivot
+    keep = np.empty(k)
+    for r in range(samples.shape[0]):
+        row = samples[r]
+        pivot = np.inf
+        have_pivot = False
+        for j in range(starts.shape[0]):
+            s0 = starts[j]
+            n = 0
+            if have_pivot:
+                for i in range(s0, s0 + k):
+                    x = row[i]
+                    keep[n] = x
+                    if x <= pivot:
+                        n += 1
+            if have_pivot and m <= n <= 4 * m_keep:
+                for a in range(1, n):  # insertion sort of the few collected values
+                    x = keep[a]
+                    pos = a
+                    while pos > 0 and keep[pos - 1] > x:
+                        keep[pos] = keep[pos - 1]
+                        pos -= 1
+                    keep[pos] = x
+            else:
+                # a falling window (bleaching) is read from its end: then few values enter the buffer
+                forward = not row[s0 + k - 1] < row[s0]
+                n = 0
+                for step in range(k):
+                    x = row[s0 + step] if forward else row[s0 + k - 1 - step]
+                    if n < m_keep:
+                        pos = n
+                        n += 1
+                    elif x < keep[m_keep - 1]:
+                        pos = m_keep - 1
+                    else:
+                        continue
+                    while pos > 0 and keep[pos - 1] > x:
+                        keep[pos] = keep[pos - 1]
+                        pos -= 1
+                    keep[pos] = x
+            upper[r, j] = keep[rank]
+            lower[r, j] = keep[rank - 1] if rank > 0 else keep[rank]
+            pivot = keep[min(n, m_keep) - 1]
+            have_pivot = True
+
+
+@njit(cache=True, inline="always")
+def _interp_row(values, knots_at, where, out, slopes):  # pragma: no cover - compiled
+    """np.interp(where, knots_at, values) into out, for increasing ``where`` and strictly increasing
+    ``knots_at``: the same arithmetic as numpy's own loop (slope (f1 - f0) / (x1 - x0), then
+    slope (x - x0) + f0; constant beyond the end knots; a knot hit exactly takes its value), so the
+    results are identical. ``slopes`` is scratch space of len(knots_at) - 1 or more."""
+    n_knots = knots_at.shape[0]
+    first = values[0]
+    last = values[n_knots - 1]
+    if n_knots == 1:  # (numpy: one knot's value everywhere, NaN points included)
+        out[:] = first
+        return
+    for j in range(n_knots - 1):
+        slopes[j] = (values[j + 1] - values[j]) / (knots_at[j + 1] - knots_at[j])
+    j = 0
+    for i in range(where.shape[0]):
+        x = where[i]
+        if x != x:
+            out[i] = x
+        elif x < knots_at[0]:
+            out[i] = first
+        elif x > knots_at[n_knots - 1]:
+            out[i] = last
+        else:
+            while j + 1 < n_knots and knots_at[j + 1] <= x:
+                j += 1
+            if j == n_knots - 1 or knots_at[j] == x:
+                out[i] = values[j]
+            else:
+                slope = slopes[j]
+                value = slope * (x - knots_at[j]) + values[j]
+                if value != value:  # (numpy's fallback from the other end of the interval)
+                    value = slope * (x - knots_at[j + 1]) + values[j + 1]
+                    if value != value and values[j] == values[j + 1]:
+                        value = values[j]
+                out[i] = value
+
+
+@njit(cache=True)
+def _interp_rows(knots, knots_at, where, out):  # pragma: no cover - compiled
+    """:func:`_interp_row` of every row of ``knots`` into the rows of ``out``."""
+    slopes = np.empty(max(knots_at.shape[0] - 1, 0))
+    for r in range(knots.shape[0]):
+        _interp_row(knots[r], knots_at, where, out[r], slopes)
+
+
+@njit(cache=True)
+def _baseline_and_dff(rows, knots, knots_at, where, f0, dff):  # pragma: no cover - compiled
+    """F0 of every row (as :func:`_interp_rows`) and ΔF/F = (F - F0) / F0 beside it, NaN where F is
+    missing (NaN or inf), in one pass."""
+    slopes = np.empty(max(knots_at.shape[0] - 1, 0))
+    for r in range(rows.shape[0]):
+        base = f0[r]
+        _interp_row(knots[r], knots_at, where, base, slopes)
+        raw = rows[r]
+        rel = dff[r]
+        for t in range(raw.shape[0]):
+            x = raw[t]
+            rel[t] = (x - base[t]) / base[t] if np.isfinite(x) else np.nan
 
 
 def _percentile_knots(rows: np.ndarray, finite: np.ndarray | None, grid: _Grid,
@@ -338,12 +472,7 @@ def delta_f_over_f(raw, frame_rate, *, window_s=60.0, percentile=8.0, smooth_s=1
         if floor is not None:
             np.maximum(knots, floor, out=knots)
         lowest[part] = knots.min(axis=1)
-        base = _interpolate_knots(knots, grid.knot_frames, frames, out=f0[part])
-        out = dff[part]
-        np.subtract(rows[part], base, out=out)
-        out /= base
-        if finite is not None:
-            out[hole] = np.nan
+        _baseline_and_dff(rows[part], knots, grid.knot_frames, frames, f0[part], dff[part])
 
     if floor is None and not (lowest > 0).all():
         bad = np.flatnonzero(~(lowest > 0))
