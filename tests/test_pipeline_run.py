@@ -154,6 +154,27 @@ def test_unusable_rois_are_flagged_with_the_reason_and_the_rest_completes(sessio
     assert session["summary"].n_failed == 2
 
 
+
+def test_missing_frames_and_saturation_are_counted_per_roi():
+    # Reference: numpy (isfinite counts, max over the finite frames and frames equal to it); a trace held at
+    # its maximum for several frames is the usual sign of a saturated detector (common practice).
+    rng = np.random.default_rng(8)
+    raw = 100.0 + rng.normal(0.0, 1.0, (4, 600))
+    raw[0, 100:108] = 120.0                      # clipped: 8 frames at the maximum
+    raw[1, :40] = np.nan
+    raw[1, 50] = np.inf                          # missing too; not a maximum
+    raw[1, 200:202] = 110.0                      # 2 frames at the maximum: below the flag's 3
+    raw[2, :] = np.nan                           # nothing at all
+    out = stages._process_rows(raw, 0, stages.StageParams(frame_rate=30.0))
+    finite = np.isfinite(raw)
+    np.testing.assert_array_equal(out["missing_frames"], raw.shape[1] - finite.sum(axis=1))
+    expected = [int(np.count_nonzero(r == np.max(r[f]))) if f.any() else 0 for r, f in zip(raw, finite)]
+    np.testing.assert_array_equal(out["saturated_frames"], expected)
+    assert expected[:3] == [8, 2, 0]
+    flagged = (out["quality_flags"] & stages.FLAG_SATURATION) != 0
+    np.testing.assert_array_equal(flagged, [True, False, False, expected[3] >= 3])
+    assert "raw maximum 120 reached in 8 frames" in out["flags"][0]
+
 def test_spike_table_lists_the_counts_of_the_results_file(session, tmp_path):
     # Reference: the spike-table reader and writer of calcium.io.
     data, _ = read_results(session["summary"].results_path)

@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+from numba import njit
 
 from .._checks import CalciumInputError
 from .store import DatasetSpec
@@ -339,7 +340,8 @@ def _dff_rows(raw: np.ndarray, params: StageParams, reasons: list, flags: np.nda
     from ..signal import delta_f_over_f
 
     try:
-        result = delta_f_over_f(raw[rows], params.frame_rate, **params.dff)
+        # (rows are increasing: all of them means the whole block, which needs no copy)
+        result = delta_f_over_f(raw if rows.size == raw.shape[0] else raw[rows], params.frame_rate, **params.dff)
         return rows, result.dff, result.f0
     except ValueError:
         pass
@@ -386,8 +388,8 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
     flags = out["quality_flags"]
     reasons: list[list[str]] = [[] for _ in range(n)]
 
-    finite = np.isfinite(raw)
-    n_missing = n_frames - finite.sum(axis=1)
+    n_finite, top, at_top = _scan_rows(raw)
+    n_missing = n_frames - n_finite
     out["missing_frames"][:] = n_missing
     too_many = n_missing > params.max_missing_fraction * n_frames
     for i in np.flatnonzero(too_many):
@@ -397,7 +399,7 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
             reasons[i].append("every frame is missing")
         else:
             reasons[i].append(f"{n_missing[i]} of {n_frames} frames missing ({n_missing[i] / n_frames:.0%})")
-    _saturation(raw, finite, params, out, flags, reasons)
+    _saturation(top, at_top, params, out, flags, reasons)
 
     usable = np.flatnonzero(n_missing < n_frames)
     if with_dff:
@@ -478,18 +480,43 @@ def spike_table_text(first_roi: int, counts: np.ndarray, offsets_s: np.ndarray, 
     return fixed_lines(rows + int(first_roi), units, n, SPIKE_TIME_DECIMALS)
 
 
-def _saturation(raw, finite, params: StageParams, out: dict, flags, reasons) -> None:
+def _saturation(top: np.ndarray, at_top: np.ndarray, params: StageParams, out: dict, flags, reasons) -> None:
+    """Frames at each row's maximum (from :func:`_scan_rows`); a ROI with too many is flagged."""
     if params.saturation_frames <= 0:
         return
-    for i in range(raw.shape[0]):
-        if not finite[i].any():
-            continue
-        top = np.max(raw[i][finite[i]])
-        count = int(np.count_nonzero(raw[i] == top))
-        out["saturated_frames"][i] = count
-        if count >= params.saturation_frames:
-            flags[i] |= FLAG_SATURATION
-            reasons[i].append(f"raw maximum {top:g} reached in {count} frames (saturation?)")
+    out["saturated_frames"][:] = at_top
+    for i in np.flatnonzero(at_top >= params.saturation_frames):
+        flags[i] |= FLAG_SATURATION
+        reasons[i].append(f"raw maximum {top[i]:g} reached in {at_top[i]} frames (saturation?)")
+
+
+@njit(cache=True)
+def _scan_rows(raw):  # pragma: no cover - compiled
+    """One pass over each row: its finite frames, its largest finite value (NaN if none) and the frames
+    equal to that value (0 if none)."""
+    n_rows, n_frames = raw.shape
+    n_finite = np.zeros(n_rows, dtype=np.int64)
+    top = np.full(n_rows, np.nan)
+    at_top = np.zeros(n_rows, dtype=np.int64)
+    for r in range(n_rows):
+        row = raw[r]
+        count = 0
+        best = -np.inf
+        for t in range(n_frames):
+            x = row[t]
+            if np.isfinite(x):
+                count += 1
+                if x > best:
+                    best = x
+        n_finite[r] = count
+        if count:
+            top[r] = best
+            same = 0
+            for t in range(n_frames):
+                if row[t] == best:
+                    same += 1
+            at_top[r] = same
+    return n_finite, top, at_top
 
 
 def _noise_rows(signal: np.ndarray, params: StageParams, rows: np.ndarray, reasons: list) -> np.ndarray:
