@@ -547,3 +547,43 @@ def test_infer_file_gives_the_inference_of_each_dff_row_and_resumes(session, tmp
         infer_file(source, tmp_path / "spikes.h5", indicator="GCaMP6f", backend="serial", chunk_rois=1,
                    progress=False)
 
+
+
+def test_reused_chunk_arrays_leave_no_stale_values_in_failed_rois():
+    # The (rois, frames) arrays of a written chunk are reused for the next one: a ROI without results must
+    # still read as none (NaN, or 0 spikes; docs/hdf5-layout.md), whatever the array held before.
+    rng = np.random.default_rng(3)
+    raw = 100.0 + rng.normal(0.0, 1.0, (3, 900))
+    raw[1] = np.nan          # every frame missing: no ΔF/F, no inference
+    raw[2, :] = -5.0         # F0 <= 0: no ΔF/F
+    params = stages.StageParams(frame_rate=30.0)
+    for name in ("denoised", "activity", "spike_counts", "spike_time_offset_s", "dff"):
+        stages._SPARE_ARRAYS[name] = np.full((3, 900), 7, dtype=stages._FRAME_RESULTS[name][0])
+    try:
+        out = stages._process_rows(raw, 0, params)
+    finally:
+        stages.release_spare_arrays()
+    for roi in (1, 2):
+        assert np.isnan(out["dff"][roi]).all() and np.isnan(out["denoised"][roi]).all()
+        assert np.isnan(out["activity"][roi]).all()
+        assert not out["spike_counts"][roi].any() and not out["spike_time_offset_s"][roi].any()
+    assert np.isfinite(out["dff"][0]).all() and np.isfinite(out["denoised"][0]).all()
+    assert not np.any(out["denoised"][0] == 7) and not np.any(out["spike_time_offset_s"][0] == 7)
+
+
+def test_compiled_spike_time_offsets_equal_the_numpy_ones():
+    # Reference: stages._time_offsets (numpy: round to the frame, bincount of the offsets, mean per frame), bit
+    # for bit after the float32 store; several spikes in a frame, spikes before the first and after the last
+    # frame (clipped), halves of a frame (rounded to even) and unordered times (left to numpy).
+    rng = np.random.default_rng(12)
+    rate, n_frames = 30.0, 500
+    for trial in range(50):
+        times = np.sort(np.concatenate([rng.uniform(-0.05, n_frames / rate + 0.05, rng.integers(0, 80)),
+                                        np.round(rng.uniform(0, n_frames, 5)) / rate + 0.5 / rate,
+                                        np.repeat(rng.uniform(0, n_frames / rate, 3), 2)]))
+        row = np.full(n_frames, 9.0, dtype=np.float32)
+        assert stages._offsets_into(times, rate, row)
+        np.testing.assert_array_equal(row, stages._time_offsets(times, n_frames, rate).astype(np.float32))
+    row = np.full(n_frames, 9.0, dtype=np.float32)
+    assert not stages._offsets_into(np.array([2.0, 1.0]), rate, row) and (row == 9.0).all()
+    assert not stages._offsets_into(np.array([1.0, np.nan]), rate, row)

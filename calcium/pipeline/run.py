@@ -555,6 +555,7 @@ def _run_chunks(source: stages.TraceSource, params, store: ResultStore, todo, *,
                     computed += rows.stop - rows.start
             workers = executor.workers
     finally:
+        stages.release_spare_arrays()  # (kept between chunks computed in this process: the serial backend)
         if bar is not None:
             bar.close()
     return backend, workers, computed

@@ -308,17 +308,40 @@ def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: boo
     return specs
 
 
+# (rois, frames) results and the value of a ROI that has none (ΔF/F failed, or the inference)
+_FRAME_RESULTS = {"denoised": (np.float32, np.nan), "activity": (np.float32, np.nan),
+                  "spike_counts": (np.uint16, 0), "spike_time_offset_s": (np.float32, 0.0),
+                  "dff": (np.float32, np.nan), "f0": (np.float32, np.nan), "dff_filtered": (np.float32, np.nan)}
+_INFERENCE_RESULTS = ("denoised", "activity", "spike_counts", "spike_time_offset_s")
+# The (rois, frames) arrays of the last chunk this process wrote to the results file, for the next chunk:
+# fresh arrays of that size would each be new memory, and on a virtual machine every page of it costs a fault.
+_SPARE_ARRAYS: dict = {}
+
+
+def _frame_array(name: str, n: int, n_frames: int) -> np.ndarray:
+    """An uninitialised (n, n_frames) array for result ``name`` (the spare one when it fits)."""
+    dtype = _FRAME_RESULTS[name][0]
+    spare = _SPARE_ARRAYS.pop(name, None)
+    if spare is not None and spare.shape == (n, n_frames) and spare.dtype == dtype:
+        return spare
+    return np.empty((n, n_frames), dtype=dtype)
+
+
+def release_spare_arrays() -> None:
+    """Drop the arrays kept for the next chunk (at the end of a run in this process)."""
+    _SPARE_ARRAYS.clear()
+
+
 def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool, with_f0: bool) -> dict:
-    big = lambda: np.full((n, n_frames), np.nan, dtype=np.float32)  # noqa: E731
-    out = {"denoised": big(), "activity": big(),
-           "spike_counts": np.zeros((n, n_frames), dtype=np.uint16),
-           "spike_time_offset_s": np.zeros((n, n_frames), dtype=np.float32)}
+    """The results of a chunk before its ROIs are processed; the (rois, frames) arrays are not initialised:
+    :func:`_fill_unset_rows` gives the rows no stage wrote their value for 'none'."""
+    out = {name: _frame_array(name, n, n_frames) for name in _INFERENCE_RESULTS}
     if with_dff:
-        out.update(dff=big(), f0_min=np.full(n, np.nan))
+        out.update(dff=_frame_array("dff", n, n_frames), f0_min=np.full(n, np.nan))
         if with_f0:
-            out["f0"] = big()
+            out["f0"] = _frame_array("f0", n, n_frames)
     if filtered:
-        out["dff_filtered"] = big()
+        out["dff_filtered"] = _frame_array("dff_filtered", n, n_frames)
     for name in ("baseline", "noise_sd", "snr", "penalty", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude"):
         out[name] = np.full(n, np.nan)
     for name in ("n_spikes", "missing_frames", "saturated_frames"):
@@ -326,6 +349,16 @@ def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool, with_f
     out["converged"] = np.zeros(n, dtype=np.uint8)
     out["quality_flags"] = np.zeros(n, dtype=np.uint16)
     return out
+
+
+def _fill_unset_rows(out: dict, with_dff: np.ndarray, inferred: np.ndarray) -> None:
+    """Rows of the (rois, frames) results that no stage wrote get the value of 'none' (NaN, or 0 spikes):
+    ``with_dff`` marks the ROIs with ΔF/F (and filtered ΔF/F), ``inferred`` those with inference results."""
+    for name, (_, none) in _FRAME_RESULTS.items():
+        if name in out:
+            unset = ~(inferred if name in _INFERENCE_RESULTS else with_dff)
+            if unset.any():
+                out[name][unset] = none
 
 
 def _first_line(exc: BaseException) -> str:
@@ -375,6 +408,8 @@ def process_chunk(task: ChunkTask) -> dict:
     if task.writer is not None:
         task.writer.write(task.start, out)
         for name in task.writer.names:
+            if name in _FRAME_RESULTS:
+                _SPARE_ARRAYS[name] = out[name]  # written: the next chunk may fill it again
             del out[name]
     return out
 
@@ -387,6 +422,7 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
     out = _empty_results(n, n_frames, filtered, with_dff, with_dff and params.keep_f0)
     flags = out["quality_flags"]
     reasons: list[list[str]] = [[] for _ in range(n)]
+    inferred = np.zeros(n, dtype=bool)
 
     n_finite, top, at_top = _scan_rows(raw)
     n_missing = n_frames - n_finite
@@ -425,7 +461,10 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
             out["dff_filtered"][rows] = signal
         noise = _noise_rows(signal, params, rows, reasons)
         for k, i in enumerate(rows):
-            _infer_roi(signal[k], noise[k], i, params, out, flags, reasons)
+            inferred[i] = _infer_roi(signal[k], noise[k], i, params, out, flags, reasons)
+    with_dff_rows = np.zeros(n, dtype=bool)
+    with_dff_rows[rows] = True
+    _fill_unset_rows(out, with_dff_rows, inferred)
 
     out["flags"] = np.array(["; ".join(r) for r in reasons], dtype=object)
     out[SPIKE_TABLE_KEY] = spike_table_text(first_roi, out["spike_counts"], out["spike_time_offset_s"],
@@ -537,7 +576,7 @@ def _noise_rows(signal: np.ndarray, params: StageParams, rows: np.ndarray, reaso
 
 
 def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, out: dict, flags,
-               reasons) -> None:
+               reasons) -> bool:
     from ..infer import infer_spikes
 
     try:
@@ -548,13 +587,14 @@ def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, 
     except (ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError) as exc:
         flags[i] |= FLAG_FAILED
         reasons[i].append("inference failed: " + _first_line(exc))
-        return
+        return False
     counts = np.asarray(result.spike_counts, dtype=np.int64)
     out["activity"][i] = result.activity
     out["denoised"][i] = result.denoised
     out["spike_counts"][i] = np.clip(counts, 0, np.iinfo(np.uint16).max)
-    out["spike_time_offset_s"][i] = _time_offsets(np.asarray(result.spike_times), counts.size,
-                                                  params.frame_rate)
+    times = np.asarray(result.spike_times, dtype=np.float64)
+    if not _offsets_into(times, float(params.frame_rate), out["spike_time_offset_s"][i]):
+        out["spike_time_offset_s"][i] = _time_offsets(times, counts.size, params.frame_rate)
     out["n_spikes"][i] = int(counts.sum())
     out["baseline"][i] = float(result.baseline)
     noise = float(result.noise_sd)
@@ -577,6 +617,31 @@ def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, 
         flags[i] |= FLAG_LOW_SNR
         reasons[i].append(f"SNR {snr:.2g} below {params.min_snr:g}" if np.isfinite(snr) else
                           "SNR undefined (no signal or no noise estimate)")
+    return True
+
+
+@njit(cache=True)
+def _offsets_into(times, frame_rate, out):  # pragma: no cover - compiled
+    """:func:`_time_offsets` of increasing spike times, written into the row ``out`` in one pass (no
+    per-frame sums: the spikes of a frame are neighbours), with the same operations in the same order.
+    Returns False, writing nothing, when the times are not increasing or not all numbers."""
+    n_frames = out.shape[0]
+    m = times.shape[0]
+    for k in range(m):
+        if times[k] != times[k] or (k > 0 and times[k] < times[k - 1]):
+            return False
+    out[:] = 0.0
+    k = 0
+    while k < m:
+        frame = min(max(np.int64(np.rint(times[k] * frame_rate)), 0), n_frames - 1)
+        total = 0.0
+        number = 0
+        while k < m and min(max(np.int64(np.rint(times[k] * frame_rate)), 0), n_frames - 1) == frame:
+            total += times[k] - frame / frame_rate
+            number += 1
+            k += 1
+        out[frame] = total / number
+    return True
 
 
 def _time_offsets(times: np.ndarray, n_frames: int, frame_rate: float) -> np.ndarray:
