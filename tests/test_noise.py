@@ -182,3 +182,15 @@ def test_the_window_is_scipys_hann_and_the_chi_square_median_is_scipys(n):
     dof = np.array([2.0, 3.7, 18.0, 250.0])
     np.testing.assert_allclose(2.0 * scipy.special.gammaincinv(dof / 2.0, 0.5), scipy.stats.chi2.median(dof),
                                rtol=1e-12)
+
+
+def test_many_rows_give_exactly_the_values_of_one_row_at_a_time():
+    # A ROI's noise must not depend on the other ROIs of the call (the pipeline estimates a chunk at once and
+    # promises results independent of the chunking): bit for bit, with and without missing frames.
+    rng = np.random.default_rng(21)
+    for n in (300, 5000, 36000):
+        x = rng.normal(size=(5, n)) + np.cumsum(rng.normal(size=(5, n)), axis=1) * 0.01
+        x[1, rng.integers(0, n, 4)] = np.nan
+        for band in (None, (0.0, 5.0)):
+            together = estimate_noise(x, 30.0, band_hz=band)
+            np.testing.assert_array_equal(together, [estimate_noise(row, 30.0, band_hz=band) for row in x])

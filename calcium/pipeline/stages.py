@@ -561,11 +561,15 @@ def _scan_rows(raw):  # pragma: no cover - compiled
 def _noise_rows(signal: np.ndarray, params: StageParams, rows: np.ndarray, reasons: list) -> np.ndarray:
     """Noise s.d. of each row (NaN where it cannot be estimated; the inference then estimates its own).
 
-    One call per ROI: a ROI's result must not depend on which other ROIs share its chunk (the batched
-    spectrum can differ in the last bit).
+    One call for the chunk (estimate_noise works row by row: a ROI's value does not depend on the other
+    ROIs of its chunk); if it fails, one call per ROI, so that only the ROIs that fail lose their value.
     """
     from ..signal import estimate_noise
 
+    try:
+        return np.asarray(estimate_noise(signal, params.frame_rate, **params.noise), dtype=np.float64)
+    except ValueError:
+        pass
     noise = np.full(len(rows), np.nan)
     for k, i in enumerate(rows):
         try:

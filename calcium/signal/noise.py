@@ -7,6 +7,7 @@ level of that flat part gives the noise standard deviation.
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 import scipy  # scipy loads its submodules on first use: the per-ROI path needs only special
@@ -104,15 +105,15 @@ def _remove_segment_mean(keep: np.ndarray) -> bool:
 
 
 def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, nperseg: int,
-                        keep: np.ndarray, average: str) -> np.ndarray:
+                        keep: np.ndarray, average: str, scratch: dict | None = None) -> np.ndarray:
     """Band level per row from the Welch segments that hold no missing sample (NaN where none does).
 
     The segments are those of :func:`scipy.signal.welch` (Hann window, half
     overlap, same scaling); a segment touching a missing sample is dropped
-    from the average.
+    from the average. ``scratch`` keeps the large temporaries for the next call (see :func:`_segment_power`).
     """
     if not hole.any():
-        return _welch_level(block, frame_rate, nperseg, keep, average)
+        return _welch_level(block, frame_rate, nperseg, keep, average, scratch)
     n = block.shape[-1]
     step = nperseg - nperseg // 2
     starts = np.arange(_segments(n, nperseg)) * step
@@ -123,7 +124,7 @@ def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, 
     # Only the usable segments are copied and transformed; they hold no missing sample.
     seg_row, seg_index = np.nonzero(usable)
     segments = np.lib.stride_tricks.sliding_window_view(block, nperseg, axis=-1)[seg_row, starts[seg_index]]
-    power = _segment_power(segments, keep, nperseg)                               # (usable segments, bins)
+    power = _segment_power(segments, keep, nperseg, scratch)                      # (usable segments, bins)
     psd = np.zeros((block.shape[0], power.shape[1]))
     has = n_ok > 0
     if has.any():
@@ -136,23 +137,43 @@ def _masked_welch_level(block: np.ndarray, hole: np.ndarray, frame_rate: float, 
     return level
 
 
-def _welch_level(block: np.ndarray, frame_rate: float, nperseg: int, keep: np.ndarray, average: str) -> np.ndarray:
+def _welch_level(block: np.ndarray, frame_rate: float, nperseg: int, keep: np.ndarray, average: str,
+                 scratch: dict | None = None) -> np.ndarray:
     """:func:`_masked_welch_level` of rows without missing samples: every segment is used, and the windowed
     copy is made straight from a strided view of the rows (no copy of the segments first)."""
     step = nperseg - nperseg // 2
     n_seg = _segments(block.shape[-1], nperseg)
     segments = np.lib.stride_tricks.sliding_window_view(block, nperseg, axis=-1)[:, ::step][:, :n_seg]
-    power = _segment_power(segments, keep, nperseg)                               # (rows, segments, bins)
+    power = _segment_power(segments, keep, nperseg, scratch)                      # (rows, segments, bins)
     psd = power.sum(axis=1) * (_density_scale(frame_rate, nperseg) / n_seg)
     return _band_average(psd, average, np.full(block.shape[0], _welch_dof(n_seg, nperseg)))
 
 
-def _segment_power(segments: np.ndarray, keep: np.ndarray, nperseg: int) -> np.ndarray:
-    """|X|^2 at the ``keep`` bins of each Hann-windowed segment (last axis), its mean removed when that matters."""
+def _segment_power(segments: np.ndarray, keep: np.ndarray, nperseg: int, scratch: dict | None = None) -> np.ndarray:
+    """|X|^2 at the ``keep`` bins of each Hann-windowed segment (last axis), its mean removed when that matters.
+
+    The windowed segments and their spectra (the two large temporaries) are written into arrays kept in
+    ``scratch`` from one call to the next: fresh arrays of that size would be new memory at every call, and
+    on a virtual machine the page faults cost more than the transform (3.5x slower, measured).
+    """
     if _remove_segment_mean(keep):
         segments = segments - segments.mean(axis=-1, keepdims=True)
-    spectrum = np.fft.rfft(segments * _hann(nperseg), axis=-1)[..., keep]
+    scratch = {} if scratch is None else scratch
+    windowed = np.multiply(segments, _hann(nperseg), out=_scratch_array(scratch, "windowed", segments.shape,
+                                                                         np.float64))
+    spectrum = np.fft.rfft(windowed, axis=-1, out=_scratch_array(scratch, "spectrum", segments.shape[:-1] +
+                                                                 (nperseg // 2 + 1,), np.complex128))[..., keep]
     return spectrum.real ** 2 + spectrum.imag ** 2
+
+
+def _scratch_array(scratch: dict, name: str, shape: tuple, dtype) -> np.ndarray:
+    """An uninitialised array of ``shape``: the front of the one kept as ``scratch[name]`` when it is large
+    enough (a new, larger one is kept otherwise)."""
+    size = math.prod(shape)
+    kept = scratch.get(name)
+    if kept is None or kept.size < size:
+        kept = scratch[name] = np.empty(size, dtype=dtype)
+    return kept[:size].reshape(shape)
 
 
 def _density_scale(frame_rate: float, nperseg: int) -> float:
@@ -285,17 +306,19 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
     nperseg = min(_SEGMENT, n)
     keep = _band_bins(np.fft.rfftfreq(nperseg, 1.0 / frame_rate), band, frame_rate, nperseg)
     clean = np.flatnonzero(missing.per_roi == 0)
-    # One vectorised Welch over all segments of a block of rows (a per-segment FFT loop, as a 1-D
-    # scipy.signal.welch call makes, costs more than the transform itself for single traces). Blocks of a
-    # few rows: the windowed segments and their spectra then stay in the processor's cache (2.3x faster than
-    # blocks of 2**20 values on 36,000-frame rows, measured).
-    for part in row_chunks(clean.size, 2 * n, elements=1 << 18):
+    # One vectorised Welch over all segments of a row (a per-segment FFT loop, as a 1-D scipy.signal.welch
+    # call makes, costs more than the transform itself). Row by row: a row's estimate is then the same
+    # whichever rows share the call (a transform batched over several rows can differ in the last bit), its
+    # windowed segments and spectra stay in the processor's cache (1.7x faster than blocks of 2**20 values
+    # on 36,000-frame rows, measured), in arrays reused from row to row.
+    scratch: dict = {}
+    for part in row_chunks(clean.size, 2 * n, elements=1):
         idx = clean[part]
-        sd[idx] = _masked_welch_level(rows[idx], holes[idx], frame_rate, nperseg, keep, average)
+        sd[idx] = _masked_welch_level(rows[idx], holes[idx], frame_rate, nperseg, keep, average, scratch)
     gappy = np.flatnonzero(missing.per_roi)
-    for part in row_chunks(gappy.size, 2 * n, elements=1 << 18):
+    for part in row_chunks(gappy.size, 2 * n, elements=1):
         idx = gappy[part]
-        sd[idx] = _masked_welch_level(rows[idx], holes[idx], frame_rate, nperseg, keep, average)
+        sd[idx] = _masked_welch_level(rows[idx], holes[idx], frame_rate, nperseg, keep, average, scratch)
     for i in gappy[np.isnan(sd[gappy])]:
         roi = "the trace" if x.ndim == 1 else f"ROI {i}"
         sd[i] = _noise_with_gaps(rows[i], frame_rate, band, average, roi)
