@@ -477,7 +477,8 @@ def _pass_ar2_unit(y, g1, g2, h, lam, b, c, s, pstart, pv, pp, pA, pB, pC, pD, p
         m = (y[t] - bl) if t < T - 2 else (y[t] - b) - lam * _frame_penalty(t, T, g1, g2)
         if m * pred_d >= pred_n:  # the frame opens a pool
             L = t - tst
-            e1, e2 = _store_top(n, tst, L, _top_value(n, v0, tA, tB, tD, p), p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
+            e1, e2 = _store_top(n, tst, L, _top_value(n, v0, tA, tB, tD, p), p, g2, h, tA, tB, tC, tD, tE,
+                                pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
             n += 1
             p = e1
             pg = e1 * g2
@@ -554,7 +555,8 @@ def _pass_ar2(y, w, unit, g1, g2, h, lam, b, thr, c, s, pstart, pv, pp, pA, pB, 
         if wt > 0.0 and m * pred_d >= wt * (pred_n + thr * pred_d):
             # the frame opens a pool; the top is stored with its value and end values (c_{t-1}, c_{t-2})
             L = t - tst
-            e1, e2 = _store_top(n, tst, L, _top_value(n, v0, tA, tB, tD, p), p, g2, h, tA, tB, tC, tD, tE, pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
+            e1, e2 = _store_top(n, tst, L, _top_value(n, v0, tA, tB, tD, p), p, g2, h, tA, tB, tC, tD, tE,
+                                pstart, pA, pB, pC, pD, pE, pv, pp, pe, pq)
             n += 1
             p = e1
             q = e2
