@@ -624,6 +624,12 @@ def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, 
     return True
 
 
+@njit(cache=True, inline="always")
+def _frame_of(t, frame_rate, n_frames):  # pragma: no cover - compiled
+    """The frame a time falls in, round(t * frame_rate) (halves to even) clipped to the recording."""
+    return min(max(np.int64(np.rint(t * frame_rate)), 0), n_frames - 1)
+
+
 @njit(cache=True)
 def _offsets_into(times, frame_rate, out):  # pragma: no cover - compiled
     """:func:`_time_offsets` of increasing spike times, written into the row ``out`` in one pass (no
@@ -637,10 +643,10 @@ def _offsets_into(times, frame_rate, out):  # pragma: no cover - compiled
     out[:] = 0.0
     k = 0
     while k < m:
-        frame = min(max(np.int64(np.rint(times[k] * frame_rate)), 0), n_frames - 1)
+        frame = _frame_of(times[k], frame_rate, n_frames)
         total = 0.0
         number = 0
-        while k < m and min(max(np.int64(np.rint(times[k] * frame_rate)), 0), n_frames - 1) == frame:
+        while k < m and _frame_of(times[k], frame_rate, n_frames) == frame:
             total += times[k] - frame / frame_rate
             number += 1
             k += 1

@@ -194,6 +194,15 @@ def _interpolate_knots(knots: np.ndarray, knots_at: np.ndarray, where: np.ndarra
     return out
 
 
+@njit(cache=True, inline="always")
+def _insert_sorted(keep, pos, x):  # pragma: no cover - compiled
+    """Put x into the ascending keep[:pos + 1], whose slot ``pos`` is free (its value is dropped)."""
+    while pos > 0 and keep[pos - 1] > x:
+        keep[pos] = keep[pos - 1]
+        pos -= 1
+    keep[pos] = x
+
+
 @njit(cache=True)
 def _low_order_pair(samples, starts, k, rank, lower, upper):  # pragma: no cover - compiled
     """Order statistics ``rank - 1`` and ``rank`` (0-based) of the window samples[r, s:s + k] for every
@@ -224,12 +233,7 @@ def _low_order_pair(samples, starts, k, rank, lower, upper):  # pragma: no cover
                         n += 1
             if have_pivot and m <= n <= 4 * m_keep:
                 for a in range(1, n):  # insertion sort of the few collected values
-                    x = keep[a]
-                    pos = a
-                    while pos > 0 and keep[pos - 1] > x:
-                        keep[pos] = keep[pos - 1]
-                        pos -= 1
-                    keep[pos] = x
+                    _insert_sorted(keep, a, keep[a])
             else:
                 # a falling window (bleaching) is read from its end: then few values enter the buffer
                 forward = not row[s0 + k - 1] < row[s0]
@@ -237,16 +241,10 @@ def _low_order_pair(samples, starts, k, rank, lower, upper):  # pragma: no cover
                 for step in range(k):
                     x = row[s0 + step] if forward else row[s0 + k - 1 - step]
                     if n < m_keep:
-                        pos = n
+                        _insert_sorted(keep, n, x)
                         n += 1
                     elif x < keep[m_keep - 1]:
-                        pos = m_keep - 1
-                    else:
-                        continue
-                    while pos > 0 and keep[pos - 1] > x:
-                        keep[pos] = keep[pos - 1]
-                        pos -= 1
-                    keep[pos] = x
+                        _insert_sorted(keep, m_keep - 1, x)
             upper[r, j] = keep[rank]
             lower[r, j] = keep[rank - 1] if rank > 0 else keep[rank]
             pivot = keep[min(n, m_keep) - 1]
