@@ -206,6 +206,80 @@ def test_compiled_interpolation_is_identical_to_numpy_interp(n_knots, seed, hits
     np.testing.assert_array_equal(out, np.array([np.interp(where, knots_at, v) for v in values]))
 
 
+@settings(max_examples=150, deadline=None)
+@given(n=st.integers(1, 400), n_knots=st.integers(1, 25), seed=st.integers(0, 2**31), hits=st.booleans(),
+       odd=st.sampled_from(["none", "inf", "nan", "flat-inf"]))
+def test_frame_by_frame_baseline_is_identical_to_numpy_interp(n, n_knots, seed, hits, odd):
+    # Reference: numpy.interp at the frames 0..n-1, bit for bit (frames before, between, on and after the
+    # knots; knots with non-finite values take numpy's per-point fallbacks), and ΔF/F = (F - F0) / F0 with NaN
+    # where F is missing; the lowest F0 as ndarray.min, the frames at a floor as a count of F0 <= floor.
+    from calcium.signal.baseline import _baseline_and_dff
+
+    rng = np.random.default_rng(seed)
+    gaps = rng.uniform(0.3, 3.0 * n / n_knots + 1.0, n_knots)
+    if hits:
+        gaps = np.ceil(gaps)  # knots on whole frames
+    knots_at = np.cumsum(gaps) - rng.uniform(0.0, 0.5 * n)
+    values = rng.normal(100.0, 20.0, (2, n_knots))
+    if odd != "none" and n_knots > 1:
+        j = int(rng.integers(n_knots))
+        values[0, j] = {"inf": np.inf, "nan": np.nan, "flat-inf": np.inf}[odd]
+        if odd == "flat-inf":
+            values[0, min(j + 1, n_knots - 1)] = np.inf
+            values[0, max(j - 1, 0)] = np.inf
+    raw = rng.normal(120.0, 30.0, (2, n))
+    raw[rng.random((2, n)) < 0.1] = np.nan
+    raw[1, :: 7] = np.inf
+    floor = 95.0
+    f0 = np.empty((2, n))
+    dff = np.empty((2, n))
+    lowest = np.empty(2)
+    at_floor = np.empty(2, dtype=np.int64)
+    _baseline_and_dff(raw, values, knots_at, f0, dff, lowest, floor, at_floor)
+    expected = np.array([np.interp(np.arange(n, dtype=np.float64), knots_at, v) for v in values])
+    np.testing.assert_array_equal(f0, expected)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        np.testing.assert_array_equal(dff, np.where(np.isfinite(raw), (raw - expected) / expected, np.nan))
+    np.testing.assert_array_equal(lowest, expected.min(axis=1))
+    np.testing.assert_array_equal(at_floor, np.count_nonzero(expected <= floor, axis=1))
+    # without F0 kept (a scratch row only): the same ΔF/F, lowest F0 and counts
+    dff2 = np.empty((2, n))
+    lowest2 = np.empty(2)
+    at_floor2 = np.empty(2, dtype=np.int64)
+    _baseline_and_dff(raw, values, knots_at, np.empty((0, n)), dff2, lowest2, floor, at_floor2)
+    np.testing.assert_array_equal(dff2, dff)
+    np.testing.assert_array_equal(lowest2, lowest)
+    np.testing.assert_array_equal(at_floor2, at_floor)
+
+
+@pytest.mark.parametrize("floor", [None, 150.0])
+@pytest.mark.parametrize("keep_f0", [True, False])
+def test_rows_variant_equals_delta_f_over_f(floor, keep_f0):
+    # Reference: delta_f_over_f itself (the same ΔF/F and F0, bit for bit), ndarray.min for the lowest F0
+    # and a count of F0 <= floor for the frames at the floor.
+    from calcium.signal import delta_f_over_f_rows
+
+    raw, _ = _recording(8, n=9000, rois=4)
+    raw[1, 2000:2600] = np.nan
+    raw[2, ::11] = np.inf
+    full = delta_f_over_f(raw, FRAME_RATE, floor=floor)
+    rows = delta_f_over_f_rows(raw, FRAME_RATE, keep_f0=keep_f0, floor=floor)
+    np.testing.assert_array_equal(rows.dff, full.dff)
+    if keep_f0:
+        np.testing.assert_array_equal(rows.f0, full.f0)
+    else:
+        assert rows.f0 is None
+    np.testing.assert_array_equal(rows.f0_min, full.f0.min(axis=1))
+    expected = np.count_nonzero(full.f0 <= floor, axis=1) if floor is not None else np.zeros(4, dtype=int)
+    np.testing.assert_array_equal(rows.at_floor, expected)
+    if floor is not None:
+        assert rows.at_floor.max() > 0  # the floor is reached somewhere: the count is checked, not only zeros
+    one = delta_f_over_f_rows(raw[0], FRAME_RATE, keep_f0=keep_f0, floor=floor)
+    np.testing.assert_array_equal(one.dff, full.dff[:1])
+    with pytest.raises(ValueError, match="F0 .* is <= 0 in the trace"):
+        delta_f_over_f_rows(raw[0] - 1000.0, FRAME_RATE)
+
+
 def test_high_percentiles_take_the_partition_path_with_the_same_definition():
     # Reference: numpy.percentile (linear interpolation) of each knot's window of smoothed samples; the
     # 8th percentile goes through the compiled order statistics, the 90th through np.partition.

@@ -369,29 +369,36 @@ def _first_line(exc: BaseException) -> str:
 
 
 def _dff_rows(raw: np.ndarray, params: StageParams, reasons: list, flags: np.ndarray, rows: np.ndarray):
-    """ΔF/F of ``raw[rows]``; on an F0 failure, redo ROI by ROI to find (and flag) the bad ones."""
-    from ..signal import delta_f_over_f
+    """ΔF/F of ``raw[rows]``; on an F0 failure, redo ROI by ROI to find (and flag) the bad ones.
+
+    Returns (rows kept, their ΔF/F, F0 or None unless ``params.keep_f0``, lowest F0 of each, frames at the
+    F0 floor of each) (:func:`calcium.signal.delta_f_over_f_rows`: F0 at every frame is only built
+    when it is kept).
+    """
+    from ..signal import delta_f_over_f_rows
 
     try:
         # (rows are increasing: all of them means the whole block, which needs no copy)
-        result = delta_f_over_f(raw if rows.size == raw.shape[0] else raw[rows], params.frame_rate, **params.dff)
-        return rows, result.dff, result.f0
+        result = delta_f_over_f_rows(raw if rows.size == raw.shape[0] else raw[rows], params.frame_rate,
+                                     keep_f0=params.keep_f0, **params.dff)
+        return rows, result.dff, result.f0, result.f0_min, result.at_floor
     except ValueError:
         pass
-    kept, dffs, f0s = [], [], []
+    kept, parts = [], []
     for i in rows:
         try:
-            result = delta_f_over_f(raw[i], params.frame_rate, **params.dff)
+            result = delta_f_over_f_rows(raw[i], params.frame_rate, keep_f0=params.keep_f0, **params.dff)
         except ValueError as exc:
             flags[i] |= FLAG_FAILED | (FLAG_F0 if "F0" in str(exc) else 0)
             reasons[i].append(("F0 <= 0: " if "F0" in str(exc) else "ΔF/F failed: ") + _first_line(exc))
             continue
         kept.append(i)
-        dffs.append(result.dff)
-        f0s.append(result.f0)
+        parts.append(result)
     if not kept:
-        return np.zeros(0, dtype=np.intp), None, None
-    return np.asarray(kept), np.vstack(dffs), np.vstack(f0s)
+        return np.zeros(0, dtype=np.intp), None, None, None, None
+    return (np.asarray(kept), np.vstack([r.dff for r in parts]),
+            np.vstack([r.f0 for r in parts]) if params.keep_f0 else None,
+            np.concatenate([r.f0_min for r in parts]), np.concatenate([r.at_floor for r in parts]))
 
 
 def process_chunk(task: ChunkTask) -> dict:
@@ -439,18 +446,18 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
 
     usable = np.flatnonzero(n_missing < n_frames)
     if with_dff:
-        rows, dff, f0 = _dff_rows(raw, params, reasons, flags, usable)
+        rows, dff, f0, f0_min, at_floor = _dff_rows(raw, params, reasons, flags, usable)
     else:
-        rows, dff, f0 = usable, raw[usable], None
+        rows, dff = usable, raw[usable]
     if rows.size and with_dff:
         out["dff"][rows] = dff
         if "f0" in out:
             out["f0"][rows] = f0
-        out["f0_min"][rows] = f0.min(axis=1)
+        out["f0_min"][rows] = f0_min
         floor = params.dff.get("floor")
         if floor is not None:
             for k, i in enumerate(rows):
-                clipped = int(np.count_nonzero(f0[k] <= floor))
+                clipped = int(at_floor[k])
                 if clipped:
                     flags[i] |= FLAG_F0
                     reasons[i].append(f"F0 clipped at the floor {floor:g} in {clipped} frames")

@@ -10,6 +10,7 @@ multiple of the time of one pass over the data.
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -297,19 +298,86 @@ def _interp_rows(knots, knots_at, where, out):  # pragma: no cover - compiled
         _interp_row(knots[r], knots_at, where, out[r], slopes)
 
 
+@njit(cache=True, inline="always")
+def _frames_between(base, values, knots_at, j, slope, start, stop):  # pragma: no cover - compiled
+    """F0 at the frames start..stop-1, all inside (knots_at[j], knots_at[j + 1]): np.interp's arithmetic,
+    slope (t - x0) + f0, with its fallback from the other end where that is NaN."""
+    v = values[j]
+    knot = knots_at[j]
+    if np.isfinite(slope) and np.isfinite(v):  # (then no value is NaN: no test per frame)
+        for t in range(start, stop):
+            base[t] = slope * (t - knot) + v
+        return
+    for t in range(start, stop):
+        value = slope * (t - knot) + v
+        if value != value:
+            value = slope * (t - knots_at[j + 1]) + values[j + 1]
+            if value != value and v == values[j + 1]:
+                value = v
+        base[t] = value
+
+
+@njit(cache=True, inline="always")
+def _interp_frames(values, knots_at, base, slopes):  # pragma: no cover - compiled
+    """np.interp(arange(len(base)), knots_at, values) into ``base``, bit for bit as :func:`_interp_row`
+    gives it, but knot interval by knot interval: no search and no tests per frame (frame t lies in the
+    interval [knots_at[j], knots_at[j + 1]) for t < ceil(knots_at[j + 1]))."""
+    n = base.shape[0]
+    n_knots = knots_at.shape[0]
+    first = values[0]
+    last = values[n_knots - 1]
+    if n_knots == 1:
+        base[:] = first
+        return
+    for j in range(n_knots - 1):
+        slopes[j] = (values[j + 1] - values[j]) / (knots_at[j + 1] - knots_at[j])
+    i = min(n, max(0, int(math.ceil(knots_at[0]))))  # frames before the first knot take its value
+    base[:i] = first
+    for j in range(n_knots - 1):
+        stop = min(n, max(i, int(math.ceil(knots_at[j + 1]))))
+        if stop <= i:
+            continue
+        if i == knots_at[j]:  # a knot hit exactly takes its value
+            base[i] = values[j]
+            i += 1
+        _frames_between(base, values, knots_at, j, slopes[j], i, stop)
+        i = stop
+    base[i:] = last  # at and beyond the last knot
+
+
 @njit(cache=True)
-def _baseline_and_dff(rows, knots, knots_at, where, f0, dff):  # pragma: no cover - compiled
-    """F0 of every row (as :func:`_interp_rows`) and ΔF/F = (F - F0) / F0 beside it, NaN where F is
-    missing (NaN or inf), in one pass."""
+def _baseline_and_dff(rows, knots, knots_at, f0, dff, lowest, floor, at_floor):  # pragma: no cover - compiled
+    """F0 of every row (np.interp of the knots at the frames, see :func:`_interp_frames`) and
+    ΔF/F = (F - F0) / F0, NaN where F is missing (NaN or inf).
+
+    F0 goes into the rows of ``f0``, or, when ``f0`` has no rows, only into a scratch row (not kept).
+    ``lowest`` gets each row's smallest F0 (NaN if any F0 is NaN, as ndarray.min), ``at_floor`` the
+    number of its frames with F0 <= ``floor``.
+    """
+    n_rows, n = rows.shape
+    keep = f0.shape[0] > 0
+    scratch = np.empty(0 if keep else n)
     slopes = np.empty(max(knots_at.shape[0] - 1, 0))
-    for r in range(rows.shape[0]):
-        base = f0[r]
-        _interp_row(knots[r], knots_at, where, base, slopes)
+    for r in range(n_rows):
+        base = f0[r] if keep else scratch
+        _interp_frames(knots[r], knots_at, base, slopes)
         raw = rows[r]
         rel = dff[r]
-        for t in range(raw.shape[0]):
+        for t in range(n):
             x = raw[t]
             rel[t] = (x - base[t]) / base[t] if np.isfinite(x) else np.nan
+        low = np.inf
+        nan = False
+        count = 0
+        for t in range(n):
+            b = base[t]
+            if b < low:
+                low = b
+            elif b != b:
+                nan = True
+            count += b <= floor
+        lowest[r] = np.nan if nan else low
+        at_floor[r] = count
 
 
 def _percentile_knots(rows: np.ndarray, finite: np.ndarray | None, grid: _Grid,
@@ -445,21 +513,82 @@ def delta_f_over_f(raw, frame_rate, *, window_s=60.0, percentile=8.0, smooth_s=1
     >>> float(result.f0[0, 1005]), float(result.dff[0, 1005])
     (100.0, 0.5)
     """
+    x, missing, frame_rate, window_s, percentile, smooth_s, floor = _checked(raw, frame_rate, window_s, percentile,
+                                                                             smooth_s, floor)
+    dff, f0, _, _ = _delta_f(x, missing, frame_rate, window_s, percentile, smooth_s, floor, keep_f0=True)
+    return DeltaF(dff=dff.reshape(x.shape), f0=f0.reshape(x.shape), missing=missing,
+                  window_s=min(window_s, x.shape[-1] / frame_rate), percentile=percentile)
+
+
+@dataclass(frozen=True, eq=False)
+class RowsDeltaF:
+    """Result of :func:`delta_f_over_f_rows`.
+
+    Attributes
+    ----------
+    dff : ndarray, shape (rows, frames)
+        ΔF/F, as :attr:`DeltaF.dff` (a single trace is one row).
+    f0 : ndarray, shape (rows, frames), or None
+        F0 at every frame when asked for (``keep_f0``), else None.
+    f0_min : ndarray, shape (rows,)
+        The smallest F0 of each row (over its frames).
+    at_floor : ndarray of int, shape (rows,)
+        Frames of each row whose F0 is at or below ``floor`` (all zero
+        without a floor).
+    """
+
+    dff: np.ndarray
+    f0: np.ndarray | None
+    f0_min: np.ndarray
+    at_floor: np.ndarray
+
+
+def delta_f_over_f_rows(raw, frame_rate, *, keep_f0=False, window_s=60.0, percentile=8.0, smooth_s=1.0,
+                        floor=None) -> RowsDeltaF:
+    """:func:`delta_f_over_f` of traces as rows (one trace is one row), keeping F0 only when asked.
+
+    The session pipeline's variant: F0 at every frame is usually not kept,
+    only its lowest value and the frames clipped at the floor, so it is
+    computed row by row into a scratch row instead of a second (rows,
+    frames) array. ``dff`` and, with ``keep_f0``, ``f0`` are identical to
+    those of :func:`delta_f_over_f` (the same computation), and ``f0_min``
+    to ``f0.min(axis=1)``.
+
+    Raises
+    ------
+    ValueError
+        As :func:`delta_f_over_f`.
+    """
+    x, missing, frame_rate, window_s, percentile, smooth_s, floor = _checked(raw, frame_rate, window_s, percentile,
+                                                                             smooth_s, floor)
+    dff, f0, lowest, at_floor = _delta_f(x, missing, frame_rate, window_s, percentile, smooth_s, floor,
+                                         keep_f0=bool(keep_f0))
+    return RowsDeltaF(dff=dff, f0=f0, f0_min=lowest, at_floor=at_floor)
+
+
+def _checked(raw, frame_rate, window_s, percentile, smooth_s, floor):
+    """The arguments of delta_f_over_f validated: (traces, their missing frames, frame_rate, window_s,
+    percentile, smooth_s, floor)."""
     frame_rate = check_frame_rate(frame_rate)
     window_s, percentile, smooth_s = _check_baseline_args(window_s, percentile, smooth_s)
     if floor is not None:
         floor = check_positive(floor, "floor")
     x = as_traces(raw, "raw")
     missing = require_some_data(x, "raw")
+    return x, missing, frame_rate, window_s, percentile, smooth_s, floor
 
+
+def _delta_f(x, missing, frame_rate, window_s, percentile, smooth_s, floor, *, keep_f0):
+    """ΔF/F of validated traces as rows: (dff, f0 or None, lowest F0 of each row, frames at the floor)."""
     n = x.shape[-1]
     rows = x.reshape(-1, n)
     miss_rows = missing.mask.reshape(-1, n)
     grid = _plan_grid(n, frame_rate, window_s, smooth_s)
-    frames = np.arange(n, dtype=np.float64)
-    f0 = np.empty_like(rows)
+    f0 = np.empty_like(rows) if keep_f0 else np.empty((0, n))
     dff = np.empty_like(rows)
+    lowest_knot = np.empty(rows.shape[0])
     lowest = np.empty(rows.shape[0])
+    at_floor = np.zeros(rows.shape[0], dtype=np.int64)
     # Each knot's window is copied before the percentile: size the chunks of
     # ROIs by the larger of the trace and that copy.
     per_row = max(n, grid.starts.size * grid.window)
@@ -469,20 +598,18 @@ def delta_f_over_f(raw, frame_rate, *, window_s=60.0, percentile=8.0, smooth_s=1
         knots = _percentile_knots(rows[part], finite, grid, percentile)
         if floor is not None:
             np.maximum(knots, floor, out=knots)
-        lowest[part] = knots.min(axis=1)
-        _baseline_and_dff(rows[part], knots, grid.knot_frames, frames, f0[part], dff[part])
+        lowest_knot[part] = knots.min(axis=1)
+        _baseline_and_dff(rows[part], knots, grid.knot_frames, f0[part] if keep_f0 else f0, dff[part], lowest[part],
+                          -np.inf if floor is None else floor, at_floor[part])
 
-    if floor is None and not (lowest > 0).all():
-        bad = np.flatnonzero(~(lowest > 0))
+    if floor is None and not (lowest_knot > 0).all():
+        bad = np.flatnonzero(~(lowest_knot > 0))
         where = "the trace" if x.ndim == 1 else "ROI(s) " + ", ".join(str(int(i)) for i in bad[:10])
         if bad.size > 10:
             where += f" and {bad.size - 10} more"
         raise ValueError(
             f"F0 (running percentile {percentile:g} of the smoothed trace) is <= 0 in {where} (lowest F0 "
-            f"{float(np.nanmin(lowest[bad])):.4g}), so ΔF/F is undefined there. Likely fixes: the neuropil "
+            f"{float(np.nanmin(lowest_knot[bad])):.4g}), so ΔF/F is undefined there. Likely fixes: the neuropil "
             f"factor is too large (too much neuropil was subtracted: lower it); or add a constant offset "
             f"to the traces; or pass floor=<positive value> to clip F0 from below.")
-
-    used_window = min(window_s, n / frame_rate)
-    return DeltaF(dff=dff.reshape(x.shape), f0=f0.reshape(x.shape), missing=missing,
-                  window_s=used_window, percentile=percentile)
+    return dff, (f0 if keep_f0 else None), lowest, at_floor
