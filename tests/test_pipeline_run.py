@@ -392,19 +392,25 @@ def test_a_rerun_with_other_parameters_is_refused_unless_overwrite(session, tmp_
 # inputs
 # ---------------------------------------------------------------------------
 def test_npy_and_csv_traces_give_the_results_of_the_hdf5_file(session, tmp_path):
-    raw = session["raw"][:4]
+    raw = session["raw"]
     npy = write_traces(tmp_path / "t.npy", raw)
     csv = write_traces(tmp_path / "t.csv", raw, frame_rate=RATE)
     h5 = write_traces(tmp_path / "t.h5", raw, frame_rate=RATE)
+    # the same values in Fortran order, and big-endian (read through the reader's byte buffer)
+    fortran = tmp_path / "fortran.npy"
+    np.save(fortran, np.asfortranarray(raw))
+    swapped = tmp_path / "swapped.npy"
+    np.save(swapped, raw.astype(">f8"))
     outputs = []
-    for path, extra in ((h5, {}), (npy, {"frame_rate": RATE}), (csv, {})):
-        config = _config(tmp_path / path.suffix[1:], path, inputs=extra)
+    for path, extra in ((h5, {}), (npy, {"frame_rate": RATE}), (csv, {}), (fortran, {"frame_rate": RATE}),
+                        (swapped, {"frame_rate": RATE})):
+        config = _config(tmp_path / path.name.replace(".", "_"), path, inputs=extra, execution={"chunk_rois": 4})
         outputs.append(run_pipeline(config, progress=False).results_path)
-    assert not (tmp_path / "csv" / ".calcium-work").exists()  # the binary copy of the CSV is removed
+    assert not (tmp_path / "t_csv" / ".calcium-work").exists()  # the binary copy of the CSV is removed
     data = [_datasets(p) for p in outputs]
-    for name in ("dff", "activity", "spike_counts", "quality_flags"):
-        assert np.array_equal(data[0][name], data[1][name], equal_nan=True)
-        assert np.array_equal(data[0][name], data[2][name], equal_nan=True)
+    for other in data[1:]:
+        for name in ("dff", "activity", "denoised", "snr", "spike_counts", "quality_flags"):
+            assert np.array_equal(data[0][name], other[name], equal_nan=True), name
 
 
 def test_frame_rate_must_be_known_and_agree_with_the_file(session, tmp_path):
@@ -558,7 +564,7 @@ def test_reused_chunk_arrays_leave_no_stale_values_in_failed_rois():
     raw[2, :] = -5.0         # F0 <= 0: no ΔF/F
     params = stages.StageParams(frame_rate=30.0)
     for name in ("denoised", "activity", "spike_counts", "spike_time_offset_s", "dff"):
-        stages._SPARE_ARRAYS[name] = np.full((3, 900), 7, dtype=stages._FRAME_RESULTS[name][0])
+        stages._spare_arrays()[name] = np.full((3, 900), 7, dtype=stages._FRAME_RESULTS[name][0])
     try:
         out = stages._process_rows(raw, 0, params)
     finally:
@@ -569,6 +575,42 @@ def test_reused_chunk_arrays_leave_no_stale_values_in_failed_rois():
         assert not out["spike_counts"][roi].any() and not out["spike_time_offset_s"][roi].any()
     assert np.isfinite(out["dff"][0]).all() and np.isfinite(out["denoised"][0]).all()
     assert not np.any(out["denoised"][0] == 7) and not np.any(out["spike_time_offset_s"][0] == 7)
+
+
+@pytest.mark.parametrize("dtype", ["<f8", "<f4", ">f4", "<i2", ">u2"])
+@pytest.mark.parametrize("order", ["C", "F"])
+def test_rows_read_into_a_reused_array_equal_the_rows_numpy_loads(tmp_path, dtype, order):
+    # Reference: numpy's own .npy reader (np.load) and astype(float64) for the stored dtype, byte order and
+    # memory order; the chunk reader reads C-order files with plain file reads into a buffer it keeps.
+    rng = np.random.default_rng(11)
+    data = np.asarray(np.abs(rng.normal(0.0, 900.0, (7, 50))).astype(dtype), order=order)
+    path = tmp_path / "traces.npy"
+    np.save(path, data)
+    expected = np.load(path).astype(np.float64)
+    source = stages.npy_source(path)
+    try:
+        out = np.full((3, 50), np.nan)
+        assert source.read_rows(2, 5, out=out) is out
+        np.testing.assert_array_equal(out, expected[2:5])
+        np.testing.assert_array_equal(source.read_rows(5, 7), expected[5:7])   # smaller chunk, same buffer
+        np.testing.assert_array_equal(source.read_rows(0, 7), expected)        # larger chunk, new buffer
+        with pytest.raises(ValueError, match="shape"):
+            source.read_rows(0, 2, out=np.empty((3, 50)))
+        with pytest.raises(ValueError, match="float64"):
+            source.read_rows(0, 2, out=np.empty((2, 50), dtype=np.float32))
+    finally:
+        stages.release_spare_arrays()
+        stages._OPEN_SOURCES.clear()
+
+
+def test_a_traces_file_cut_short_after_it_was_opened_is_an_input_error_naming_it(tmp_path):
+    path = tmp_path / "traces.npy"
+    np.save(path, np.ones((4, 100)))
+    source = stages.npy_source(path)
+    os.truncate(path, os.path.getsize(path) - 8)
+    with pytest.raises(CalciumInputError, match="traces.npy is shorter than its header says"):
+        source.read_rows(2, 4)
+    np.testing.assert_array_equal(source.read_rows(0, 2), np.ones((2, 100)))  # the rows still there
 
 
 def test_compiled_spike_time_offsets_equal_the_numpy_ones():

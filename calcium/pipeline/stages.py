@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -147,22 +148,44 @@ class TraceSource:
             _OPEN_SOURCES[key] = array
         return array
 
-    def read_rows(self, start: int, stop: int) -> np.ndarray:
-        """Rows ``start:stop`` as float64 (rois, frames)."""
+    def read_rows(self, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Rows ``start:stop`` as float64 (rois, frames), into ``out`` when given (a C-contiguous float64 array of
+        that shape; then it is returned)."""
+        shape = (stop - start, self.n_frames)
+        if out is None:
+            out = np.empty(shape)
+        elif out.shape != shape or out.dtype != np.float64 or not out.flags.c_contiguous:
+            raise ValueError(f"out must be a C-contiguous float64 array of shape {shape}, got {out.dtype} "
+                             f"{out.shape}")
         if self.kind == "npy" and self.offset is not None:
             dtype = np.dtype(self.dtype)
+            # float64 files are read straight into out; others through a byte buffer kept for the next chunk
+            target = out if dtype == np.float64 else _spare_bytes(out.size * dtype.itemsize)
             with open(self.path, "rb") as handle:
                 handle.seek(self.offset + start * self.n_frames * dtype.itemsize)
-                rows = np.fromfile(handle, dtype=dtype, count=(stop - start) * self.n_frames)
-            if rows.size != (stop - start) * self.n_frames:
+                wanted = out.size * dtype.itemsize
+                got = handle.readinto(memoryview(target).cast("B")[:wanted])
+            if got != wanted:
                 raise CalciumInputError(f"{self.path} is shorter than its header says (truncated?)")
-            return rows.reshape(stop - start, self.n_frames).astype(np.float64)
+            if target is not out:
+                np.copyto(out, target[:wanted].view(dtype).reshape(shape), casting="unsafe")
+            return out
         array = self._array()
         if array.ndim == 1:
             rows = np.asarray(array[:]).reshape(1, -1)[start:stop]
         else:
             rows = array[start:stop]
-        return np.array(rows, dtype=np.float64)
+        np.copyto(out, rows, casting="unsafe")
+        return out
+
+
+def _spare_bytes(n: int) -> np.ndarray:
+    """A byte buffer of at least ``n`` bytes, kept for the next call (see _spare_arrays)."""
+    spares = _spare_arrays()
+    spare = spares.get("input bytes")
+    if spare is None or spare.size < n:
+        spare = spares["input bytes"] = np.empty(n, dtype=np.uint8)
+    return spare
 
 
 def _numeric_2d(shape, dtype, where: str) -> tuple[int, int]:
@@ -313,23 +336,36 @@ _FRAME_RESULTS = {"denoised": (np.float32, np.nan), "activity": (np.float32, np.
                   "spike_counts": (np.uint16, 0), "spike_time_offset_s": (np.float32, 0.0),
                   "dff": (np.float32, np.nan), "f0": (np.float32, np.nan), "dff_filtered": (np.float32, np.nan)}
 _INFERENCE_RESULTS = ("denoised", "activity", "spike_counts", "spike_time_offset_s")
-# The (rois, frames) arrays of the last chunk this process wrote to the results file, for the next chunk:
-# fresh arrays of that size would each be new memory, and on a virtual machine every page of it costs a fault.
-_SPARE_ARRAYS: dict = {}
+# The (rois, frames) arrays of the last chunk this thread wrote to the results file, and its input rows, for the
+# next chunk: fresh arrays of that size would each be new memory, and on a virtual machine every page of it costs a
+# fault. One set per thread (a dask worker may run chunks in several threads).
+_SPARES = threading.local()
+
+
+def _spare_arrays() -> dict:
+    """This thread's arrays kept for its next chunk (name -> array)."""
+    arrays = getattr(_SPARES, "arrays", None)
+    if arrays is None:
+        arrays = _SPARES.arrays = {}
+    return arrays
 
 
 def _frame_array(name: str, n: int, n_frames: int) -> np.ndarray:
     """An uninitialised (n, n_frames) array for result ``name`` (the spare one when it fits)."""
-    dtype = _FRAME_RESULTS[name][0]
-    spare = _SPARE_ARRAYS.pop(name, None)
+    return _spare_array(name, n, n_frames, _FRAME_RESULTS[name][0])
+
+
+def _spare_array(name: str, n: int, n_frames: int, dtype=np.float64) -> np.ndarray:
+    """An uninitialised (n, n_frames) array: the spare one kept under ``name`` when it fits."""
+    spare = _spare_arrays().pop(name, None)
     if spare is not None and spare.shape == (n, n_frames) and spare.dtype == dtype:
         return spare
     return np.empty((n, n_frames), dtype=dtype)
 
 
 def release_spare_arrays() -> None:
-    """Drop the arrays kept for the next chunk (at the end of a run in this process)."""
-    _SPARE_ARRAYS.clear()
+    """Drop the arrays this thread kept for its next chunk (at the end of a run in this process)."""
+    _spare_arrays().clear()
 
 
 def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool, with_f0: bool) -> dict:
@@ -411,12 +447,15 @@ def process_chunk(task: ChunkTask) -> dict:
     covers (every per-ROI dataset) are written to the results file here and
     left out of the returned dict.
     """
-    out = _process_rows(task.source.read_rows(task.start, task.stop), task.start, task.params)
+    raw = task.source.read_rows(task.start, task.stop, out=_spare_array("input", task.stop - task.start,
+                                                                       task.source.n_frames))
+    out = _process_rows(raw, task.start, task.params)
+    _spare_arrays()["input"] = raw  # (no result refers to it)
     if task.writer is not None:
         task.writer.write(task.start, out)
         for name in task.writer.names:
             if name in _FRAME_RESULTS:
-                _SPARE_ARRAYS[name] = out[name]  # written: the next chunk may fill it again
+                _spare_arrays()[name] = out[name]  # written: the next chunk may fill it again
             del out[name]
     return out
 
