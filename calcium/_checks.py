@@ -78,7 +78,7 @@ def check_frame_rate(frame_rate) -> float:
 
 
 def as_traces(traces, name: str = "traces", *, min_frames: int = 1) -> np.ndarray:
-    """Return ``traces`` as a float64 array of shape (frames,) or (rois, frames).
+    """Return ``traces`` as a C-contiguous float64 array of shape (frames,) or (rois, frames).
 
     NaN and inf are kept: they mark missing frames and are handled by the
     caller (see :func:`find_missing`). Raises ValueError for other shapes,
@@ -98,7 +98,9 @@ def as_traces(traces, name: str = "traces", *, min_frames: int = 1) -> np.ndarra
         raise ValueError(f"{name} must have at least {min_frames} frame(s) on the last axis, got shape {arr.shape}")
     if arr.ndim == 2 and arr.shape[0] < 1:
         raise ValueError(f"{name} has no ROIs (shape {arr.shape})")
-    return np.asarray(arr, dtype=np.float64)
+    # C order always: the compiled loops and BLAS sum in an order that can depend on the strides, and the same
+    # values must give the same results whether they come as a row of a Fortran-order array or as a copy
+    return np.ascontiguousarray(arr, dtype=np.float64)
 
 
 @dataclass(frozen=True)

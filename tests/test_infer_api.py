@@ -133,6 +133,18 @@ def test_a_call_does_not_depend_on_the_calls_before_it(recording):
     assert fresh.objective == again.objective and fresh.baseline == again.baseline
 
 
+def test_results_do_not_depend_on_the_memory_layout_of_the_trace(recording):
+    # reference: determinism (common practice): a row of a Fortran-order array (a strided view) holds the same
+    # values as a C-order copy and must give the same results, bit for bit (blind kinetics and noise included)
+    strided = np.asfortranarray(np.tile(recording.dff, (3, 1)))[1]
+    assert not strided.flags.c_contiguous
+    fresh = infer_spikes(strided.copy(), 30.0)
+    viewed = infer_spikes(strided, 30.0)
+    for name in ("activity", "denoised", "spike_times"):
+        np.testing.assert_array_equal(getattr(fresh, name), getattr(viewed, name))
+    assert fresh.objective == viewed.objective and fresh.noise_sd == viewed.noise_sd
+
+
 def test_bad_input_raises_value_errors():
     y = np.zeros(100)
     with pytest.raises(ValueError, match="at least 3"):
