@@ -190,22 +190,6 @@ def test_window_order_statistics_equal_those_of_a_full_sort(k, n_windows, step, 
     np.testing.assert_array_equal(lower, ordered[..., max(rank - 1, 0)])
 
 
-@settings(max_examples=100, deadline=None)
-@given(n_knots=st.integers(1, 30), seed=st.integers(0, 2**31), hits=st.booleans())
-def test_compiled_interpolation_is_identical_to_numpy_interp(n_knots, seed, hits):
-    # Reference: numpy.interp, bit for bit (points before, between, on and after the knots).
-    from calcium.signal.baseline import _interp_rows
-
-    rng = np.random.default_rng(seed)
-    knots_at = np.cumsum(rng.uniform(0.1, 30.0, n_knots)) - 5.0
-    values = rng.normal(100.0, 20.0, (3, n_knots))
-    where = np.sort(np.concatenate([rng.uniform(knots_at[0] - 10.0, knots_at[-1] + 10.0, 200),
-                                    knots_at if hits else [], [np.nan]]))
-    out = np.empty((3, where.size))
-    _interp_rows(values, knots_at, where, out)
-    np.testing.assert_array_equal(out, np.array([np.interp(where, knots_at, v) for v in values]))
-
-
 @settings(max_examples=150, deadline=None)
 @given(n=st.integers(1, 400), n_knots=st.integers(1, 25), seed=st.integers(0, 2**31), hits=st.booleans(),
        odd=st.sampled_from(["none", "inf", "nan", "flat-inf"]))

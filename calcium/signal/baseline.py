@@ -186,12 +186,11 @@ def _window_percentile(samples: np.ndarray, grid: _Grid, percentile: float) -> n
     return knots
 
 
-def _interpolate_knots(knots: np.ndarray, knots_at: np.ndarray, where: np.ndarray,
-                       out: np.ndarray | None = None) -> np.ndarray:
+def _interpolate_knots(knots: np.ndarray, knots_at: np.ndarray, where: np.ndarray) -> np.ndarray:
     """Piecewise-linear interpolation of knot values (rows, knots), constant beyond the end knots."""
-    if out is None:
-        out = np.empty((knots.shape[0], where.size))
-    _interp_rows(knots, knots_at, where, out)
+    out = np.empty((knots.shape[0], where.size))
+    for row, values in zip(out, knots):
+        row[:] = np.interp(where, knots_at, values)
     return out
 
 
@@ -253,52 +252,6 @@ def _low_order_pair(samples, starts, k, rank, lower, upper):  # pragma: no cover
 
 
 @njit(cache=True, inline="always")
-def _interp_row(values, knots_at, where, out, slopes):  # pragma: no cover - compiled
-    """np.interp(where, knots_at, values) into out, for increasing ``where`` and strictly increasing
-    ``knots_at``: the same arithmetic as numpy's own loop (slope (f1 - f0) / (x1 - x0), then
-    slope (x - x0) + f0; constant beyond the end knots; a knot hit exactly takes its value), so the
-    results are identical. ``slopes`` is scratch space of len(knots_at) - 1 or more."""
-    n_knots = knots_at.shape[0]
-    first = values[0]
-    last = values[n_knots - 1]
-    if n_knots == 1:  # (numpy: one knot's value everywhere, NaN points included)
-        out[:] = first
-        return
-    for j in range(n_knots - 1):
-        slopes[j] = (values[j + 1] - values[j]) / (knots_at[j + 1] - knots_at[j])
-    j = 0
-    for i in range(where.shape[0]):
-        x = where[i]
-        if x != x:
-            out[i] = x
-        elif x < knots_at[0]:
-            out[i] = first
-        elif x > knots_at[n_knots - 1]:
-            out[i] = last
-        else:
-            while j + 1 < n_knots and knots_at[j + 1] <= x:
-                j += 1
-            if j == n_knots - 1 or knots_at[j] == x:
-                out[i] = values[j]
-            else:
-                slope = slopes[j]
-                value = slope * (x - knots_at[j]) + values[j]
-                if value != value:  # (numpy's fallback from the other end of the interval)
-                    value = slope * (x - knots_at[j + 1]) + values[j + 1]
-                    if value != value and values[j] == values[j + 1]:
-                        value = values[j]
-                out[i] = value
-
-
-@njit(cache=True)
-def _interp_rows(knots, knots_at, where, out):  # pragma: no cover - compiled
-    """:func:`_interp_row` of every row of ``knots`` into the rows of ``out``."""
-    slopes = np.empty(max(knots_at.shape[0] - 1, 0))
-    for r in range(knots.shape[0]):
-        _interp_row(knots[r], knots_at, where, out[r], slopes)
-
-
-@njit(cache=True, inline="always")
 def _frames_between(base, values, knots_at, j, slope, start, stop):  # pragma: no cover - compiled
     """F0 at the frames start..stop-1, all inside (knots_at[j], knots_at[j + 1]): np.interp's arithmetic,
     slope (t - x0) + f0, with its fallback from the other end where that is NaN."""
@@ -319,9 +272,11 @@ def _frames_between(base, values, knots_at, j, slope, start, stop):  # pragma: n
 
 @njit(cache=True, inline="always")
 def _interp_frames(values, knots_at, base, slopes):  # pragma: no cover - compiled
-    """np.interp(arange(len(base)), knots_at, values) into ``base``, bit for bit as :func:`_interp_row`
-    gives it, but knot interval by knot interval: no search and no tests per frame (frame t lies in the
-    interval [knots_at[j], knots_at[j + 1]) for t < ceil(knots_at[j + 1]))."""
+    """np.interp(arange(len(base)), knots_at, values) into ``base``, bit for bit (numpy's arithmetic: slope
+    (f1 - f0) / (x1 - x0), then slope (x - x0) + f0; constant beyond the end knots; a knot hit exactly takes
+    its value), but knot interval by knot interval: no search and no tests per frame (frame t lies in the
+    interval [knots_at[j], knots_at[j + 1]) for t < ceil(knots_at[j + 1])). ``knots_at`` strictly
+    increasing; ``slopes`` is scratch space of len(knots_at) - 1 or more."""
     n = base.shape[0]
     n_knots = knots_at.shape[0]
     first = values[0]
