@@ -14,6 +14,7 @@ import numpy as np
 __all__ = [
     "CalciumInputError",
     "MissingDataError",
+    "OutputOverInputError",
     "MissingFrames",
     "check_frame_rate",
     "check_positive",
@@ -32,6 +33,13 @@ class CalciumInputError(ValueError):
 
 class MissingDataError(CalciumInputError):
     """A trace (or ROI) has no finite sample at all."""
+
+
+class OutputOverInputError(ValueError):
+    """An output of a run would replace, or sit inside a folder that replaces, one of the run's inputs.
+
+    Raised before anything is written (see :func:`calcium.io.results.protect_inputs`).
+    """
 
 
 def _is_real_number(value) -> bool:

@@ -37,12 +37,20 @@ def _fail(path, exc, *, also=()) -> CommandError:
     return CommandError(msg)
 
 
-def _check_new_output(path, *, overwrite: bool, inputs=()) -> Path:
-    """Refuse to write over an input, and over an existing output unless asked to."""
+def _protect(inputs, *, files=(), folders=(), flag: str = "--out") -> None:
+    """Refuse outputs that would replace an input (by path or as a link), naming the flag to change.
+
+    ``inputs``: dict argument name -> path (None entries skipped). Raises
+    :class:`calcium._checks.OutputOverInputError` (a ValueError: one line, exit code 1).
+    """
+    from calcium.io.results import protect_inputs
+    protect_inputs(inputs, files=files, folders=folders, remedy=f"choose another {flag}")
+
+
+def _check_new_output(path, *, overwrite: bool, inputs=None, flag: str = "--out") -> Path:
+    """Refuse to write over an input (always), and over an existing output unless asked to."""
     path = Path(path)
-    for item in inputs:
-        if item is not None and Path(item).exists() and path.exists() and path.resolve() == Path(item).resolve():
-            raise CommandError(f"{path}: output would overwrite an input file; choose another --out")
+    _protect(inputs, files=[path], flag=flag)
     if path.exists() and not overwrite:
         raise CommandError(f"{path}: already exists; pass --overwrite to replace it")
     if not path.parent.exists():
@@ -120,8 +128,11 @@ def _add_kernel_options(p, *, help_suffix=""):
 # --------------------------------------------------------------------------- commands
 
 def cmd_demo(args):
-    from calcium.demo import run_demo
+    from calcium.demo import demo_data_folder, run_demo
     out = Path(args.out)
+    data = demo_data_folder()
+    if data is not None:  # --overwrite empties the report folder: never one that holds the demo data
+        _protect([("demo data", path) for path in sorted(data.iterdir())], folders=[out])
     index = run_demo(out, progress=_progress(args), overwrite=args.overwrite)
     _say(args, f"report written: {index}")
 
@@ -129,7 +140,7 @@ def cmd_demo(args):
 def cmd_extract(args):
     from calcium.extract import extract_traces
     from calcium.io import open_movie, read_masks
-    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.movie, args.masks))
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"MOVIE": args.movie, "MASKS": args.masks})
     try:
         movie = open_movie(args.movie)
     except (ValueError, OSError) as exc:
@@ -162,7 +173,7 @@ def cmd_extract(args):
 
 def cmd_dff(args):
     from calcium.signal import delta_f_over_f
-    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"INPUT": args.input})
     data = _read_traces(args.input, args.dataset)
     rate = _frame_rate(args, data)
     try:
@@ -185,8 +196,9 @@ def cmd_dff(args):
 
 def cmd_filter(args):
     from calcium.signal import design_filter
-    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
-    plot = _check_new_output(args.plot, overwrite=args.overwrite, inputs=(args.input,)) if args.plot else None
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"INPUT": args.input})
+    plot = (_check_new_output(args.plot, overwrite=args.overwrite, inputs={"INPUT": args.input}, flag="--plot")
+            if args.plot else None)
     data = _read_traces(args.input, args.dataset)
     rate = _frame_rate(args, data)
     cutoff = args.cutoff_hz[0] if len(args.cutoff_hz) == 1 else tuple(args.cutoff_hz)
@@ -215,7 +227,7 @@ def cmd_noise(args):
         raise _fail(args.input, exc) from exc
     if args.out:
         from calcium.io import write_csv
-        out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.input,))
+        out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"INPUT": args.input})
         write_csv(out, ["roi", "noise_sd"], [(i, float(v)) for i, v in enumerate(sd)])
         _say(args, f"noise s.d. of {sd.size} ROI(s) -> {out}")
     else:
@@ -263,8 +275,9 @@ def cmd_simulate(args):
 def cmd_predict(args):
     from calcium.forward import predict_fluorescence
     from calcium.io import read_spike_times, write_csv
-    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.spikes,))
-    plot = _check_new_output(args.plot, overwrite=args.overwrite, inputs=(args.spikes,)) if args.plot else None
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"SPIKES": args.spikes})
+    plot = (_check_new_output(args.plot, overwrite=args.overwrite, inputs={"SPIKES": args.spikes}, flag="--plot")
+            if args.plot else None)
     try:
         spikes = read_spike_times(args.spikes)
     except (ValueError, OSError) as exc:
@@ -323,13 +336,19 @@ def _fit_rows(fit) -> tuple[list, list]:
     return ["quantity", "value", "low", "high"], rows
 
 
-def _output_folder(args, *names, inputs=()) -> list[Path]:
-    """Paths of the named files in --out (created), each checked against inputs and --overwrite."""
+def _output_folder(args, *names, inputs=None) -> list[Path]:
+    """Paths of the named files in --out, each checked against the inputs and --overwrite; then the folder is
+    created."""
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise CommandError(f"{out}: is a file; --out takes a folder")
+    _protect(inputs, files=[out / name for name in names])
+    paths = [out / name for name in names]
+    for path in paths:
+        if path.exists() and not args.overwrite:
+            raise CommandError(f"{path}: already exists; pass --overwrite to replace it")
     out.mkdir(parents=True, exist_ok=True)
-    return [_check_new_output(out / name, overwrite=args.overwrite, inputs=inputs) for name in names]
+    return paths
 
 
 def cmd_fit_kernel(args):
@@ -350,7 +369,8 @@ def cmd_fit_kernel(args):
         raise CommandError(f"{args.spikes}: no spike times for ROI {spike_roi} (ROIs in the file: "
                            f"{', '.join(map(str, sorted(spikes))) or 'none'})")
     if args.out:  # check before the (slow) fit
-        table, figure = _output_folder(args, "kernel_fit.csv", "kernel_fit.png", inputs=(args.trace, args.spikes))
+        table, figure = _output_folder(args, "kernel_fit.csv", "kernel_fit.png",
+                                       inputs={"TRACE": args.trace, "SPIKES": args.spikes})
     try:
         fit = fit_kernel(data.traces[roi], times, rate, model=args.model, initial=args.indicator,
                          max_lag_s=args.max_lag_s, n_bootstrap=args.bootstrap, seed=args.seed)
@@ -381,7 +401,8 @@ def cmd_score(args):
         except (ValueError, OSError) as exc:
             raise _fail(path, exc) from exc
     if args.out:
-        csv_path, png_path = _output_folder(args, "scores.csv", "scores.png", inputs=(args.inferred, args.true))
+        csv_path, png_path = _output_folder(args, "scores.csv", "scores.png",
+                                            inputs={"INFERRED": args.inferred, "TRUE": args.true})
     table = score_many(*trains, tolerance_s=args.tolerance_s, bin_widths_s=tuple(args.bin_widths_s))
     print(table)
     if args.out:
@@ -438,6 +459,8 @@ def cmd_report(args):
     from calcium.io import read_spike_times
     from calcium.pipeline import write_session_report
     out = Path(args.out)
+    _protect({"RESULTS": args.results, "--electrical-spikes": args.electrical_spikes},
+             files=[out / "index.html"], folders=[out / "figures"])
     if (out / "index.html").exists() and not args.overwrite:
         raise CommandError(f"{out}: already holds a report; pass --overwrite to replace it")
     spikes = None
@@ -456,7 +479,7 @@ def cmd_report(args):
 
 def cmd_export_nwb(args):
     from calcium.io.nwb import export_nwb
-    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=(args.results,))
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"RESULTS": args.results})
     try:
         path = export_nwb(args.results, out, session_description=args.description, session_start=args.session_start,
                           indicator=args.indicator)

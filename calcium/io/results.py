@@ -3,8 +3,10 @@
 Every writer in :mod:`calcium.io` goes through :func:`atomic_output`: the data
 are written to a temporary file in the destination folder and moved into place
 with :func:`os.replace`, so a crash never leaves a half-written result behind
-and a reader never sees one. An output path that is one of the inputs is
-refused, so a result can never overwrite the data it was computed from.
+and a reader never sees one. An output path that is one of the inputs (by
+path, through a symbolic link, or as a hard link) is refused before anything
+is written (:func:`protect_inputs`), so a result can never overwrite the data
+it was computed from.
 """
 from __future__ import annotations
 
@@ -20,11 +22,12 @@ from pathlib import Path
 
 import numpy as np
 
-from .._checks import CalciumInputError
+from .._checks import CalciumInputError, OutputOverInputError
 
 __all__ = [
     "file_sha256",
     "atomic_output",
+    "protect_inputs",
     "write_hdf5",
     "read_hdf5",
     "write_csv",
@@ -122,22 +125,125 @@ def file_sha256(path) -> str:
     return digest.hexdigest()
 
 
-def _same_file(a: Path, b: Path) -> bool:
+def _identity(path: Path):
+    """(device, inode) of the file ``path`` leads to, or None when there is none."""
     try:
-        return a.exists() and b.exists() and os.path.samefile(a, b)
-    except OSError:
+        info = os.stat(path)
+    except (OSError, ValueError):
+        return None
+    return info.st_dev, info.st_ino
+
+
+def _entry_identities(folder: Path) -> dict:
+    """(device, inode) -> path of every file under ``folder`` (links inside it are not followed: a run that
+    replaces or deletes a link leaves what it points at alone)."""
+    found = {}
+    for root, _, names in os.walk(folder):
+        for name in names:
+            entry = Path(root, name)
+            try:
+                info = os.lstat(entry)
+            except OSError:
+                continue
+            found[(info.st_dev, info.st_ino)] = entry
+    return found
+
+
+def _inside(path: str, folder: str) -> bool:
+    try:
+        return os.path.commonpath([path, folder]) == folder
+    except ValueError:  # different drives
         return False
 
 
+def _named_paths(items) -> list:
+    """(label, path) pairs from a path, a sequence of paths or (label, path) pairs, or a dict label -> path;
+    None entries are skipped."""
+    if items is None:
+        return []
+    if isinstance(items, (str, os.PathLike)):
+        items = [items]
+    elif isinstance(items, dict):
+        items = list(items.items())
+    pairs = []
+    for item in items:
+        label, path = item if isinstance(item, tuple) else (None, item)
+        if path is not None:
+            pairs.append((label, Path(path)))
+    return pairs
+
+
+def protect_inputs(inputs, *, files=(), folders=(), remedy: str = "choose another output path") -> None:
+    """Refuse, before anything is written, outputs that would replace or remove one of the inputs.
+
+    Every output of a run is checked against every input by its resolved
+    path (symbolic links and ``..`` followed) and by its file identity
+    (device and inode: a hard link is the same file under another name).
+
+    Parameters
+    ----------
+    inputs : path, sequence of paths or (role, path) pairs, or dict role -> path
+        The files the run reads (None entries are skipped). A role
+        (``"inputs.traces"``, ``"INPUT"``) is named in the message.
+    files : same forms as ``inputs``
+        Files the run writes (replaced whole, through :func:`atomic_output`).
+    folders : same forms as ``inputs``
+        Folders the run owns and may fill, replace or delete (a work
+        folder, the report's figures): no input may lie inside one.
+    remedy : str
+        What the user can change, ending the message ("choose another
+        --out").
+
+    Raises
+    ------
+    calcium._checks.OutputOverInputError
+        (a ValueError) naming the output, the input and ``remedy``.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     data = os.path.join(folder, "traces.csv")
+    ...     open(data, "w").close()
+    ...     os.link(data, os.path.join(folder, "spikes.csv"))       # the same file under a second name
+    ...     try:
+    ...         protect_inputs({"traces": data}, files=[os.path.join(folder, "spikes.csv")])
+    ...     except ValueError as exc:
+    ...         print(type(exc).__name__)
+    OutputOverInputError
+    """
+    sources = []
+    for label, path in _named_paths(inputs):
+        sources.append((label, path, os.path.realpath(path), _identity(path)))
+    if not sources:
+        return
+
+    def refuse(output, label, path, how):
+        role = f" ({label})" if label else ""
+        raise OutputOverInputError(f"refusing to write {output}: {how} the input file {path}{role}; {remedy}")
+
+    for _, output in _named_paths(files):
+        real, identity = os.path.realpath(output), _identity(output)
+        for label, path, source_real, source_identity in sources:
+            if real == source_real:
+                refuse(output, label, path, "it is")
+            if identity is not None and identity == source_identity:
+                refuse(output, label, path, "it is a link to")
+    for _, folder in _named_paths(folders):
+        real = os.path.realpath(folder)
+        for label, path, source_real, _ in sources:
+            if _inside(source_real, real):
+                refuse(folder, label, path, "this folder is written by the run and holds")
+        if os.path.isdir(folder):
+            entries = _entry_identities(Path(real))
+            for label, path, _, source_identity in sources:
+                if source_identity in entries:
+                    refuse(entries[source_identity], label, path, "it is a link to")
+
+
 def _refuse_inputs(path: Path, inputs) -> None:
-    if isinstance(inputs, (str, os.PathLike)):
-        inputs = (inputs,)
-    target = Path(os.path.abspath(path))
-    for item in inputs:
-        source = Path(os.path.abspath(item))
-        if source == target or _same_file(source, target):
-            raise ValueError(f"refusing to write {path}: it is one of the input files ({item}); "
-                             f"choose another output path")
+    """:func:`protect_inputs` for one output file."""
+    protect_inputs(inputs, files=[path])
 
 
 @contextlib.contextmanager
@@ -165,7 +271,9 @@ def atomic_output(path, *, inputs=()):
     Raises
     ------
     ValueError
-        If ``path`` is one of ``inputs``, is a folder, or its folder does not exist.
+        If ``path`` is one of ``inputs`` (by path or file identity, see
+        :func:`protect_inputs`; then :class:`~calcium._checks.OutputOverInputError`),
+        is a folder, or its folder does not exist.
 
     Examples
     --------

@@ -327,6 +327,40 @@ def _output_folder(config: RunConfig) -> Path:
     return check_output_folder(folder)
 
 
+def _run_input_paths(config: RunConfig) -> dict:
+    """Every file a run reads, by its key: the configuration file and each path of every section (a new
+    path key of any section is an input too), except output.folder."""
+    import dataclasses
+
+    found = {"configuration file": config.source}
+    for section in dataclasses.fields(config):
+        values = getattr(config, section.name)
+        if not dataclasses.is_dataclass(values):
+            continue
+        for key in dataclasses.fields(values):
+            value = getattr(values, key.name)
+            if isinstance(value, Path) and (section.name, key.name) != ("output", "folder"):
+                found[f"{section.name}.{key.name}"] = value
+    return found
+
+
+def _protect_run_inputs(config: RunConfig) -> None:
+    """Refuse a run whose outputs (results, spike table, report, NWB, work folder) would replace an input."""
+    from ..io.results import protect_inputs
+
+    folder = config.output.folder
+    files = [folder / RESULTS_NAME, folder / SPIKES_NAME]
+    folders = [folder / _WORK_FOLDER]
+    if config.report.enabled:
+        files.append(folder / REPORT_FOLDER / "index.html")
+        folders.append(folder / REPORT_FOLDER / "figures")
+    if config.nwb.enabled:
+        files.append(folder / NWB_NAME)
+    protect_inputs(_run_input_paths(config), files=files, folders=folders,
+                   remedy="choose another output.folder, or move the input out of the way (--overwrite only "
+                          "ever replaces outputs)")
+
+
 def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = True) -> RunSummary:
     """Analyse a whole session as configured: ΔF/F, filter, inference, quality, fits, report.
 
@@ -359,6 +393,12 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     OutputMismatchError
         The output folder holds results of a different run and
         ``overwrite`` is False.
+    calcium._checks.OutputOverInputError
+        An output (results, spike table, report, NWB file, work folder)
+        would replace an input (configuration file, traces, movie, masks,
+        electrical spikes, or any other path of the configuration), by path
+        or as a link; raised before anything is written, ``overwrite`` or
+        not.
     KeyboardInterrupt
         On Ctrl-C, after the finished chunks were saved: rerun to continue.
 
@@ -377,6 +417,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     """
     started = time.perf_counter()
     config = config_or_path if isinstance(config_or_path, RunConfig) else load_config(config_or_path)
+    _protect_run_inputs(config)  # before anything is written
     # the workers' fork server warms up while the inputs are checked
     prestart(config.execution.backend, scheduler=config.execution.scheduler)
     folder = _output_folder(config)
@@ -662,8 +703,9 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
 
     Raises
     ------
-    ConfigError, calcium._checks.CalciumInputError, OutputError, OutputMismatchError
-        As :func:`run_pipeline`.
+    ConfigError, calcium._checks.CalciumInputError, OutputError, OutputMismatchError, OutputOverInputError
+        As :func:`run_pipeline` (``out``, the spike table beside it and the
+        work folder may not be ``path``, by path or as a link).
     """
     from ..io import file_sha256
 
@@ -681,14 +723,15 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         chunk_rois = check_int(chunk_rois, "chunk_rois", minimum=1)
     folder = check_output_folder(out.parent if str(out.parent) else Path("."))
     spikes_path = out.with_suffix(".csv")
-    for target in (out, spikes_path):
-        if target.exists() and os.path.samefile(target, path):
-            raise ValueError(f"refusing to write {target}: it is the input file")
+    work = folder / f".{out.stem}.calcium-work"
+    from ..io.results import protect_inputs
+
+    protect_inputs({"the ΔF/F file": path}, files=[out, spikes_path], folders=[work],
+                   remedy="choose another out (--out)")
     if spikes_path.exists() and not out.exists() and not overwrite:
         # a spike table of this run is only ever rewritten from its own results file
         raise ValueError(f"{spikes_path} already exists (the spike table goes beside {out.name}); pass "
                          f"overwrite=True (--overwrite) or choose another output")
-    work = folder / f".{out.stem}.calcium-work"
     prestart(backend)
     sha = file_sha256(path)
     source, found = _trace_source(path, dataset, work, sha, "the ΔF/F file")
@@ -825,6 +868,24 @@ def _half_decays(rise, decay) -> np.ndarray:
     return out
 
 
+def _recorded_input(results_path: Path, role: str):
+    """The path of input ``role`` recorded in a results file, or None (also when the file is unreadable)."""
+    try:
+        with open_results(results_path, allow_incomplete=True) as results:
+            return (results.attrs.get("inputs") or {}).get(role, {}).get("path")
+    except (OSError, ValueError, KeyError, AttributeError):
+        return None
+
+
+def _protect_report_inputs(results_path: Path, folder: Path) -> None:
+    """Refuse a report whose page or figures would replace the results file or the spikes file it reads."""
+    from ..io.results import protect_inputs
+
+    inputs = {"results": results_path, "electrical spikes": _recorded_input(results_path, "electrical_spikes")}
+    protect_inputs(inputs, files=[folder / "index.html"], folders=[folder / "figures"],
+                   remedy="choose another report folder")
+
+
 def write_session_report(results_path, folder, *, n_examples: int = 6, electrical_spikes=None, indicator=None,
                          progress=False) -> Path:
     """Write the HTML report of a results file into ``folder`` and return the path of its ``index.html``.
@@ -849,11 +910,20 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
     Returns
     -------
     pathlib.Path
+
+    Raises
+    ------
+    calcium._checks.OutputOverInputError
+        ``folder/index.html`` or a file of ``folder/figures`` would replace
+        the results file or the electrical spikes file it reads (checked
+        before anything is written).
     """
     from ..report import (HtmlReport, distribution_figure, kernel_figure, noise_figure, raster_figure,
                           score_figure, stages_figure)
 
     results_path = Path(results_path)
+    folder = Path(folder)
+    _protect_report_inputs(results_path, folder)
     with open_results(results_path) as results:
         rate, n_rois, n_frames = results.frame_rate, results.n_rois, results.n_frames
         attrs = results.attrs
@@ -975,6 +1045,10 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
                  per_roi["snr"][i], int(per_roi["missing_frames"][i]), per_roi["f0_min"][i],
                  per_roi["kernel_decay_s"][i], stages.describe_flags(flags[i])] for i in range(n_rois)]
         report.add_table(header, rows, caption=f"All {n_rois} ROIs.", flags=[str(f) for f in per_roi["flags"]])
+    # a report left half-written (a full disk) must not pass for a finished one: the old page goes first,
+    # the new one is written last, after its figures
+    with contextlib.suppress(FileNotFoundError):
+        (folder / "index.html").unlink()
     page = report.write(folder)
     _say(progress, f"report: {page}")
     return page

@@ -1,0 +1,218 @@
+"""Faults and bad inputs, tried as a careful user would: every case names its expected outcome.
+
+For each case the suite checks the outcome (exit code and a fragment of the one-line message, or the flag in
+the results), that every input file has the same SHA-256 before and after, and that nothing is left behind
+that passes for a finished output.
+
+Cases by outcome
+----------------
+refused before anything is written (exit 1, the message names the output and the input; inputs unchanged):
+    run: output.folder "." with electrical_spikes = "spikes.csv" in it; a traces CSV named spikes.csv in the
+    output folder; --overwrite with traces = "results.h5" in the output folder; the spike table a hard link to
+    the electrical spikes; the output folder a symbolic link to the inputs' folder; an input inside the work
+    folder; the configuration file itself named spikes.csv in the output folder;
+    dff --out a hard link / a symbolic link to the input (with --overwrite); filter --plot a link to the
+    input; predict --out the spike file; infer whose spike table (beside --out) is the input CSV;
+    fit-kernel and score --out folders holding an input under an output name; report with the results file
+    inside the report's figures folder; export-nwb --out a hard link to the results; extract --out the masks.
+"""
+import hashlib
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from calcium.cli import main
+from calcium.forward import simulate_recording
+from calcium.io import write_spike_table, write_traces
+
+RATE = 20.0
+
+
+def _sha(path: Path) -> str:
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def _files(folder: Path) -> dict:
+    """Every file under ``folder`` (links included, not followed) -> its SHA-256 (None for a dangling link)."""
+    out = {}
+    for root, _, names in os.walk(folder):
+        for name in names:
+            path = Path(root, name)
+            out[path.relative_to(folder)] = _sha(path) if path.exists() else None
+    return out
+
+
+@pytest.fixture(scope="module")
+def recording():
+    return simulate_recording(3, 20.0, RATE, indicator="GCaMP6f", rate_hz=0.5, noise_sd=0.03, seed=3)
+
+
+@pytest.fixture
+def session(tmp_path, recording, monkeypatch):
+    """A folder with raw traces (HDF5 and CSV), ΔF/F traces, electrical spikes; the working folder."""
+    write_traces(tmp_path / "traces.h5", recording.raw, frame_rate=RATE)
+    write_traces(tmp_path / "traces.csv", recording.raw, frame_rate=RATE)
+    write_traces(tmp_path / "dff.csv", recording.dff, frame_rate=RATE)
+    write_spike_table(tmp_path / "ephys.csv", {0: recording.spike_times[0]})
+    monkeypatch.chdir(tmp_path)
+    return tmp_path
+
+
+def _toml(path: Path, **sections) -> Path:
+    lines = []
+    for name, keys in sections.items():
+        lines.append(f"[{name}]")
+        lines += [f"{key} = {value!r}".replace("'", '"') if isinstance(value, str) else
+                  f"{key} = {str(value).lower() if isinstance(value, bool) else value}"
+                  for key, value in keys.items()]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def _run_config(folder: Path, name="run.toml", **inputs) -> Path:
+    return _toml(folder / name, inputs=inputs, output={"folder": "."}, report={"enabled": False},
+                 execution={"backend": "serial"}, kernel_fit={"n_bootstrap": 0})
+
+
+# ---------------------------------------------------------------------------
+# data that must never be lost: refused before anything is written
+# ---------------------------------------------------------------------------
+def _run_electrical_spikes_in_output_folder(s):
+    os.replace(s / "ephys.csv", s / "spikes.csv")
+    return ["run", str(_run_config(s, traces="traces.h5", electrical_spikes="spikes.csv"))], "spikes.csv"
+
+
+def _run_traces_named_like_the_spike_table(s):
+    os.replace(s / "traces.csv", s / "spikes.csv")
+    return ["run", str(_run_config(s, traces="spikes.csv", frame_rate=RATE))], "spikes.csv"
+
+
+def _run_overwrite_with_traces_named_like_the_results(s):
+    os.replace(s / "traces.h5", s / "results.h5")
+    return ["run", str(_run_config(s, traces="results.h5")), "--overwrite"], "results.h5"
+
+
+def _run_spike_table_a_hard_link_to_the_electrical_spikes(s):
+    (s / "ephys").mkdir()
+    os.replace(s / "ephys.csv", s / "ephys" / "cell.csv")
+    os.link(s / "ephys" / "cell.csv", s / "spikes.csv")
+    return ["run", str(_run_config(s, traces="traces.h5", electrical_spikes="ephys/cell.csv"))], "link"
+
+
+def _run_output_folder_a_symbolic_link_to_the_inputs(s):
+    (s / "out").symlink_to(s, target_is_directory=True)
+    os.replace(s / "ephys.csv", s / "spikes.csv")
+    config = _toml(s / "run.toml", inputs={"traces": "traces.h5", "electrical_spikes": "spikes.csv"},
+                   output={"folder": "out"}, report={"enabled": False}, execution={"backend": "serial"})
+    return ["run", str(config)], "spikes.csv"
+
+
+def _run_input_inside_the_work_folder(s):
+    (s / ".calcium-work").mkdir()
+    os.replace(s / "traces.h5", s / ".calcium-work" / "traces.h5")
+    return ["run", str(_run_config(s, traces=".calcium-work/traces.h5"))], "folder"
+
+
+def _run_configuration_file_named_like_the_spike_table(s):
+    return ["run", str(_run_config(s, name="spikes.csv", traces="traces.h5"))], "configuration file"
+
+
+def _dff_out_a_hard_link_to_the_input(s):
+    os.link(s / "traces.h5", s / "out.h5")
+    return ["dff", "traces.h5", "--out", "out.h5", "--overwrite"], "link"
+
+
+def _dff_out_a_symbolic_link_to_the_input(s):
+    (s / "out.h5").symlink_to(s / "traces.h5")
+    return ["dff", "traces.h5", "--out", "out.h5", "--overwrite"], "--out"
+
+
+def _filter_plot_a_link_to_the_input(s):
+    (s / "response.png").symlink_to(s / "traces.h5")
+    return ["filter", "traces.h5", "--kind", "lowpass", "--cutoff-hz", "2", "--out", "f.h5", "--plot",
+            "response.png", "--overwrite"], "--plot"
+
+
+def _predict_out_the_spike_file(s):
+    return ["predict", "ephys.csv", "--frame-rate", "20", "--indicator", "GCaMP6f", "--out", "ephys.csv",
+            "--overwrite"], "ephys.csv"
+
+
+def _infer_spike_table_beside_out_is_the_input(s):
+    return ["infer", "dff.csv", "--indicator", "GCaMP6f", "--out", "dff.h5", "--workers", "1"], "dff.csv"
+
+
+def _fit_kernel_folder_holding_the_spikes_as_its_table(s):
+    (s / "fit").mkdir()
+    os.replace(s / "ephys.csv", s / "fit" / "kernel_fit.csv")
+    return ["fit-kernel", "dff.csv", "fit/kernel_fit.csv", "--out", "fit", "--overwrite"], "kernel_fit.csv"
+
+
+def _score_folder_holding_an_input_as_its_table(s):
+    (s / "scores").mkdir()
+    os.replace(s / "ephys.csv", s / "scores" / "scores.csv")
+    return ["score", "scores/scores.csv", "scores/scores.csv", "--out", "scores", "--overwrite"], "scores.csv"
+
+
+def _report_results_inside_its_figures_folder(s):
+    (s / "report" / "figures").mkdir(parents=True)
+    os.replace(s / "traces.h5", s / "report" / "figures" / "results.h5")
+    return ["report", "report/figures/results.h5", "--out", "report", "--overwrite"], "figures"
+
+
+def _export_nwb_out_a_hard_link_to_the_results(s):
+    os.link(s / "traces.h5", s / "session.nwb")
+    return ["export-nwb", "traces.h5", "--out", "session.nwb", "--overwrite"], "link"
+
+
+def _extract_out_the_masks(s):
+    masks = np.zeros((2, 8, 8), dtype=bool)
+    masks[0, 1:3, 1:3] = masks[1, 5:7, 5:7] = True
+    np.save(s / "masks.npy", masks)
+    np.save(s / "movie.npy", np.ones((10, 8, 8), dtype=np.float32))
+    return ["extract", "movie.npy", "masks.npy", "--out", "masks.npy", "--overwrite"], "masks.npy"
+
+
+PROTECTED = [_run_electrical_spikes_in_output_folder, _run_traces_named_like_the_spike_table,
+             _run_overwrite_with_traces_named_like_the_results, _run_spike_table_a_hard_link_to_the_electrical_spikes,
+             _run_output_folder_a_symbolic_link_to_the_inputs, _run_input_inside_the_work_folder,
+             _run_configuration_file_named_like_the_spike_table, _dff_out_a_hard_link_to_the_input,
+             _dff_out_a_symbolic_link_to_the_input, _filter_plot_a_link_to_the_input, _predict_out_the_spike_file,
+             _infer_spike_table_beside_out_is_the_input, _fit_kernel_folder_holding_the_spikes_as_its_table,
+             _score_folder_holding_an_input_as_its_table, _report_results_inside_its_figures_folder,
+             _export_nwb_out_a_hard_link_to_the_results, _extract_out_the_masks]
+
+
+@pytest.mark.parametrize("case", PROTECTED, ids=lambda case: case.__name__.strip("_"))
+def test_an_output_over_an_input_is_refused_before_anything_is_written(session, case, capsys):
+    argv, fragment = case(session)
+    before = _files(session)
+    assert main([*argv, "--quiet"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "refusing to write" in err[0] and fragment in err[0], err
+    assert _files(session) == before  # every input byte for byte, and no output at all
+
+
+def test_protect_inputs_names_the_role_and_compares_by_identity(tmp_path):
+    # Reference: os.stat's (st_dev, st_ino) identify a file whatever its name (POSIX).
+    from calcium._checks import OutputOverInputError
+    from calcium.io.results import protect_inputs
+
+    data = tmp_path / "a" / "traces.csv"
+    data.parent.mkdir()
+    data.write_text("1,2\n")
+    protect_inputs({"traces": data}, files=[tmp_path / "spikes.csv"], folders=[tmp_path / "work"])  # unrelated
+    os.link(data, tmp_path / "spikes.csv")
+    with pytest.raises(OutputOverInputError, match=r"a link to the input file .*traces\.csv \(traces\); fix it"):
+        protect_inputs({"traces": data}, files=[tmp_path / "spikes.csv"], remedy="fix it")
+    with pytest.raises(OutputOverInputError, match="holds"):
+        protect_inputs([data], folders=[tmp_path / "a" / ".." / "a"])
+    (tmp_path / "work").mkdir()
+    os.link(data, tmp_path / "work" / "copy.csv")  # a run that empties its work folder would only unlink it,
+    with pytest.raises(OutputOverInputError):      # but the work folder is the run's: refused all the same
+        protect_inputs([data], folders=[tmp_path / "work"])
+    (tmp_path / "links").mkdir()
+    (tmp_path / "links" / "pointer.csv").symlink_to(data)  # replacing a symbolic link leaves its target alone
+    protect_inputs([data], folders=[tmp_path / "links"])
