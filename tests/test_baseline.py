@@ -120,6 +120,22 @@ def test_non_positive_f0_is_refused_naming_the_roi_and_the_fixes():
         delta_f_over_f(raw[2], FRAME_RATE)
 
 
+@pytest.mark.parametrize("dark", ["all zero", "zero most of the time"])
+def test_f0_of_exactly_zero_is_refused_naming_the_roi_not_divided_by(dark):
+    # A dark ROI (no photons most of the time) has F0 = 0 exactly: a ValueError naming it, never a division.
+    raw = np.full((3, 3000), 50.0)
+    raw[1] = 0.0
+    if dark == "zero most of the time":
+        raw[1, ::40] = 1.0  # a photon now and then: the 8th percentile stays 0
+    with pytest.raises(ValueError, match=r"exactly 0 in ROI\(s\) 1 ") as info:
+        delta_f_over_f(raw, FRAME_RATE, smooth_s=0.0)
+    assert ("every frame is 0" in str(info.value)) == (dark == "all zero")
+    with pytest.raises(ValueError, match="exactly 0 in the trace"):
+        delta_f_over_f(raw[1], FRAME_RATE)
+    result = delta_f_over_f(raw, FRAME_RATE, floor=1.0)  # the remedy the message names
+    np.testing.assert_array_equal(result.f0[1], 1.0)
+
+
 def test_floor_clips_f0_from_below_instead_of_failing():
     raw = np.full((2, 3000), 50.0)
     raw[1] = 2.0

@@ -547,6 +547,8 @@ def _delta_f(x, missing, frame_rate, window_s, percentile, smooth_s, floor, *, k
     # Each knot's window is copied before the percentile: size the chunks of
     # ROIs by the larger of the trace and that copy.
     per_row = max(n, grid.starts.size * grid.window)
+    # The knots of every row first (a few per window): F0 is checked before any division by it.
+    parts = []
     for part in row_chunks(rows.shape[0], per_row):
         hole = miss_rows[part]
         finite = ~hole if missing.per_roi[part].any() else None
@@ -554,17 +556,30 @@ def _delta_f(x, missing, frame_rate, window_s, percentile, smooth_s, floor, *, k
         if floor is not None:
             np.maximum(knots, floor, out=knots)
         lowest_knot[part] = knots.min(axis=1)
+        parts.append((part, knots))
+    if floor is None and not (lowest_knot > 0).all():
+        raise ValueError(_non_positive_f0_message(x, lowest_knot, percentile))
+    for part, knots in parts:
         _baseline_and_dff(rows[part], knots, grid.knot_frames, f0[part] if keep_f0 else f0, dff[part], lowest[part],
                           -np.inf if floor is None else floor, at_floor[part])
+    return dff, (f0 if keep_f0 else None), lowest, at_floor
 
-    if floor is None and not (lowest_knot > 0).all():
-        bad = np.flatnonzero(~(lowest_knot > 0))
-        where = "the trace" if x.ndim == 1 else "ROI(s) " + ", ".join(str(int(i)) for i in bad[:10])
-        if bad.size > 10:
-            where += f" and {bad.size - 10} more"
-        raise ValueError(
-            f"F0 (running percentile {percentile:g} of the smoothed trace) is <= 0 in {where} (lowest F0 "
+
+def _non_positive_f0_message(x: np.ndarray, lowest_knot: np.ndarray, percentile: float) -> str:
+    """Why ΔF/F is undefined: the ROIs whose F0 is <= 0 (or exactly 0, as in a dark or empty ROI) and the fixes."""
+    bad = np.flatnonzero(~(lowest_knot > 0))
+    where = "the trace" if x.ndim == 1 else "ROI(s) " + ", ".join(str(int(i)) for i in bad[:10])
+    if bad.size > 10:
+        where += f" and {bad.size - 10} more"
+    rows = x.reshape(-1, x.shape[-1])
+    if np.all(lowest_knot[bad] == 0):
+        empty = any(not np.any(rows[i][np.isfinite(rows[i])]) for i in bad)
+        what = "every frame is 0: " if empty else ""
+        return (f"F0 (running percentile {percentile:g} of the smoothed trace) is exactly 0 in {where} ({what}a "
+                f"ROI without signal, or too few photons), so ΔF/F is undefined there. Likely fixes: check the "
+                f"ROI masks; or add a constant offset to the traces; or pass floor=<positive value> to clip F0 "
+                f"from below.")
+    return (f"F0 (running percentile {percentile:g} of the smoothed trace) is <= 0 in {where} (lowest F0 "
             f"{float(np.nanmin(lowest_knot[bad])):.4g}), so ΔF/F is undefined there. Likely fixes: the neuropil "
             f"factor is too large (too much neuropil was subtracted: lower it); or add a constant offset "
             f"to the traces; or pass floor=<positive value> to clip F0 from below.")
-    return dff, (f0 if keep_f0 else None), lowest, at_floor
