@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 from pathlib import Path
@@ -27,6 +28,25 @@ class UsageError(CommandError):
 
 
 # --------------------------------------------------------------------------- helpers
+
+def _finite(text: str) -> float:
+    """argparse type: a finite number (NaN and inf are usage errors, exit code 2)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
+    return value
+
+
+def _positive(text: str) -> float:
+    """argparse type: a positive finite number (frame rates in Hz, durations in seconds)."""
+    value = _finite(text)
+    if value <= 0:
+        raise argparse.ArgumentTypeError(f"must be a positive number, got {text!r}")
+    return value
+
 
 def _fail(path, exc, *, also=()) -> CommandError:
     """Wrap an exception so the message names the file once (``path``, unless it names one of ``also``)."""
@@ -120,9 +140,9 @@ def _say(args, text: str) -> None:
 def _add_kernel_options(p, *, help_suffix=""):
     g = p.add_argument_group("indicator kinetics" + help_suffix)
     g.add_argument("--indicator", help="indicator name from `calcium indicators` (e.g. GCaMP6s)")
-    g.add_argument("--rise-s", type=float, help="rise time constant in seconds (0 = instantaneous)")
-    g.add_argument("--decay-s", type=float, help="decay time constant in seconds")
-    g.add_argument("--amplitude", type=float, help="peak ΔF/F of one spike")
+    g.add_argument("--rise-s", type=_finite, help="rise time constant in seconds (0 = instantaneous)")
+    g.add_argument("--decay-s", type=_finite, help="decay time constant in seconds")
+    g.add_argument("--amplitude", type=_finite, help="peak ΔF/F of one spike")
 
 
 # --------------------------------------------------------------------------- commands
@@ -510,7 +530,7 @@ def build_parser() -> argparse.ArgumentParser:
     def traces_input(p, name="input"):
         p.add_argument(name, help="trace file: .npy, .csv (one column per ROI, optional time_s column) or .h5")
         p.add_argument("--dataset", help="dataset name inside an HDF5 file")
-        p.add_argument("--frame-rate", type=float, help="frames per second (Hz); read from the file when it has it")
+        p.add_argument("--frame-rate", type=_positive, help="frames per second (Hz); read from the file when it has it")
 
     def output(p, required=True, help_text="output file"):
         p.add_argument("--out", required=required, help=help_text)
@@ -523,24 +543,24 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("extract", cmd_extract, "movie + ROI masks -> neuropil-corrected fluorescence traces")
     p.add_argument("movie", help="TIFF movie (frames, height, width)")
     p.add_argument("masks", help="ROI masks: label image (0 = background) or boolean stack (.tif/.npy)")
-    p.add_argument("--frame-rate", type=float, help="frames per second (Hz), stored with the traces")
-    p.add_argument("--gap-px", type=float, default=2.0, help="gap between ROI and neuropil ring (pixels)")
-    p.add_argument("--radius-px", type=float, default=15.0, help="outer radius of the neuropil ring (pixels)")
+    p.add_argument("--frame-rate", type=_positive, help="frames per second (Hz), stored with the traces")
+    p.add_argument("--gap-px", type=_finite, default=2.0, help="gap between ROI and neuropil ring (pixels)")
+    p.add_argument("--radius-px", type=_finite, default=15.0, help="outer radius of the neuropil ring (pixels)")
     p.add_argument("--neuropil-factor", default="0.7", help="r in F - r*F_neuropil, or 'estimate' (per ROI)")
     p.add_argument("--chunk-frames", type=int, default=500, help="frames read at a time")
     output(p, help_text="output traces (.h5 keeps ROI, neuropil and factors; .npy/.csv: corrected only)")
 
     p = add("dff", cmd_dff, "raw fluorescence -> ΔF/F with a running-percentile baseline F0")
     traces_input(p)
-    p.add_argument("--window-s", type=float, default=60.0, help="baseline window in seconds (default 60)")
-    p.add_argument("--percentile", type=float, default=8.0, help="baseline percentile (default 8)")
-    p.add_argument("--floor", type=float, help="lowest allowed F0 (otherwise F0 <= 0 is an error)")
+    p.add_argument("--window-s", type=_positive, default=60.0, help="baseline window in seconds (default 60)")
+    p.add_argument("--percentile", type=_finite, default=8.0, help="baseline percentile (default 8)")
+    p.add_argument("--floor", type=_finite, help="lowest allowed F0 (otherwise F0 <= 0 is an error)")
     output(p, help_text="output file (.h5 also stores F0)")
 
     p = add("filter", cmd_filter, "zero-phase filter traces (low/high/band-pass, band-stop)")
     traces_input(p)
     p.add_argument("--kind", required=True, choices=["lowpass", "highpass", "bandpass", "bandstop"])
-    p.add_argument("--cutoff-hz", type=float, nargs="+", required=True,
+    p.add_argument("--cutoff-hz", type=_positive, nargs="+", required=True,
                    help="cut-off in Hz (two values for bandpass/bandstop)")
     p.add_argument("--order", type=int, default=4, help="filter order (FIR: taps - 1)")
     p.add_argument("--method", choices=["butterworth", "fir"], default="butterworth")
@@ -559,20 +579,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder")
     p.add_argument("--overwrite", action="store_true", help="write into a non-empty folder")
     p.add_argument("--rois", type=int, default=10)
-    p.add_argument("--duration-s", type=float, default=60.0)
-    p.add_argument("--frame-rate", type=float, default=30.0)
-    p.add_argument("--rate-hz", type=float, default=0.5, help="mean firing rate per ROI")
-    p.add_argument("--noise-sd", type=float, help="ΔF/F noise s.d. (instead of a photon budget)")
-    p.add_argument("--photons-per-frame", type=float, help="photons per frame at baseline (shot noise)")
+    p.add_argument("--duration-s", type=_positive, default=60.0)
+    p.add_argument("--frame-rate", type=_positive, default=30.0)
+    p.add_argument("--rate-hz", type=_finite, default=0.5, help="mean firing rate per ROI")
+    p.add_argument("--noise-sd", type=_finite, help="ΔF/F noise s.d. (instead of a photon budget)")
+    p.add_argument("--photons-per-frame", type=_finite, help="photons per frame at baseline (shot noise)")
     p.add_argument("--seed", type=int, default=0)
     _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
 
     p = add("predict", cmd_predict, "spike times -> predicted ΔF/F per frame (forward model)")
     p.add_argument("spikes", help="spike CSV: roi,time_s or one time per line")
-    p.add_argument("--frame-rate", type=float, required=True)
-    p.add_argument("--duration-s", type=float, help="recording length (default: last spike + 5 decays)")
-    p.add_argument("--scan-offset-s", type=float, default=0.0, help="time the scanner reaches the ROI in a frame")
-    p.add_argument("--exposure-s", type=float, help="average over an exposure window instead of a point sample")
+    p.add_argument("--frame-rate", type=_positive, required=True)
+    p.add_argument("--duration-s", type=_positive, help="recording length (default: last spike + 5 decays)")
+    p.add_argument("--scan-offset-s", type=_finite, default=0.0, help="time the scanner reaches the ROI in a frame")
+    p.add_argument("--exposure-s", type=_finite, help="average over an exposure window instead of a point sample")
     p.add_argument("--plot", help="also write a PNG plot")
     _add_kernel_options(p)
     output(p, help_text="output traces (.h5, .npy or .csv)")
@@ -587,32 +607,32 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("trace", help="ΔF/F trace file")
     p.add_argument("spikes", help="spike CSV (roi,time_s or one time per line)")
     p.add_argument("--dataset", help="dataset name inside an HDF5 file")
-    p.add_argument("--frame-rate", type=float, help="frames per second (Hz)")
+    p.add_argument("--frame-rate", type=_positive, help="frames per second (Hz)")
     p.add_argument("--roi", type=int, default=0, help="which ROI of the trace file (default 0)")
     p.add_argument("--spike-roi", type=int, help="which ROI of the spike file (default: same as --roi)")
     p.add_argument("--indicator", help="indicator to start from and to check against")
     p.add_argument("--model", choices=["double-exponential", "free"], default="double-exponential")
     p.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples for the intervals")
-    p.add_argument("--max-lag-s", type=float, default=1.0, help="largest clock offset searched, in seconds")
-    p.add_argument("--temperature-c", type=float, help="recording temperature, for the kinetics check")
+    p.add_argument("--max-lag-s", type=_positive, default=1.0, help="largest clock offset searched, in seconds")
+    p.add_argument("--temperature-c", type=_finite, help="recording temperature, for the kinetics check")
     p.add_argument("--seed", type=int, default=0)
     output(p, required=False, help_text="folder for the table and figure")
 
     p = add("score", cmd_score, "score inferred spikes against true (electrical) spike times")
     p.add_argument("inferred", help="inferred spike CSV")
     p.add_argument("true", help="true spike CSV")
-    p.add_argument("--tolerance-s", type=float, default=0.1, help="matching tolerance in seconds")
-    p.add_argument("--bin-widths-s", type=float, nargs="+", default=[0.1, 0.2, 0.5, 1.0],
+    p.add_argument("--tolerance-s", type=_positive, default=0.1, help="matching tolerance in seconds")
+    p.add_argument("--bin-widths-s", type=_positive, nargs="+", default=[0.1, 0.2, 0.5, 1.0],
                    help="bin widths for the count correlations")
     output(p, required=False, help_text="folder for the table and figure")
 
     p = add("plan", cmd_plan, "will single spikes be detectable? sweep frame rate and noise by simulation")
     _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
-    p.add_argument("--frame-rates", type=float, nargs="+", default=[7.5, 15.0, 30.0, 60.0])
-    p.add_argument("--noise-sd", type=float, nargs="+", help="ΔF/F noise s.d. levels")
-    p.add_argument("--photons", type=float, nargs="+", help="photons per frame at baseline (instead of noise)")
+    p.add_argument("--frame-rates", type=_positive, nargs="+", default=[7.5, 15.0, 30.0, 60.0])
+    p.add_argument("--noise-sd", type=_finite, nargs="+", help="ΔF/F noise s.d. levels")
+    p.add_argument("--photons", type=_finite, nargs="+", help="photons per frame at baseline (instead of noise)")
     p.add_argument("--trials", type=int, default=200)
-    p.add_argument("--false-positive-rate", type=float, default=0.01)
+    p.add_argument("--false-positive-rate", type=_finite, default=0.01)
     p.add_argument("--seed", type=int, default=0)
     output(p, required=False, help_text="folder for the table and figure")
 

@@ -216,3 +216,27 @@ def test_protect_inputs_names_the_role_and_compares_by_identity(tmp_path):
     (tmp_path / "links").mkdir()
     (tmp_path / "links" / "pointer.csv").symlink_to(data)  # replacing a symbolic link leaves its target alone
     protect_inputs([data], folders=[tmp_path / "links"])
+
+
+# ---------------------------------------------------------------------------
+# options out of range: usage errors (exit 2) naming the flag, before any file is read or written
+# ---------------------------------------------------------------------------
+USAGE = [(["dff", "traces.h5", "--out", "o.h5"], "--frame-rate", value) for value in ("nan", "inf", "-30", "0")]
+USAGE += [(["noise", "traces.h5"], "--frame-rate", "nan"),
+          (["infer", "dff.csv", "--out", "o.h5"], "--frame-rate", "-inf"),
+          (["predict", "ephys.csv", "--indicator", "GCaMP6f", "--out", "p.h5"], "--frame-rate", "nan"),
+          (["fit-kernel", "dff.csv", "ephys.csv"], "--frame-rate", "nan"),
+          (["simulate", "--out", "sim"], "--duration-s", "nan"),
+          (["dff", "traces.h5", "--out", "o.h5"], "--window-s", "inf"),
+          (["plan"], "--frame-rates", "nan"),
+          (["dff", "traces.h5", "--out", "o.h5"], "--percentile", "nan")]
+
+
+@pytest.mark.parametrize("argv, flag, value", USAGE, ids=lambda v: v if isinstance(v, str) else None)
+def test_a_non_finite_or_non_positive_option_is_a_usage_error(session, argv, flag, value, capsys):
+    before = _files(session)
+    with pytest.raises(SystemExit) as exc:
+        main([*argv, f"{flag}={value}", "--quiet"])
+    assert exc.value.code == 2
+    assert f"argument {flag}" in capsys.readouterr().err
+    assert _files(session) == before
