@@ -35,7 +35,16 @@ import numpy as np
 
 from ._checks import check_frame_rate, check_int, check_nonnegative, check_positive
 
-__all__ = ["Kernel", "time_constants_from_half_times"]
+__all__ = ["Kernel", "time_constants_from_half_times", "DECAY_RANGE_S"]
+
+# Decay time constants a Kernel accepts (seconds), for the main and the slow component.
+# Lower end: calcium leaves the smallest neuronal compartments (dendritic spines) with time constants of about
+# 10-20 ms (Sabatini, Oertner & Svoboda 2002, Neuron 33:439, from memory), and indicators only slow that down;
+# 1 ms leaves a factor of ten below it, and equals the frame interval of a 1 kHz line scan.
+# Upper end: single-spike decays of the slowest common indicators are about a second (GCaMP6s; Chen et al. 2013,
+# Nature 499:295, from memory) and stay within seconds after bursts or in cold slices; a response slower than a
+# minute cannot be told from baseline drift, which ΔF/F baselines follow over windows of about a minute.
+DECAY_RANGE_S = (1e-3, 60.0)
 
 # Root-finding tolerances for the derived times: absolute tolerance relative
 # to the kernel's time scale, and the smallest relative tolerance brentq takes.
@@ -47,6 +56,19 @@ def _brentq(func, lo: float, hi: float, scale: float) -> float:
     from scipy.optimize import brentq  # (scipy.optimize takes a third of a second to import: only when needed)
 
     return float(brentq(func, lo, hi, xtol=_XTOL_FRACTION * scale, rtol=_RTOL, maxiter=500))
+
+
+def _check_decay(value, name: str) -> float:
+    """A decay time constant in seconds, inside DECAY_RANGE_S; the message suggests a unit slip."""
+    value = check_positive(value, name)
+    low, high = DECAY_RANGE_S
+    if low <= value <= high:
+        return value
+    text = (f"{name}={value!r} s is outside the range of calcium indicator decays ({low:g} to {high:g} s; "
+            f"single-spike decays of common indicators are 0.05-2 s)")
+    if value > high and low <= value / 1000.0 <= high:
+        text += f": if it is in milliseconds, give {value / 1000.0:g} s"
+    raise ValueError(text)
 
 
 @dataclass(frozen=True)
@@ -73,12 +95,14 @@ class Kernel:
         Rise time constant in seconds, ``0 <= rise_s < decay_s``; 0 means an
         instantaneous rise (a single exponential, AR(1) when sampled).
     decay_s : float
-        Decay time constant in seconds (> 0).
+        Decay time constant in seconds, within :data:`DECAY_RANGE_S`
+        (1 ms to 60 s; see the sources beside it).
     amplitude : float, default 1.0
         Peak ΔF/F of the linear response to one spike (> 0): the small-signal
         single-spike ΔF/F.  The nonlinearity below keeps this meaning.
     slow_decay_s : float or None, default None
-        Time constant of a second, slower decay component (> ``decay_s``).
+        Time constant of a second, slower decay component (> ``decay_s``,
+        within :data:`DECAY_RANGE_S`).
     slow_fraction : float, default 0.0
         Weight of the slow component, ``0 <= slow_fraction < 1``; must be > 0
         exactly when ``slow_decay_s`` is given.
@@ -143,7 +167,7 @@ class Kernel:
 
     def __post_init__(self):
         rise = check_nonnegative(self.rise_s, "rise_s")
-        decay = check_positive(self.decay_s, "decay_s")
+        decay = _check_decay(self.decay_s, "decay_s")
         amplitude = check_positive(self.amplitude, "amplitude")
         if rise >= decay:
             raise ValueError(f"rise_s must be smaller than decay_s, got rise_s={rise!r} >= decay_s={decay!r}")
@@ -152,7 +176,7 @@ class Kernel:
             raise ValueError(f"slow_fraction must be in [0, 1), got {fraction!r}")
         slow = self.slow_decay_s
         if slow is not None:
-            slow = check_positive(slow, "slow_decay_s")
+            slow = _check_decay(slow, "slow_decay_s")
             if slow <= decay:
                 raise ValueError(f"slow_decay_s must be larger than decay_s ({decay!r}), got {slow!r}")
             if fraction == 0.0:

@@ -1,5 +1,6 @@
 """Tests for calcium/io/traces.py: reading and writing traces as .npy, .csv and HDF5."""
 import hashlib
+import re
 import tempfile
 from pathlib import Path
 
@@ -62,7 +63,8 @@ def test_shapes_and_nan_positions_survive_any_round_trip(rois, frames, seed, suf
     traces = rng.normal(size=(rois, frames)) * 10.0 ** rng.integers(-5, 6)
     traces[rng.random(traces.shape) < nan_fraction] = np.nan
     with tempfile.TemporaryDirectory() as folder:
-        data = read_traces(write_traces(Path(folder) / f"t{suffix}", traces))
+        # (tiny random shapes, some with more ROIs than frames: the orientation check has tests of its own)
+        data = read_traces(write_traces(Path(folder) / f"t{suffix}", traces), orientation_check=False)
     assert data.traces.shape == traces.shape
     np.testing.assert_array_equal(np.isnan(data.traces), np.isnan(traces))
     np.testing.assert_array_equal(data.traces, traces)
@@ -231,4 +233,115 @@ def test_csv_time_step_much_shorter_than_a_frame_is_refused_not_merged(tmp_path)
     path = tmp_path / "short_step.csv"
     path.write_text("time_s,a\n0,1\n1,2\n1.05,3\n2,4\n3,5\n")
     with pytest.raises(CalciumInputError, match="uneven time spacing"):
+        read_traces(path)
+
+
+# --------------------------------------------------------------------------- garbage in: refused or flagged
+def _sha(path):
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+@pytest.mark.parametrize("suffix", FORMATS)
+def test_frames_by_rois_array_is_refused_and_the_file_is_left_alone(tmp_path, suffix):
+    # 5 ROIs of 600 frames stored as (frames, rois): read as 600 "ROIs" of 5 frames.
+    sideways = np.random.default_rng(0).normal(100.0, 3.0, size=(600, 5))
+    path = write_traces(tmp_path / f"sideways{suffix}", sideways)
+    before = _sha(path)
+    with pytest.raises(CalciumInputError, match=r"sideways.* 600 ROIs of 5 frame\(s\).*swapped.*Transpose"):
+        read_traces(path)
+    assert _sha(path) == before
+    assert read_traces(path, orientation_check=False).traces.shape == (600, 5)  # the user insists
+
+
+def test_a_csv_written_one_line_per_roi_is_refused(tmp_path):
+    # A table with one line per ROI and one column per frame (the package wants one column per ROI).
+    table = np.random.default_rng(1).normal(100.0, 3.0, size=(4, 300))
+    path = tmp_path / "per_roi_lines.csv"
+    path.write_text("\n".join(",".join(f"{v:.3f}" for v in row) for row in table) + "\n")
+    with pytest.raises(CalciumInputError, match=r"300 ROIs of 4 frame\(s\).*one line per ROI"):
+        read_traces(path)
+
+
+def test_more_rois_than_frames_but_not_tenfold_is_read_with_a_warning_and_a_flag(tmp_path):
+    path = write_traces(tmp_path / "wide.npy", np.ones((30, 20)))
+    with pytest.warns(UserWarning, match=r"30 ROIs of 20 frame\(s\).*more ROIs than frames"):
+        data = read_traces(path)
+    assert data.suspect_orientation and data.traces.shape == (30, 20)
+    assert not read_traces(write_traces(tmp_path / "tall.npy", np.ones((20, 30)))).suspect_orientation
+
+
+@pytest.mark.parametrize("name", ["Time (s)", "t", "frame"])
+def test_a_clock_column_under_an_unknown_header_is_not_read_as_a_roi(tmp_path, name):
+    path = tmp_path / "clock.csv"
+    step = 1.0 if name == "frame" else 1 / 30
+    rng = np.random.default_rng(2)
+    lines = [f"{name},cell 1,cell 2"] + [f"{k * step:.4f},{rng.normal(100, 3):.3f},{rng.normal(80, 3):.3f}"
+                                         for k in range(40)]
+    path.write_text("\n".join(lines) + "\n")
+    before = _sha(path)
+    with pytest.raises(CalciumInputError, match=rf"clock.csv: column 1 \('{re.escape(name)}'\) rises in even steps"):
+        read_traces(path)
+    assert _sha(path) == before
+    as_time = read_traces(path, time_column=name)  # the user names the time column
+    assert as_time.roi_names == ("cell 1", "cell 2") and as_time.frame_rate == pytest.approx(1 / step, rel=1e-3)
+    assert read_traces(path, time_column=None).n_rois == 3  # or insists that it is a ROI
+
+
+def test_a_headerless_clock_column_is_refused_too(tmp_path):
+    path = tmp_path / "noheader.csv"
+    path.write_text("".join(f"{k * 0.05:.2f},{100 + (k % 3)}\n" for k in range(20)))
+    with pytest.raises(CalciumInputError, match=r"column 1 \(no header\) rises in even steps of 0.05.*time_s"):
+        read_traces(path)
+    assert read_traces(path, time_column=0).frame_rate == pytest.approx(20.0)
+
+
+@pytest.mark.parametrize("text, fragment", [
+    ("time_s;a;b\n0;1.5;2\n0.1;1.6;2.1\n", r"separates its values with ';'; this reader"),
+    ("time_s;a;b\n0;1,5;2\n0,1;1,6;2,1\n", r"separates its values with ';' and decimal commas \(1,5 for 1.5\)"),
+    ("a\tb\n1,5\t2,25\n1,6\t2,5\n", r"line 2, column 1: '1,5' is not a number \(a decimal comma\?"),
+    ("a,b\n1,5,2,25\n", r"line 2: 4 value\(s\), expected 2 \(decimal commas"),
+    ("1,05,2,5\n1,25,2,07\n", r"seems to write decimal commas"),
+    ("a,b\nTrue,False\n", r"'True' is not a number \(boolean values are not fluorescence"),
+])
+def test_separators_decimal_commas_and_booleans_in_csv_are_named(tmp_path, text, fragment):
+    path = tmp_path / "locale.csv"
+    path.write_text(text)
+    with pytest.raises(CalciumInputError, match=fragment):
+        read_traces(path)
+    assert path.read_text() == text
+
+
+def test_whole_numbers_without_leading_zeros_are_not_taken_for_decimal_commas(tmp_path):
+    path = tmp_path / "counts.csv"
+    path.write_text("101,250\n98,260\n103,255\n")  # photon counts: three frames of two ROIs
+    np.testing.assert_array_equal(read_traces(path).traces, [[101, 98, 103], [250, 260, 255]])
+
+
+@pytest.mark.parametrize("suffix", [".npy", ".h5"])
+def test_boolean_arrays_are_refused_as_traces(tmp_path, suffix):
+    raster = np.random.default_rng(3).random((3, 50)) < 0.1
+    path = tmp_path / f"raster{suffix}"
+    if suffix == ".npy":
+        np.save(path, raster)
+    else:
+        with h5py.File(path, "w") as handle:
+            handle.create_dataset("traces", data=raster)
+    with pytest.raises(CalciumInputError, match=r"raster.*boolean \(True/False\).*spike raster or a mask"):
+        read_traces(path)
+
+
+def test_a_time_column_in_milliseconds_is_refused(tmp_path):
+    path = tmp_path / "ms.csv"
+    path.write_text("time_s,a\n" + "".join(f"{k * 25},{100 + k % 2}\n" for k in range(20)))  # 40 Hz in ms
+    with pytest.raises(CalciumInputError,
+                       match=r"steps by 25 per frame, a frame rate of 0.04 Hz.*milliseconds\? that would be 40 Hz"):
+        read_traces(path)
+
+
+def test_an_hdf5_frame_rate_attribute_holding_the_period_is_refused(tmp_path):
+    path = tmp_path / "period.h5"
+    with h5py.File(path, "w") as handle:
+        handle.attrs["frame_rate"] = 1 / 30
+        handle.create_dataset("traces", data=np.ones((2, 100)))
+    with pytest.raises(CalciumInputError, match=r"period.h5: the frame_rate attribute=0.0333.*1/0.0333+ = 30 Hz"):
         read_traces(path)

@@ -7,7 +7,7 @@ from scipy.integrate import quad
 from scipy.optimize import minimize_scalar
 from scipy.signal import lfilter
 
-from calcium.kernel import Kernel, time_constants_from_half_times
+from calcium.kernel import DECAY_RANGE_S, Kernel, time_constants_from_half_times
 
 KINETICS = [(0.01, 0.2), (0.05, 0.5), (0.18, 0.2), (1e-4, 2.0), (0.3, 1.7)]
 
@@ -247,6 +247,29 @@ def test_time_constants_from_half_times_refuse_a_rise_too_slow_for_any_double_ex
 def test_bad_kernel_arguments_raise_value_error_naming_them(args, kwargs, name):
     with pytest.raises(ValueError, match=name):
         Kernel(*args, **kwargs)
+
+
+@pytest.mark.parametrize("args, kwargs, fragment", [
+    ((0.0, 1e-300), {}, r"decay_s=1e-300 s is outside the range of calcium indicator decays \(0.001 to 60 s"),
+    ((0.05, 1e6), {}, r"decay_s=1000000.0 s is outside the range"),
+    ((0.05, 500.0), {}, r"decay_s=500.0 s is outside.*if it is in milliseconds, give 0.5 s"),
+    ((0.0, 0.5), {"slow_decay_s": 1e4, "slow_fraction": 0.2}, r"slow_decay_s=10000.0 s is outside the range"),
+])
+def test_absurd_decay_times_are_refused_with_the_accepted_range(args, kwargs, fragment):
+    with pytest.raises(ValueError, match=fragment):
+        Kernel(*args, **kwargs)
+
+
+@pytest.mark.parametrize("decay_s", [DECAY_RANGE_S[0], DECAY_RANGE_S[1]])
+def test_the_ends_of_the_decay_range_are_accepted(decay_s):
+    # Handbook: a single exponential falls to half at ln 2 tau, at either end of the accepted range.
+    assert Kernel(0.0, decay_s).half_decay_s == pytest.approx(math.log(2) * decay_s, rel=1e-12)
+
+
+def test_ar_coefficients_of_an_absurdly_slow_decay_are_refused():
+    # d = exp(-1 / (tau f)) with tau = 1e4 s at 30 Hz: from_ar_coefficients must not build that kernel.
+    with pytest.raises(ValueError, match=r"decay_s=.* s is outside the range"):
+        Kernel.from_ar_coefficients([math.exp(-1 / (1e4 * 30.0))], 30.0)
 
 
 def test_bad_sampling_arguments_raise():

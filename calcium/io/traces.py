@@ -14,17 +14,28 @@ The header line is optional. A column named ``time_s`` (or ``time``) holds
 the time of each line in seconds: the frame rate is inferred from it, the
 spacing is checked, and a step that is a whole number of frame intervals
 inserts missing (NaN) frames, which are reported.
+
+What is refused, because it would otherwise be read as wrong numbers
+without a word: a column that rises in even steps (a clock or a frame
+counter) under a header that is not a time name; ``;`` as the separator
+and decimal commas; a time column whose steps give a frame rate outside
+the range of calcium imaging (times in milliseconds); boolean arrays; and
+tables with ten or more times as many ROIs as frames (read sideways: one
+line per ROI).
 """
 from __future__ import annotations
 
 import csv
+import dataclasses
+import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from .._checks import CalciumInputError, MissingFrames, as_traces, check_frame_rate, find_missing
+from .._checks import (MAX_FRAME_RATE_HZ, MIN_FRAME_RATE_HZ, CalciumInputError, MissingFrames, as_traces,
+                       check_frame_rate, check_orientation, find_missing)
 from .results import _existing_file, _load_npy, _output_suffix, _save_npy, file_sha256, write_csv, write_hdf5
 
 __all__ = ["TraceData", "read_traces", "write_traces", "TraceDataset", "find_trace_dataset", "TRACE_SUFFIXES"]
@@ -36,6 +47,13 @@ _MISSING_CELLS = ("", "nan", "na", "n/a")
 # this fraction of one interval (timestamps printed with few decimals and
 # acquisition jitter stay well inside it; a changed frame rate does not).
 _SPACING_TOLERANCE = 0.1
+# A column under a non-time header is taken for a clock (and refused as a ROI) when it rises in steps equal
+# within _SPACING_TOLERANCE over at least this many lines: fluorescence never does that, while a random trace
+# rises in seven steps in a row with probability 1/40320 before the steps even have to be equal.
+_MIN_CLOCK_LINES = 8
+_DECIMAL_COMMA = re.compile(r"\d,\d")
+_SEPARATOR_ADVICE = ("this reader takes values separated by ',' (or tabs) with '.' as the decimal mark: save the "
+                     "table again as comma-separated values with '.' decimals")
 
 
 @dataclass(frozen=True)
@@ -63,6 +81,9 @@ class TraceData:
         Spike times in this package are counted from frame 0.
     roi_names : tuple of str or None
         Column names of a CSV header (time column excluded), else None.
+    suspect_orientation : bool
+        True when the file holds more ROIs than frames (a warning was
+        issued: frames and ROIs may be swapped); see :func:`read_traces`.
     """
 
     traces: np.ndarray
@@ -73,6 +94,7 @@ class TraceData:
     gap_frames: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64), repr=False)
     first_frame_time_s: float | None = None
     roi_names: tuple | None = None
+    suspect_orientation: bool = False
 
     def __post_init__(self):
         if self.missing is None:
@@ -98,6 +120,9 @@ class TraceData:
 
 def _checked_traces(data, path: Path) -> np.ndarray:
     """Validate shape/type of loaded data and return float64 (rois, frames)."""
+    if np.asarray(data).dtype == bool:
+        raise CalciumInputError(f"{path} holds boolean (True/False) values, not fluorescence: is it a spike raster "
+                                f"or a mask? Give the fluorescence or ΔF/F traces")
     try:
         arr = as_traces(data, name=f"traces in {path}")
     except ValueError as exc:
@@ -105,7 +130,8 @@ def _checked_traces(data, path: Path) -> np.ndarray:
     return np.ascontiguousarray(arr.reshape(1, -1) if arr.ndim == 1 else arr)
 
 
-def read_traces(path, *, dataset: str | None = None) -> TraceData:
+def read_traces(path, *, dataset: str | None = None, time_column="auto",
+                orientation_check: bool = True) -> TraceData:
     """Read fluorescence traces from ``.npy``, ``.csv``, ``.h5`` or ``.hdf5``.
 
     Parameters
@@ -120,6 +146,18 @@ def read_traces(path, *, dataset: str | None = None) -> TraceData:
     dataset : str, optional
         HDF5 only: the dataset to read. By default the dataset named
         ``traces``, else the only 1-D/2-D numeric dataset in the file.
+    time_column : "auto", str, int or None, default "auto"
+        CSV only. ``"auto"``: the column named ``time_s`` or ``time`` is the
+        time column; a column under another name that rises in even steps
+        (a clock or a frame counter) is refused rather than read as a ROI.
+        A column name (or 0-based index): that column holds the time in
+        seconds. None: there is no time column; every column is a ROI.
+    orientation_check : bool, default True
+        Refuse a file with ten or more times as many ROIs as frames, and
+        warn (``suspect_orientation``) when ROIs merely outnumber frames:
+        such a file was usually written with one line per ROI. False
+        skips the check (a file that really is that wide). Not applied to a
+        CSV file with a time column, whose lines are frames by construction.
 
     Returns
     -------
@@ -129,12 +167,16 @@ def read_traces(path, *, dataset: str | None = None) -> TraceData:
     Raises
     ------
     CalciumInputError
-        Missing, empty, corrupt or unreadable file; object (pickled) arrays;
-        wrong number of dimensions; non-numeric cells; an unevenly spaced
-        time column; an ambiguous or absent HDF5 dataset. The message names
-        the file.
+        Missing, empty, corrupt or unreadable file; object (pickled) or
+        boolean arrays; wrong number of dimensions; non-numeric cells; an
+        unevenly spaced time column, or one giving a frame rate outside
+        0.1-20,000 Hz; an unnamed clock-like column; ``;`` separators or
+        decimal commas; ten times more ROIs than frames (unless
+        ``orientation_check=False``); an ambiguous or absent HDF5 dataset.
+        The message names the file.
     ValueError
-        ``dataset`` given for a file that is not HDF5.
+        ``dataset`` given for a file that is not HDF5, or ``time_column``
+        given for one that is not CSV.
 
     Examples
     --------
@@ -150,13 +192,23 @@ def read_traces(path, *, dataset: str | None = None) -> TraceData:
     suffix = path.suffix.lower()
     if dataset is not None and suffix not in (".h5", ".hdf5"):
         raise ValueError(f"dataset={dataset!r} only applies to HDF5 files, not {path}")
+    if time_column != "auto" and suffix != ".csv":
+        raise ValueError(f"time_column={time_column!r} only applies to CSV files, not {path}")
+    if not (time_column is None or isinstance(time_column, str)
+            or (isinstance(time_column, (int, np.integer)) and not isinstance(time_column, bool))):
+        raise ValueError(f"time_column must be 'auto', a column name, a column index or None; got {time_column!r}")
     sha = file_sha256(path)
     if suffix == ".npy":
-        return TraceData(traces=_checked_traces(_load_npy(path), path), frame_rate=None, path=path, sha256=sha)
-    if suffix == ".csv":
-        return _read_csv(path, sha)
-    traces, frame_rate = _read_hdf5_traces(path, dataset)
-    return TraceData(traces=traces, frame_rate=frame_rate, path=path, sha256=sha)
+        data = TraceData(traces=_checked_traces(_load_npy(path), path), frame_rate=None, path=path, sha256=sha)
+    elif suffix == ".csv":
+        data = _read_csv(path, sha, time_column)
+    else:
+        traces, frame_rate = _read_hdf5_traces(path, dataset)
+        data = TraceData(traces=traces, frame_rate=frame_rate, path=path, sha256=sha)
+    if orientation_check and data.first_frame_time_s is None:  # (a CSV time column fixes the orientation)
+        if check_orientation(data.traces, str(path), remedy="pass orientation_check=False to read_traces"):
+            data = dataclasses.replace(data, suspect_orientation=True)
+    return data
 
 
 def _is_number(text: str) -> bool:
@@ -169,17 +221,21 @@ def _is_number(text: str) -> bool:
     return True
 
 
-def _read_csv(path: Path, sha: str) -> TraceData:
+def _read_csv(path: Path, sha: str, time_column="auto") -> TraceData:
     try:
         with open(path, newline="", encoding="utf-8-sig") as handle:
             text = handle.read()
     except UnicodeDecodeError:
         raise CalciumInputError(f"{path} is not a text (UTF-8) CSV file") from None
     lines = text.splitlines()
-    first = next((ln for ln in lines if ln.strip() and not ln.lstrip().startswith("#")), None)
-    if first is None:
+    content = [ln for ln in lines if ln.strip() and not ln.lstrip().startswith("#")]
+    if not content:
         raise CalciumInputError(f"{path} holds no data lines")
-    delimiter = "\t" if ("\t" in first and "," not in first) else ","
+    first = content[0]
+    if ";" in first and "\t" not in first and first.count(";") >= first.count(","):
+        commas = " and decimal commas (1,5 for 1.5)" if any(_DECIMAL_COMMA.search(ln) for ln in content[:50]) else ""
+        raise CalciumInputError(f"{path} separates its values with ';'{commas}; {_SEPARATOR_ADVICE}")
+    delimiter = "\t" if "\t" in first else ","
     rows = []  # (line number, cells)
     for number, cells in enumerate(csv.reader(lines, delimiter=delimiter), start=1):
         if not cells or (len(cells) == 1 and not cells[0].strip()) or cells[0].lstrip().startswith("#"):
@@ -191,16 +247,16 @@ def _read_csv(path: Path, sha: str) -> TraceData:
     if not rows:
         raise CalciumInputError(f"{path} has a header but no data lines")
     n_columns = len(header) if header is not None else len(rows[0][1])
-    time_column = None
-    if header is not None:
-        lowered = [name.lower() for name in header]
-        found = [i for i, name in enumerate(lowered) if name in _TIME_COLUMNS]
-        if len(found) > 1:
-            raise CalciumInputError(f"{path}: more than one time column ({', '.join(header[i] for i in found)})")
-        time_column = found[0] if found else None
     for number, cells in rows:
         if len(cells) != n_columns:
-            raise CalciumInputError(f"{path}, line {number}: {len(cells)} value(s), expected {n_columns}")
+            hint = ""
+            if len(cells) > n_columns and delimiter == "," and any(_DECIMAL_COMMA.search(ln) for ln in content[:50]):
+                hint = (f" (decimal commas such as 1,5 for 1.5 split a value in two: {_SEPARATOR_ADVICE})")
+            raise CalciumInputError(f"{path}, line {number}: {len(cells)} value(s), expected {n_columns}{hint}")
+    if delimiter == "," and _looks_like_decimal_commas(rows):
+        raise CalciumInputError(f"{path} seems to write decimal commas (1,05 for 1.05: every value is a whole "
+                                f"number and some have leading zeros, the digits after a decimal comma); "
+                                f"{_SEPARATOR_ADVICE}")
     try:  # fast path: numpy parses the whole table at once
         values = np.array([[("nan" if c.lower() in _MISSING_CELLS else c) for c in cells] for _, cells in rows],
                           dtype=np.float64)
@@ -209,17 +265,29 @@ def _read_csv(path: Path, sha: str) -> TraceData:
             for c, cell in enumerate(cells):
                 if not _is_number(cell):
                     raise CalciumInputError(
-                        f"{path}, line {number}, column {c + 1}: {cell!r} is not a number") from None
+                        f"{path}, line {number}, column {c + 1}: {cell!r} is not a number{_cell_hint(cell)}") from None
         raise
-    roi_columns = [c for c in range(n_columns) if c != time_column]
+    time_index = _time_column_index(header, n_columns, time_column, path)
+    if time_column == "auto" and time_index is None:
+        _refuse_unnamed_clock(values, header, path)
+    roi_columns = [c for c in range(n_columns) if c != time_index]
     if not roi_columns:
         raise CalciumInputError(f"{path} has a time column but no ROI columns")
     data = values[:, roi_columns].T
     names = tuple(header[c] for c in roi_columns) if header is not None else None
-    if time_column is None:
+    if time_index is None:
         return TraceData(traces=_checked_traces(data, path), frame_rate=None, path=path, sha256=sha, roi_names=names)
     line_numbers = np.array([number for number, _ in rows])
-    frame_index, frame_rate = _frames_from_times(values[:, time_column], line_numbers, path)
+    frame_index, frame_rate = _frames_from_times(values[:, time_index], line_numbers, path)
+    if frame_rate is not None and not MIN_FRAME_RATE_HZ <= frame_rate <= MAX_FRAME_RATE_HZ:
+        label = repr(header[time_index]) if header is not None else f"column {time_index + 1}"
+        hint = (f" (times in milliseconds? that would be {frame_rate * 1000:.6g} Hz)"
+                if MIN_FRAME_RATE_HZ <= frame_rate * 1000 <= MAX_FRAME_RATE_HZ else "")
+        raise CalciumInputError(
+            f"{path}: the time column {label} steps by {1 / frame_rate:.6g} per frame, a frame rate of "
+            f"{frame_rate:.6g} Hz, outside the range of calcium imaging ({MIN_FRAME_RATE_HZ:g}-"
+            f"{MAX_FRAME_RATE_HZ:g} Hz){hint}: the time column must hold seconds; convert it, or pass "
+            f"time_column=None to read the file without it")
     n_frames = int(frame_index[-1]) + 1
     traces = np.full((len(roi_columns), n_frames), np.nan)
     traces[:, frame_index] = data
@@ -228,7 +296,78 @@ def _read_csv(path: Path, sha: str) -> TraceData:
         warnings.warn(f"{path}: the time column skips {gaps.size} frame(s) (first at frame {int(gaps[0])}, "
                       f"{gaps[0] / frame_rate:.4g} s); they are marked missing (NaN)", stacklevel=3)
     return TraceData(traces=_checked_traces(traces, path), frame_rate=frame_rate, path=path, sha256=sha,
-                     gap_frames=gaps, first_frame_time_s=float(values[0, time_column]), roi_names=names)
+                     gap_frames=gaps, first_frame_time_s=float(values[0, time_index]), roi_names=names)
+
+
+def _cell_hint(cell: str) -> str:
+    """Why a cell is not a number, when it is something a user may not have meant to write."""
+    if re.fullmatch(r"[+-]?\d+,\d+", cell):
+        return f" (a decimal comma? {_SEPARATOR_ADVICE})"
+    if cell.lower() in ("true", "false"):
+        return " (boolean values are not fluorescence: is it a spike raster or a mask?)"
+    return ""
+
+
+def _looks_like_decimal_commas(rows) -> bool:
+    """Comma-separated cells that are all whole numbers, some with leading zeros ("1,05" read as 1 and 05).
+
+    A whole number is not written with a leading zero, but the digits after a decimal comma often start with
+    one; a table of true whole numbers (photon counts) has none.
+    """
+    leading_zero = False
+    for _, cells in rows:
+        for cell in cells:
+            if not cell or cell.lower() in _MISSING_CELLS:
+                continue
+            if not cell.lstrip("+-").isdigit():
+                return False
+            leading_zero = leading_zero or (len(cell.lstrip("+-")) > 1 and cell.lstrip("+-")[0] == "0")
+    return leading_zero
+
+
+def _time_column_index(header, n_columns: int, time_column, path: Path):
+    """Index of the time column, from its name in the header or the ``time_column`` argument (None: none)."""
+    if time_column is None:
+        return None
+    if time_column == "auto":
+        if header is None:
+            return None
+        found = [i for i, name in enumerate(header) if name.lower() in _TIME_COLUMNS]
+        if len(found) > 1:
+            raise CalciumInputError(f"{path}: more than one time column ({', '.join(header[i] for i in found)})")
+        return found[0] if found else None
+    if isinstance(time_column, str):
+        if header is None or time_column not in header:
+            names = ", ".join(repr(h) for h in header) if header is not None else "none (no header line)"
+            raise ValueError(f"time_column={time_column!r} is not a column of {path}; columns: {names}")
+        return header.index(time_column)
+    if not 0 <= int(time_column) < n_columns:
+        raise ValueError(f"time_column={time_column!r} is not a column index of {path} (0 to {n_columns - 1})")
+    return int(time_column)
+
+
+def _clock_step(column: np.ndarray) -> float | None:
+    """The step of a column that rises in equal steps (a clock or a frame counter), else None."""
+    if column.size < _MIN_CLOCK_LINES or not np.all(np.isfinite(column)):
+        return None
+    steps = np.diff(column)
+    if not np.all(steps > 0):
+        return None
+    step = float(np.median(steps))
+    return step if np.all(np.abs(steps - step) <= _SPACING_TOLERANCE * step) else None
+
+
+def _refuse_unnamed_clock(values: np.ndarray, header, path: Path) -> None:
+    for c in range(values.shape[1]):
+        step = _clock_step(values[:, c])
+        if step is None:
+            continue
+        label = f"column {c + 1} ({header[c]!r})" if header is not None else f"column {c + 1} (no header)"
+        fix = (f"name it 'time_s' if it holds seconds (or pass time_column={header[c]!r})" if header is not None
+               else f"add a header line naming it 'time_s' if it holds seconds (or pass time_column={c})")
+        raise CalciumInputError(
+            f"{path}: {label} rises in even steps of {step:.6g}, like a clock or a frame counter, not like "
+            f"fluorescence: {fix}, delete it if it counts frames, or pass time_column=None to read it as a ROI")
 
 
 def _frames_from_times(times: np.ndarray, line_numbers: np.ndarray, path: Path):
@@ -409,7 +548,10 @@ def _checked_rate(rate, path: Path):
     value = float(arr.reshape(()))
     if not np.isfinite(value) or value <= 0:
         raise CalciumInputError(f"{path}: frame_rate attribute must be positive and finite, got {value!r}")
-    return value
+    try:
+        return check_frame_rate(value, "the frame_rate attribute")
+    except ValueError as exc:
+        raise CalciumInputError(f"{path}: {exc}") from None
 
 
 def write_traces(path, traces, *, frame_rate: float | None = None, dataset: str = "traces", inputs=()) -> Path:
