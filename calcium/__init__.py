@@ -26,6 +26,8 @@ _EXPORTS = {
     "calcium.infer": ["deconvolve_ar", "ARDeconvolution", "deconvolve_convex", "ConvexDeconvolution",
                       "estimate_ar_coefficients", "penalty_for_noise", "infer_spikes", "infer_spikes_many",
                       "SpikeInference"],
+    "calcium.calibrate": ["SessionCalibration", "CalibratedInference", "calibrate_session", "infer_session",
+                          "load_calibration"],
     "calcium.fit": ["fit_kernel", "KernelFit", "KernelIntervals", "check_kinetics", "KineticsCheck"],
     "calcium.score": ["score_spikes", "score_many", "SpikeScore", "ScoreTable", "match_spikes",
                       "van_rossum_distance"],

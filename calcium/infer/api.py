@@ -28,7 +28,7 @@ from .counts import SpikeUnit, _spike_unit, event_noise_size, event_sizes, event
     quantal_size
 from .estimate import MAX_KINETICS_FRAMES, _estimate_kinetics, _search_penalty, estimate_noise_sd, signal_detected
 
-__all__ = ["SpikeInference", "infer_spikes", "infer_spikes_many"]
+__all__ = ["SpikeInference", "infer_spikes", "infer_spikes_many", "recount"]
 
 # Smallest size of a counted event in standard deviations of its size estimate.
 _MIN_EVENT_Z = 2.5
@@ -482,3 +482,52 @@ def infer_spikes_many(traces, frame_rate, *, progress=False, **options) -> list:
             kw[key] = float(value[i])
         results.append(infer_spikes(rows[i], frame_rate, **kw))
     return results
+
+
+def recount(result: SpikeInference, frame_rate, spike_size, *, threshold=0.5) -> SpikeInference:
+    """The same deconvolution counted with another single-spike size.
+
+    The deconvolution does not depend on the size of one spike (the penalty
+    is matched to the noise, not to the kernel's amplitude): only the
+    counting does.  ``recount`` turns the activity of ``result`` into whole
+    spikes as :func:`infer_spikes` would have with ``spike_size``, without
+    solving again (the session calibration uses it to count a trace at the
+    size it estimated from that trace's own events).
+
+    Parameters
+    ----------
+    result : SpikeInference
+        A result of :func:`infer_spikes` with a kernel without a slow
+        component (the AR path).
+    frame_rate : float
+        Hz, as given to :func:`infer_spikes`.
+    spike_size : float
+        ΔF/F (peak) of one spike.
+    threshold : float, default 0.5
+        As in :func:`infer_spikes`.
+
+    Returns
+    -------
+    SpikeInference
+        ``activity``, ``spike_times``, ``spike_counts``, ``kernel`` and
+        ``spike_size`` for the new size; the fit itself is unchanged.
+    """
+    frame_rate = check_frame_rate(frame_rate)
+    spike_size = check_positive(spike_size, "spike_size")
+    threshold = check_positive(threshold, "threshold")
+    if result.kernel is None or result.coefficients.size == 0:
+        raise ValueError("recount needs a result of the AR path with a kernel (a kernel without a slow component); "
+                         "this result has none")
+    factor = result.kernel.amplitude / spike_size
+    kernel = result.kernel.scaled(spike_size)
+    g = result.coefficients
+    unit = _spike_unit(kernel, frame_rate, g)
+    activity = result.activity * factor
+    size_noise = event_noise_size(g, result.noise_sd, activity.size) / unit.size if result.noise_sd > 0 else 0.0
+    lag = int(round(unit.lag_frames))
+    # (the activity is already moved lag frames earlier: only the rest of the mean lag is left to take off)
+    times, counts = events_to_spikes(activity, frame_rate, lag_frames=unit.lag_frames - lag,
+                                     threshold=max(threshold, _MIN_EVENT_Z * size_noise),
+                                     merge_gap=merge_gap_frames(kernel, frame_rate))
+    return _replace(result, activity=activity, spike_times=times, spike_counts=counts, kernel=kernel,
+                    spike_size=float(unit.size))
