@@ -336,9 +336,12 @@ def cmd_infer(args):
     kernel = _kernel_from_args(args, required=False)
     if args.frame_rate is not None and args.frame_rate <= 0:
         raise UsageError(f"--frame-rate must be positive, got {args.frame_rate}")
+    from calcium.pipeline.executors import ExecutorError
     try:  # infer_file streams the file and checks the frame rate against the one it records
         summary = infer_file(args.input, args.out, frame_rate=args.frame_rate, kernel=kernel, dataset=args.dataset,
                              workers=args.workers, overwrite=args.overwrite, progress=_progress(args))
+    except ExecutorError as exc:  # a worker process died: one line, no traceback
+        raise CommandError(str(exc)) from exc
     except (ValueError, OSError) as exc:
         raise _fail(args.input, exc, also=(args.out,)) from exc
     _say(args, str(summary))
@@ -468,8 +471,11 @@ def cmd_init(args):
 
 def cmd_run(args):
     from calcium.pipeline import run_pipeline
+    from calcium.pipeline.executors import ExecutorError
     try:
         summary = run_pipeline(args.config, overwrite=args.overwrite, progress=_progress(args))
+    except ExecutorError as exc:  # a worker died, no scheduler at the address: one line, no traceback
+        raise CommandError(str(exc)) from exc
     except ValueError as exc:
         raise _fail(args.config, exc) from exc
     _say(args, str(summary))

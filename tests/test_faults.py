@@ -240,3 +240,45 @@ def test_a_non_finite_or_non_positive_option_is_a_usage_error(session, argv, fla
     assert exc.value.code == 2
     assert f"argument {flag}" in capsys.readouterr().err
     assert _files(session) == before
+
+
+# ---------------------------------------------------------------------------
+# the machine: a dask scheduler that is not there, a folder named like the package
+# ---------------------------------------------------------------------------
+def _closed_port() -> int:
+    import socket
+
+    with socket.socket() as probe:  # a port that was free a moment ago: nothing listens there
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+@pytest.mark.parametrize("port", [1, None], ids=["port 1", "a closed port"])
+def test_an_unreachable_dask_scheduler_is_one_line_naming_it_before_any_output(session, port, capsys):
+    address = f"tcp://127.0.0.1:{port or _closed_port()}"
+    config = _toml(session / "run.toml", inputs={"traces": "traces.h5"}, output={"folder": "out"},
+                   execution={"backend": "dask", "scheduler": address})
+    before = _files(session)
+    assert main(["run", str(config), "--quiet"]) == 1  # (refused at once: no client time-out)
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and address in err[0] and "execution.scheduler" in err[0], err
+    assert _files(session) == before and not (session / "out").exists()
+
+
+def test_worker_processes_import_the_installed_package_beside_a_folder_named_calcium(session):
+    # A folder named like the package in the current folder (here: data) must not be imported by the workers.
+    import subprocess
+    import sys
+
+    (session / "calcium").mkdir()
+    (session / "calcium" / "notes.txt").write_text("my data\n")
+    config = _toml(session / "run.toml", inputs={"traces": "traces.h5"}, output={"folder": "out"},
+                   report={"enabled": False}, execution={"backend": "processes", "workers": 2, "chunk_rois": 1})
+    command = Path(sys.executable).with_name("calcium")  # the console script a user types
+    done = subprocess.run([str(command), "run", str(config), "--quiet"], cwd=session, capture_output=True,
+                          text=True, timeout=120)
+    assert done.returncode == 0, done.stderr[-2000:]
+    from calcium.pipeline import open_results
+
+    with open_results(session / "out" / "results.h5") as results:
+        assert results.complete and results.n_rois == 3

@@ -22,6 +22,7 @@ workers must keep its top-level code under ``if __name__ == "__main__":``.
 from __future__ import annotations
 
 import concurrent.futures as cf
+import contextlib
 import importlib
 import importlib.util
 import itertools
@@ -37,7 +38,7 @@ from collections.abc import Callable, Iterable, Iterator
 from .._checks import check_choice, check_int
 
 __all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "ExecutorError",
-           "make_executor", "prestart", "progress_bar", "BACKENDS"]
+           "SchedulerUnreachableError", "check_scheduler", "make_executor", "prestart", "progress_bar", "BACKENDS"]
 
 BACKENDS = ("serial", "processes", "dask")
 # Chunks in flight per worker: one running, one queued so the worker never waits
@@ -47,6 +48,59 @@ _IN_FLIGHT_PER_WORKER = 2
 
 class ExecutorError(RuntimeError):
     """The executor itself failed (a worker process died, the cluster cannot be reached)."""
+
+
+class SchedulerUnreachableError(ExecutorError, ConnectionError):
+    """No dask scheduler answers at the configured address (also a ConnectionError, an OSError)."""
+
+
+#: Seconds to wait for a dask scheduler to accept a connection before the run is refused.
+SCHEDULER_TIMEOUT_S = 3.0
+
+
+def _host_port(address: str):
+    """(host, port) of a scheduler address ``[tcp://|tls://]host:port`` (IPv6 in brackets), or None for an
+    address of another kind (``inproc://``, ``ucx://``...) or without a port."""
+    scheme, _, rest = address.rpartition("://")
+    if scheme not in ("", "tcp", "tls"):
+        return None
+    host, _, port = rest.rstrip("/").rpartition(":")
+    if not host or not port.isdigit():
+        return None
+    return host.strip("[]"), int(port)
+
+
+def check_scheduler(address: str, *, timeout_s: float = SCHEDULER_TIMEOUT_S) -> None:
+    """Refuse, within ``timeout_s`` seconds, a dask scheduler address where nothing accepts a connection.
+
+    One TCP connection is opened and closed again; nothing is sent. A run
+    calls this before it creates any output, so a mistyped address or a
+    scheduler that is not running costs a few seconds, not the client's own
+    time-out, and leaves nothing behind.
+
+    Raises
+    ------
+    SchedulerUnreachableError
+        Naming the address, why (refused, timed out, unknown host) and what to do.
+    """
+    import socket
+
+    where = _host_port(address)
+    if where is None:
+        return  # (not a TCP address: the dask client itself says what is wrong with it)
+    try:
+        with socket.create_connection(where, timeout=timeout_s):
+            pass
+    except OSError as exc:
+        if isinstance(exc, socket.timeout):
+            why = f"no answer within {timeout_s:g} s"
+        elif isinstance(exc, socket.gaierror):
+            why = f"unknown host {where[0]!r}"
+        else:
+            why = (exc.strerror or str(exc)).lower()
+        raise SchedulerUnreachableError(
+            f"cannot reach the dask scheduler at {address} (execution.scheduler): {why}; start the scheduler, "
+            f"correct the address, or leave execution.scheduler out to run a local cluster") from None
 
 
 def progress_bar(progress, *, total=None, unit="chunk"):
@@ -217,17 +271,41 @@ def prestart(backend: str, *, scheduler: str | None = None) -> None:
     # forked from it take the environment of this moment; this process's own is left as it was.
     saved = dict(os.environ)
     try:
-        for name in _SINGLE_THREAD_VARIABLES:
-            os.environ.setdefault(name, "1")
-        forkserver.ensure_running()
+        for name, value in _SERVER_ENVIRONMENT.items():
+            os.environ.setdefault(name, value)
+        with _folder_of_the_package():
+            forkserver.ensure_running()
     finally:
-        for name in _SINGLE_THREAD_VARIABLES:
+        for name in _SERVER_ENVIRONMENT:
             if name not in saved:
                 os.environ.pop(name, None)
 
 
-#: Thread counts of the numerical libraries (OpenBLAS, OpenMP, MKL), set to 1 for the worker processes.
+#: The environment the fork server starts with (a user's own settings are kept): thread counts of the
+#: numerical libraries (OpenBLAS, OpenMP, MKL) at 1 for the worker processes, and PYTHONSAFEPATH. The server
+#: is a fresh interpreter started in the current folder, which Python puts first on its module search path
+#: (Python 3.11's fork server does not take the parent's path before it imports the preloaded modules): a
+#: folder named ``calcium`` there (data beside which the user runs the tool) was imported instead of the
+#: installed package, and every worker died of an import error. PYTHONSAFEPATH (Python 3.11+) leaves the
+#: current folder off the path.
+_SERVER_ENVIRONMENT = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1",
+                       "PYTHONSAFEPATH": "1"}
 _SINGLE_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+@contextlib.contextmanager
+def _folder_of_the_package():
+    """On Python < 3.11 (no PYTHONSAFEPATH): the current folder while the fork server starts is the one holding
+    the installed package, so the folder Python puts first on the server's path finds the package itself."""
+    if sys.version_info >= (3, 11):
+        yield
+        return
+    here = os.getcwd()
+    os.chdir(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
+    try:
+        yield
+    finally:
+        os.chdir(here)
 
 
 class ProcessExecutor(Executor):
@@ -318,8 +396,9 @@ class DaskExecutor(Executor):
     ------
     ImportError
         If dask.distributed is not installed (``pip install calcium[dask]``).
-    ExecutorError
-        If the scheduler cannot be reached.
+    SchedulerUnreachableError
+        If the scheduler cannot be reached (nothing listening: within
+        :data:`SCHEDULER_TIMEOUT_S` seconds).
     """
 
     name = "dask"
@@ -333,10 +412,12 @@ class DaskExecutor(Executor):
         workers = check_int(workers, "workers", minimum=0) if workers is not None else 0
         self._cluster = None
         if scheduler:
+            check_scheduler(scheduler)  # (seconds, not the client's own time-out, for an address nobody serves)
             try:
                 self._client = distributed.Client(scheduler, timeout="30s")
             except (OSError, TimeoutError) as exc:
-                raise ExecutorError(f"cannot reach the dask scheduler at {scheduler!r}: {exc}") from None
+                raise SchedulerUnreachableError(f"cannot reach the dask scheduler at {scheduler} "
+                                                f"(execution.scheduler): {exc}") from None
         else:
             import dask
 

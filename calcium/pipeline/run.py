@@ -29,7 +29,7 @@ from .. import __version__
 from .._checks import CalciumInputError
 from . import stages
 from .config import ConfigError, RunConfig, load_config, parameters_digest
-from .executors import make_executor, prestart, progress_bar
+from .executors import check_scheduler, make_executor, prestart, progress_bar
 from .store import DatasetSpec, OutputError, ResultStore, check_output_folder, open_results
 
 __all__ = ["RunSummary", "run_pipeline", "infer_file", "write_session_report", "write_spike_table_from_results", "RESULTS_NAME", "SPIKES_NAME", "REPORT_FOLDER", "NWB_NAME"]
@@ -393,6 +393,9 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     OutputMismatchError
         The output folder holds results of a different run and
         ``overwrite`` is False.
+    calcium.pipeline.executors.SchedulerUnreachableError
+        ``execution.scheduler`` is set and nothing answers there (an
+        OSError, raised within seconds and before any output is created).
     calcium._checks.OutputOverInputError
         An output (results, spike table, report, NWB file, work folder)
         would replace an input (configuration file, traces, movie, masks,
@@ -418,6 +421,8 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     started = time.perf_counter()
     config = config_or_path if isinstance(config_or_path, RunConfig) else load_config(config_or_path)
     _protect_run_inputs(config)  # before anything is written
+    if config.execution.backend == "dask" and config.execution.scheduler:
+        check_scheduler(config.execution.scheduler)  # a few seconds, and before any output exists
     # the workers' fork server warms up while the inputs are checked
     prestart(config.execution.backend, scheduler=config.execution.scheduler)
     folder = _output_folder(config)
