@@ -111,6 +111,9 @@ class SessionCalibration:
         are not to be trusted.
     reasons : tuple of str
         Per ROI, why it is not calibrated ("" when it is).
+    size_z : ndarray, shape (rois,)
+        The single-spike size in standard deviations of an event's size
+        noise (how clearly one spike stands out; NaN where not estimated).
     size_prior : tuple of float
         ``(mean, sd)`` of the natural log of the single-spike size across
         the session (the empirical Bayes prior; NaN when not estimated).
@@ -135,6 +138,7 @@ class SessionCalibration:
     spike_size_high: np.ndarray = field(repr=False)
     calibrated: np.ndarray = field(repr=False)
     reasons: tuple = field(repr=False)
+    size_z: np.ndarray = field(default_factory=lambda: np.zeros(0), repr=False)
     size_prior: tuple = (math.nan, math.nan)
     paired_rois: tuple = ()
     indicator: str | None = None
@@ -187,7 +191,7 @@ class SessionCalibration:
                 "rise_range_s": list(self.rise_range_s), "decay_range_s": list(self.decay_range_s),
                 "n_kinetics_rois": self.n_kinetics_rois, "spike_size": self.spike_size.tolist(),
                 "spike_size_low": self.spike_size_low.tolist(), "spike_size_high": self.spike_size_high.tolist(),
-                "calibrated": self.calibrated.tolist(), "reasons": list(self.reasons),
+                "calibrated": self.calibrated.tolist(), "reasons": list(self.reasons), "size_z": self.size_z.tolist(),
                 "size_prior": list(self.size_prior), "paired_rois": list(self.paired_rois),
                 "indicator": self.indicator, "notes": list(self.notes)}
 
@@ -221,6 +225,7 @@ def load_calibration(path) -> SessionCalibration:
             spike_size_low=np.asarray(data["spike_size_low"], dtype=np.float64),
             spike_size_high=np.asarray(data["spike_size_high"], dtype=np.float64),
             calibrated=np.asarray(data["calibrated"], dtype=bool), reasons=tuple(data["reasons"]),
+            size_z=np.asarray(data.get("size_z", [math.nan] * spike_size.size), dtype=np.float64),
             size_prior=tuple(data["size_prior"]), paired_rois=tuple(int(r) for r in data["paired_rois"]),
             indicator=data.get("indicator"), notes=tuple(data.get("notes", ())))
     except FileNotFoundError:
@@ -617,6 +622,7 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
     high = np.full(n, math.nan)
     calibrated = np.zeros(n, dtype=bool)
     reasons = [""] * n
+    size_z = np.full(n, math.nan)
     for i in range(n):
         if i in paired:
             continue  # (sizes from their own fits, below)
@@ -626,6 +632,8 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
         elif np.isfinite(prior[0]):
             size[i] = math.exp(prior[0])
             low[i], high[i] = (math.exp(prior[0] + z * prior[1]) for z in (-1.645, 1.645))
+        if fit is not None and np.isfinite(fit.quantum) and np.isfinite(size[i]):
+            size_z[i] = fit.quantum_z * size[i] / fit.quantum  # (the posterior size over the same size noise)
         reasons[i] = _size_verdict(fit, size[i], low[i], high[i], prior, indicator_size)
         calibrated[i] = reasons[i] == ""
     for roi in paired:
@@ -635,7 +643,7 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
         source=source, frame_rate=frame_rate, rise_s=float(rise_s), decay_s=float(decay_s),
         rise_range_s=tuple(rise_range), decay_range_s=tuple(decay_range), n_kinetics_rois=int(n_kin),
         spike_size=size, spike_size_low=low, spike_size_high=high, calibrated=calibrated, reasons=tuple(reasons),
-        size_prior=tuple(prior), paired_rois=paired, indicator=row.name if row is not None else None,
+        size_z=size_z, size_prior=tuple(prior), paired_rois=paired, indicator=row.name if row is not None else None,
         notes=tuple(notes))
     return calibration, unit_results
 

@@ -511,6 +511,13 @@ def recount(result: SpikeInference, frame_rate, spike_size, *, threshold=0.5) ->
     SpikeInference
         ``activity``, ``spike_times``, ``spike_counts``, ``kernel`` and
         ``spike_size`` for the new size; the fit itself is unchanged.
+
+    Notes
+    -----
+    ``result.activity`` is already moved by the kernel's lag (whole
+    frames), so the activity of the first ``round(lag)`` frames, which
+    :func:`infer_spikes` counts as spikes at time 0, is no longer there:
+    such a spike at the very start is not counted again.
     """
     frame_rate = check_frame_rate(frame_rate)
     spike_size = check_positive(spike_size, "spike_size")
