@@ -22,9 +22,9 @@ from scipy.signal import correlate, correlation_lags
 
 from ._checks import (as_traces, check_choice, check_frame_rate, check_int, check_positive,
                       require_some_data)
-from .forward import predict_fluorescence
+from .forward import summed_response
 from .indicators import IndicatorKinetics, get_indicator
-from .kernel import Kernel
+from .kernel import DECAY_RANGE_S, Kernel
 from .score import as_spike_times
 
 __all__ = [
@@ -44,7 +44,7 @@ FIT_MODELS = ("double-exponential", "free")
 _DEFAULT_START = dict(rise_s=0.05, decay_s=0.5)
 # Bounds of the fit (documented in fit_kernel): rise/decay ratio and decay time.
 _RATIO_BOUNDS = (1e-4, 0.95)
-_DECAY_BOUNDS_S = (1e-3, 60.0)
+_DECAY_BOUNDS_S = DECAY_RANGE_S
 _INTERVAL_NAMES = ("rise_s", "decay_s", "amplitude", "lag_s", "half_rise_s", "half_decay_s")
 
 
@@ -214,14 +214,8 @@ class _Problem:
         stop = self.n_frames if stop is None else stop
         offset_s = first / self.frame_rate
         times = (self.spikes if spikes is None else spikes) + (lag_s - offset_s)
-        times = times[times < (stop - first) / self.frame_rate]
-        if times.size == 0:
-            return np.zeros(stop - first)
-        # predict_fluorescence takes times >= 0; a spike before the first frame still shapes
-        # the first frames, so shift the clock (spikes and frame times) instead of dropping it.
-        shift = max(0.0, -float(times[0]))
-        return predict_fluorescence(times + shift, Kernel(rise_s, decay_s, 1.0), self.frame_rate,
-                                    stop - first, scan_offset_s=shift)
+        # (spikes before the first frame still shape the first frames: summed_response keeps them)
+        return summed_response(times, Kernel(rise_s, decay_s, 1.0), self.frame_rate, stop - first)
 
     def window(self, spikes, lag_s, decay_s):
         """Frames (first, stop) covering the response of ``spikes`` (8 decay time constants)."""

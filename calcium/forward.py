@@ -42,7 +42,7 @@ import numpy as np
 from numba import njit
 from scipy.signal import lfilter
 
-from ._checks import check_choice, check_frame_rate, check_int, check_nonnegative, check_positive
+from ._checks import check_choice, check_frame_rate, check_int, check_memory, check_nonnegative, check_positive
 from .kernel import Kernel
 from .io.results import json_value
 
@@ -79,6 +79,16 @@ def _check_exposure(exposure_s, frame_rate: float):
         raise ValueError(f"exposure_s must be at most one frame interval (1/frame_rate = {1.0 / frame_rate!r} s), "
                          f"got {exposure_s!r}")
     return min(exposure_s, 1.0 / frame_rate)
+
+
+def _check_scan_offset(value, frame_rate: float, name: str) -> float:
+    """A scan offset: the delay of a ROI's sample within its frame, so in [0, one frame interval)."""
+    offset = check_nonnegative(value, name)
+    if offset >= 1.0 / frame_rate:
+        raise ValueError(f"{name}={offset!r} s is not shorter than one frame interval (1/frame_rate = "
+                         f"{1.0 / frame_rate:.6g} s): a scan offset is the delay of a ROI's sample within its frame; "
+                         f"for a clock offset between spikes and frames, shift the spike times instead")
+    return offset
 
 
 def _check_kernel(kernel) -> Kernel:
@@ -204,6 +214,32 @@ def _linear_rows_lfilter(times, rows, n_rows, kernel: Kernel, frame_rate, n_fram
     return out.reshape(n_rows, n_frames)
 
 
+def summed_response(spike_times_s, kernel: Kernel, frame_rate: float, n_frames: int) -> np.ndarray:
+    """Summed linear response at the frame times ``k / frame_rate`` to spikes at any times.
+
+    The door for callers inside the package that have validated their arguments (the kernel fit, whose
+    lag-shifted spikes can fall before the first frame): spikes before frame 0 shape the first frames with
+    their exact sub-frame weight, spikes at or after the end are dropped, and no argument is checked. No
+    saturation and no exposure: the linear part of :func:`predict_fluorescence` with a zero scan offset.
+
+    Parameters
+    ----------
+    spike_times_s : ndarray of float64, 1-D
+        Spike times in seconds from the first frame, finite, any sign, any order.
+    kernel : Kernel
+    frame_rate : float
+    n_frames : int
+
+    Returns
+    -------
+    ndarray of float64, shape (n_frames,)
+    """
+    times = np.sort(spike_times_s)
+    times = times[times < n_frames / frame_rate]
+    return _linear_rows(times, np.zeros(times.size, dtype=np.int64), 1, kernel, frame_rate, n_frames,
+                        np.zeros(times.size), None)[0]
+
+
 def _recording_end(n_frames: int, frame_rate: float, offset) -> float:
     return n_frames / frame_rate + offset
 
@@ -224,8 +260,9 @@ def predict_fluorescence(spike_times_s, kernel, frame_rate, n_frames, *, scan_of
     n_frames : int
         Number of frames (>= 1).
     scan_offset_s : float, default 0.0
-        Time of frame ``k`` is ``k / frame_rate + scan_offset_s`` (e.g. the
-        line-scan delay of a ROI within the frame); >= 0.
+        Time of frame ``k`` is ``k / frame_rate + scan_offset_s``: the
+        line-scan delay of a ROI within the frame, so ``0 <= scan_offset_s <
+        1 / frame_rate`` (a larger clock offset is a shift of the spike times).
     exposure_s : float or None, default None
         None: each frame is a point sample at its frame time.  A number
         (0 < exposure_s <= 1/frame_rate): each frame is the exact mean of the
@@ -261,8 +298,9 @@ def predict_fluorescence(spike_times_s, kernel, frame_rate, n_frames, *, scan_of
     kernel = _check_kernel(kernel)
     frame_rate = check_frame_rate(frame_rate)
     n_frames = check_int(n_frames, "n_frames", minimum=1)
-    offset = check_nonnegative(scan_offset_s, "scan_offset_s")
+    offset = _check_scan_offset(scan_offset_s, frame_rate, "scan_offset_s")
     exposure_s = _check_exposure(exposure_s, frame_rate)
+    check_memory(8.0 * n_frames * 3, f"n_frames={n_frames}", remedy="predict fewer frames")
     end = _recording_end(n_frames, frame_rate, offset)
     late = times >= end
     if np.any(late):
@@ -371,6 +409,26 @@ def _spike_train(rng, *, rate, duration_s, frame_rate, model, refractory_s, isi_
 
 
 # ------------------------------------------------------------ simulation
+# Bookkeeping per simulated ROI besides its rows: two seed streams (about 1.2 kB at their peak, measured with
+# tracemalloc over 20,000 ROIs) and the spike-time array object, rounded up.
+_BYTES_PER_ROI = 2048
+
+
+def _check_simulation_memory(n_rois: int, n_frames: int, duration_s: float, rate_hz) -> None:
+    """Refuse, before anything is allocated, a simulation whose arrays exceed the available memory."""
+    try:
+        mean_rate = float(np.mean(rate_hz)) if np.size(rate_hz) else 0.0
+    except (TypeError, ValueError):
+        mean_rate = 0.0  # (a bad rate_hz is named by its own check later)
+    if not math.isfinite(mean_rate) or mean_rate < 0:
+        mean_rate = 0.0
+    n_bytes = (4 * 8.0 * n_rois * n_frames + _BYTES_PER_ROI * n_rois + 8.0 * mean_rate * duration_s * n_rois
+               + 8.0 * _CHUNK_SAMPLES)
+    check_memory(n_bytes, f"simulate_recording with n_rois={n_rois} x {n_frames} frames",
+                 remedy="simulate fewer ROIs or a shorter recording, or in parts (each ROI depends only on "
+                        "the seed, not on n_rois)")
+
+
 @dataclass(frozen=True)
 class SimulatedRecording:
     """A simulated recording with its ground truth.
@@ -518,7 +576,8 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
         Alternative to a photon budget: Gaussian noise with this s.d. in
         ΔF/F units (``f0 noise_sd`` in raw units).
     scan_offsets : float or array_like (n_rois,), default 0.0
-        Sample time of frame k for each ROI is ``k / frame_rate + offset``.
+        Sample time of frame k for each ROI is ``k / frame_rate + offset``,
+        with ``0 <= offset < 1 / frame_rate`` (a delay within the frame).
     exposure_s : float, optional
         Exposure of each frame (see :func:`predict_fluorescence`).
     seed : int, default 0
@@ -530,6 +589,14 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     Returns
     -------
     SimulatedRecording
+
+    Raises
+    ------
+    ValueError
+        Bad arguments, naming them; and a request whose arrays would not fit
+        in the memory available (estimated before anything is allocated:
+        four float64 arrays of ``n_rois x n_frames``, the expected spike
+        times and about 2 kB per ROI of bookkeeping, measured).
 
     References
     ----------
@@ -553,6 +620,7 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     n_frames = int(round(duration_s * frame_rate))
     if n_frames < 1:
         raise ValueError(f"duration_s * frame_rate must give at least one frame, got {duration_s * frame_rate!r}")
+    _check_simulation_memory(n_rois, n_frames, duration_s, rate_hz)
     if kernel is not None and indicator is not None:
         raise ValueError("give either kernel or indicator, not both")
     if kernel is None:
@@ -586,7 +654,8 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     photons = None if photons_per_frame is None else check_positive(photons_per_frame, "photons_per_frame")
     noise_sd = None if noise_sd is None else check_nonnegative(noise_sd, "noise_sd")
     read_noise_sd = check_nonnegative(read_noise_sd, "read_noise_sd")
-    offsets = _per_roi(scan_offsets, "scan_offsets", n_rois, check_nonnegative)
+    offsets = _per_roi(scan_offsets, "scan_offsets", n_rois,
+                       lambda value, name: _check_scan_offset(value, frame_rate, name))
     exposure_s = _check_exposure(exposure_s, frame_rate)
     seed = check_int(seed, "seed", minimum=0)
     params.update(n_frames=n_frames, kernel=kernel.to_dict(), kernel_description=str(kernel))

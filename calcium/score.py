@@ -39,7 +39,7 @@ DEFAULT_BIN_WIDTHS_S = (0.1, 0.2, 0.5, 1.0)
 # input
 # ---------------------------------------------------------------------------
 def as_spike_times(times, name: str = "spike_times", *, warn_unsorted: bool = True,
-                   stacklevel: int = 3) -> np.ndarray:
+                   stacklevel: int = 3, nonnegative: bool = False) -> np.ndarray:
     """Return spike times (seconds) as a sorted 1-D float64 array.
 
     Parameters
@@ -53,11 +53,15 @@ def as_spike_times(times, name: str = "spike_times", *, warn_unsorted: bool = Tr
         are sorted either way.
     stacklevel : int
         Passed to :func:`warnings.warn`.
+    nonnegative : bool
+        Refuse negative times (times counted from the first frame, as in a
+        spike table; see :func:`calcium.io.read_spike_times`).
 
     Raises
     ------
     ValueError
-        If ``times`` is not one-dimensional, not numeric, or holds NaN or inf.
+        If ``times`` is not one-dimensional, not numeric, or holds NaN or inf
+        (or, with ``nonnegative``, a negative time).
     """
     if times is None:
         raise ValueError(f"{name} must be an array of spike times in seconds, got None")
@@ -72,6 +76,11 @@ def as_spike_times(times, name: str = "spike_times", *, warn_unsorted: bool = Tr
     if not np.all(np.isfinite(arr)):
         bad = np.flatnonzero(~np.isfinite(arr))
         raise ValueError(f"{name} holds {bad.size} non-finite time(s) (NaN or inf), first at index {bad[0]}")
+    if nonnegative and arr.size and arr.min() < 0:
+        bad = np.flatnonzero(arr < 0)
+        raise ValueError(f"{name} holds {bad.size} negative time(s) (first {float(arr[bad[0]])!r} s at index "
+                         f"{bad[0]}): spike times are seconds from the first frame, as in a spike table; align "
+                         "the clocks first (add the clock lag) and leave out the spikes before the recording")
     if arr.size > 1 and np.any(np.diff(arr) < 0):
         if warn_unsorted:
             warnings.warn(f"{name} were not in ascending order; sorted them", UserWarning,
@@ -377,7 +386,7 @@ def _score_sorted(inferred, true, tolerance_s, widths, duration_s, tau) -> Spike
     sd_err = float(errors.std(ddof=1)) if n_match >= 2 else float("nan")
 
     everything = np.concatenate([inferred, true])
-    start = min(0.0, float(everything.min())) if everything.size else 0.0
+    start = 0.0  # (times are >= 0: checked by the callers)
     if duration_s is None:
         stop = float(everything.max()) if everything.size else 0.0
     else:
@@ -409,8 +418,9 @@ def score_spikes(inferred_times, true_times, *, tolerance_s, bin_widths_s=DEFAUL
     Parameters
     ----------
     inferred_times, true_times : array_like
-        Spike times in seconds from the first frame. A repeated time counts as
-        several spikes. Unsorted input is sorted with a warning.
+        Spike times in seconds from the first frame (>= 0, as in a spike
+        table). A repeated time counts as several spikes. Unsorted input is
+        sorted with a warning.
     tolerance_s : float
         Largest ``|t_inferred - t_true|`` for an inferred spike to count as a
         detection of a true spike (inclusive). Each spike matches at most once.
@@ -419,14 +429,19 @@ def score_spikes(inferred_times, true_times, *, tolerance_s, bin_widths_s=DEFAUL
     duration_s : float, optional
         Length of the recording in seconds. Bins cover ``[0, duration_s]``;
         pass it so that the silent end of the recording counts. If omitted,
-        the bins run from 0 (or the earliest spike, if negative) to the last
-        spike of either train.
+        the bins run from 0 to the last spike of either train.
     van_rossum_tau_s : float, optional
         Time constant of the van Rossum distance; defaults to ``tolerance_s``.
 
     Returns
     -------
     SpikeScore
+
+    Raises
+    ------
+    ValueError
+        Bad arguments; times that are not finite, or negative (the spike
+        table reader refuses them too: align the clocks first).
 
     Notes
     -----
@@ -448,8 +463,8 @@ def score_spikes(inferred_times, true_times, *, tolerance_s, bin_widths_s=DEFAUL
     """
     tolerance_s, widths, duration_s, tau = _check_common(tolerance_s, bin_widths_s, duration_s,
                                                          van_rossum_tau_s)
-    inferred = as_spike_times(inferred_times, "inferred_times")
-    true = as_spike_times(true_times, "true_times")
+    inferred = as_spike_times(inferred_times, "inferred_times", nonnegative=True)
+    true = as_spike_times(true_times, "true_times", nonnegative=True)
     return _score_sorted(inferred, true, tolerance_s, widths, duration_s, tau)
 
 
@@ -587,8 +602,8 @@ def score_many(inferred, true, *, tolerance_s, bin_widths_s=DEFAULT_BIN_WIDTHS_S
         pass
     scores = []
     for k in keys:
-        a = as_spike_times(inf_map.get(k, ()), f"inferred[{k!r}]", stacklevel=3)
-        b = as_spike_times(true_map.get(k, ()), f"true[{k!r}]", stacklevel=3)
+        a = as_spike_times(inf_map.get(k, ()), f"inferred[{k!r}]", stacklevel=3, nonnegative=True)
+        b = as_spike_times(true_map.get(k, ()), f"true[{k!r}]", stacklevel=3, nonnegative=True)
         scores.append(_score_sorted(a, b, tolerance_s, widths, duration_s, tau))
 
     n_true = sum(s.n_true for s in scores)

@@ -10,7 +10,7 @@ from scipy.integrate import quad
 from scipy.optimize import minimize_scalar
 
 from calcium.forward import (_linear_rows, _linear_rows_lfilter, _predict_direct, _run_recursions,
-                             predict_fluorescence, simulate_recording)
+                             predict_fluorescence, simulate_recording, summed_response)
 from calcium.kernel import Kernel
 
 
@@ -193,6 +193,25 @@ def test_bad_forward_arguments_raise_value_error_naming_them(spikes, kwargs, nam
         predict_fluorescence(spikes, args.pop("kernel"), args.pop("frame_rate"), args.pop("n_frames"), **args)
 
 
+@pytest.mark.parametrize("offset", [0.1, 0.5, 2.0])
+def test_a_scan_offset_of_a_frame_or_more_is_refused(offset):
+    # At 10 Hz a frame lasts 0.1 s: a scan offset is a delay within the frame, so it must be shorter.
+    with pytest.raises(ValueError, match=rf"scan_offset_s={offset!r} s is not shorter than one frame interval "
+                                         r"\(1/frame_rate = 0.1 s\).*shift the spike times instead"):
+        predict_fluorescence([0.5], Kernel(0.02, 0.3), 10.0, 20, scan_offset_s=offset)
+    with pytest.raises(ValueError, match=r"scan_offsets\[1\]=.* s is not shorter than one frame interval"):
+        simulate_recording(2, 5.0, 10.0, scan_offsets=[0.0, offset])
+
+
+def test_summed_response_keeps_spikes_before_the_first_frame():
+    # Reference: the closed form of the double exponential at every frame time, for spikes on either side of 0.
+    kernel = Kernel(0.02, 0.3, 0.5)
+    spikes = np.array([-0.73, -0.04, 0.251, 1.0])
+    frame_times = np.arange(30) / 10.0
+    expected = sum(analytic_double_exponential(frame_times - s, 0.02, 0.3, 0.5) for s in spikes)
+    np.testing.assert_allclose(summed_response(spikes, kernel, 10.0, 30), expected, rtol=1e-9, atol=1e-15)
+
+
 def test_no_spikes_give_a_flat_zero_trace():
     np.testing.assert_array_equal(predict_fluorescence([], Kernel(0.05, 0.5), 30.0, 50), np.zeros(50))
 
@@ -350,6 +369,20 @@ def test_random_rate_modulation_keeps_the_mean_rate_and_overdisperses_counts():
 def test_bad_simulation_arguments_raise_value_error_naming_them(kwargs, name):
     with pytest.raises(ValueError, match=name):
         simulate_recording(2, 10.0, 10.0, **kwargs)
+
+
+def test_a_simulation_too_large_for_the_machine_is_refused_before_anything_is_allocated():
+    import tracemalloc
+
+    tracemalloc.start()
+    try:
+        with pytest.raises(ValueError, match=r"simulate_recording with n_rois=1000000000 x 36000 frames would need "
+                                             r"about \d+(\.\d+)? PB of memory, more than the .* available.*fewer ROIs"):
+            simulate_recording(1_000_000_000, 1200.0, 30.0)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 50e6  # nothing of the size of the request was allocated
 
 
 def test_save_writes_traces_spikes_and_parameters(tmp_path):

@@ -164,3 +164,22 @@ def test_compiled_spike_lines_refuse_bad_arrays():
         fixed_lines([-1], [5], [1], 3)
     with pytest.raises(ValueError, match="decimals must be in"):
         fixed_lines([0], [5], [1], 12)
+
+
+def test_a_count_too_large_for_memory_is_refused_before_the_times_are_built(tmp_path):
+    import tracemalloc
+
+    path = tmp_path / "typo.csv"
+    text = "roi,time_s,count\n0,1.5,1\n0,2.0,1000000000000\n1,,0\n"
+    path.write_text(text)
+    tracemalloc.start()
+    try:
+        with pytest.raises(CalciumInputError, match=r"typo.csv: the spike counts add up to 1,000,000,000,001 spikes "
+                                                     r"\(line 3 has count 1,000,000,000,000\), which would need about "
+                                                     r"16 TB of memory.*check the count column"):
+            read_spike_times(path)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 10e6  # nothing of that size was allocated
+    assert path.read_text() == text

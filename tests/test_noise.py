@@ -3,6 +3,8 @@
 Method: Pnevmatikakis et al. (2016), Neuron 89(2):285-299 (noise s.d. from the PSD over the upper half
 of the spectrum); Welch (1967), IEEE Trans. Audio Electroacoust. 15(2):70-73.
 """
+import warnings
+
 import numpy as np
 import pytest
 import scipy.signal as ss
@@ -194,3 +196,19 @@ def test_many_rows_give_exactly_the_values_of_one_row_at_a_time():
         for band in (None, (0.0, 5.0)):
             together = estimate_noise(x, 30.0, band_hz=band)
             np.testing.assert_array_equal(together, [estimate_noise(row, 30.0, band_hz=band) for row in x])
+
+
+@pytest.mark.parametrize("scale", [1e300, 1e-300, 2.0 ** 600])
+@pytest.mark.parametrize("gaps", [False, True])
+def test_values_of_extreme_magnitude_give_the_scaled_estimate_not_inf_or_zero(scale, gaps):
+    # Reference: the s.d. is homogeneous of degree 1 (scaling a trace by c scales its noise s.d. by c);
+    # the squares of 1e300 overflow float64 and those of 1e-300 underflow, which must not show.
+    x = np.random.default_rng(12).normal(size=(2, 3000))
+    if gaps:
+        x[0, 100:400] = np.nan
+    base = estimate_noise(x, FRAME_RATE)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no overflow warning reaches the user either
+        scaled = estimate_noise(x * scale, FRAME_RATE)
+    assert np.isfinite(scaled).all() and (scaled > 0).all()
+    np.testing.assert_allclose(scaled / scale, base, rtol=1e-9)

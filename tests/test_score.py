@@ -256,3 +256,20 @@ def test_non_finite_or_two_dimensional_times_are_rejected():
 def test_spikes_beyond_duration_are_reported():
     with pytest.warns(UserWarning, match="outside"):
         score_spikes([1.0, 12.0], [1.0], tolerance_s=0.1, duration_s=10.0)
+
+
+def test_negative_times_are_refused_as_the_spike_table_reader_refuses_them(tmp_path):
+    # Consistency with calcium.io.read_spike_times, which refuses a negative time in a file.
+    from calcium._checks import CalciumInputError
+    from calcium.io import read_spike_times
+
+    (tmp_path / "s.csv").write_text("time_s\n-0.5\n1.0\n")
+    with pytest.raises(CalciumInputError, match="negative"):
+        read_spike_times(tmp_path / "s.csv")
+    true = np.array([-0.5, 1.0])
+    with pytest.raises(ValueError, match=r"true_times holds 1 negative time\(s\) \(first -0.5 s at index 0\).*align "
+                                         r"the clocks first"):
+        score_spikes([1.0], true, tolerance_s=0.1)
+    np.testing.assert_array_equal(true, [-0.5, 1.0])  # the input is left as it was
+    with pytest.raises(ValueError, match=r"inferred\[3\] holds 1 negative time"):
+        score_many({3: [-0.01]}, {3: [0.5]}, tolerance_s=0.1)

@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .._checks import CalciumInputError
+from .._checks import CalciumInputError, check_memory
 from .results import _existing_file, write_csv
 
 __all__ = ["read_spike_times", "write_spike_table"]
@@ -96,6 +96,9 @@ def read_spike_times(path) -> dict[int, np.ndarray]:
     CalciumInputError
         Missing or empty file; a negative, non-finite or non-numeric time;
         a bad ROI index or count. The message names the file and line.
+        Also counts adding up to more spikes than fit in the memory
+        available (checked before the times are expanded; the message names
+        the line with the largest count).
 
     Examples
     --------
@@ -126,7 +129,8 @@ def read_spike_times(path) -> dict[int, np.ndarray]:
     else:
         roi_col, time_col, count_col = _header_index(first, path)
         rows, width = rows[1:], len(first)
-    collected: dict[int, list[float]] = {}
+    collected: dict[int, list[tuple[float, int]]] = {}  # ROI -> (time, count) per line
+    total, largest = 0, (0, 0)  # spikes in all, and the largest count with its line
     for number, cells in rows:
         if len(cells) != width:
             raise CalciumInputError(f"{path}, line {number}: {len(cells)} value(s), expected {width}")
@@ -135,8 +139,17 @@ def read_spike_times(path) -> dict[int, np.ndarray]:
         times = collected.setdefault(roi, [])
         if count == 0 and cells[time_col] == "":
             continue  # a ROI without spikes
-        times.extend([_parse_time(cells[time_col], path, number)] * count)
-    return {roi: np.sort(np.asarray(collected[roi], dtype=np.float64)) for roi in sorted(collected)}
+        times.append((_parse_time(cells[time_col], path, number), count))
+        total += count
+        largest = max(largest, (count, number))
+    # the counts are expanded into one time per spike: check that the result fits before building it
+    try:
+        check_memory(2 * 8.0 * total, f"{path}: the spike counts add up to {total:,} spikes (line {largest[1]} has "
+                     f"count {largest[0]:,}), which", remedy="check the count column")
+    except ValueError as exc:
+        raise CalciumInputError(str(exc)) from None
+    return {roi: np.sort(np.repeat([t for t, _ in collected[roi]], [n for _, n in collected[roi]]).astype(np.float64))
+            for roi in sorted(collected)}
 
 
 def _as_mapping(spike_times) -> Mapping:
