@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.stats import norm
 
-from ._checks import check_int, check_positive
+from ._checks import check_frame_rate, check_int, check_memory, check_positive
 from .infer.ar import deconvolve_ar
 from .kernel import Kernel
 
@@ -32,6 +32,9 @@ DEFAULT_INTERVALS_S = (0.02, 0.035, 0.05, 0.075, 0.1, 0.15, 0.2, 0.3, 0.5, 0.75,
 # activity): a spike must explain about one noise s.d. of matched-filter output to be kept.
 _PENALTY_SD = 1.0
 _MIN_NULL_WINDOWS = 2000
+# Peak memory of one condition in units of its largest (trials x frames) float64 array: 8-18 measured with
+# tracemalloc (30-500 Hz, 100-2000 trials, false-positive rates 0.001-0.05); rounded up.
+_PEAK_ARRAYS = 20
 
 
 def wilson_interval(successes, trials, *, confidence=0.95):
@@ -236,6 +239,12 @@ class _Condition:
         self.post_frames = max(int(math.ceil(tail_s * frame_rate)), 2 * self.half + 5)
         self.penalty = _PENALTY_SD * noise_sd * _ar_impulse_norm(self.g, max(self.post_frames, 8))
 
+    def largest_array(self, n_trials, fpr, intervals) -> int:
+        """Elements of the largest array :func:`_run_condition` builds for this condition."""
+        null = self.pre_frames + _null_windows(fpr) * (2 * self.half + 1)
+        longest = self.pre_frames + int(math.ceil(max(intervals) * self.fr)) + 1 + self.post_frames
+        return max(null, _single_trials(n_trials, fpr) * longest, n_trials * longest)
+
     def _noisy(self, clean):
         if self.photons is not None:
             # shot noise: photon counts are Poisson with mean photons * (1 + ΔF/F)
@@ -273,9 +282,17 @@ def _first_frame(t, fr):
     return np.ceil(t * fr - 1e-9).astype(np.int64)
 
 
+def _null_windows(fpr):
+    return max(_MIN_NULL_WINDOWS, int(math.ceil(100.0 / fpr)))
+
+
+def _single_trials(n_trials, fpr):
+    return max(n_trials, int(math.ceil(20.0 / fpr)))
+
+
 def _run_condition(kernel, fr, sd, photons, *, n_trials, fpr, window_s, intervals, resolve_fraction, rng):
     cond = _Condition(kernel, fr, sd, photons, window_s, rng)
-    n_null = max(_MIN_NULL_WINDOWS, int(math.ceil(100.0 / fpr)))
+    n_null = _null_windows(fpr)
     null_a = cond.null_statistics(n_null)
     null_b = cond.null_statistics(n_null)
     # smallest threshold whose exceedance fraction in set A is <= fpr
@@ -302,7 +319,7 @@ def _run_condition(kernel, fr, sd, photons, *, n_trials, fpr, window_s, interval
 
     resolved = np.zeros(len(intervals))
     floor = max(threshold, 0.5 * single_mass)
-    singles, t_single = cond.trials(max(n_trials, int(math.ceil(20.0 / fpr))), extra_s=max(intervals))
+    singles, t_single = cond.trials(_single_trials(n_trials, fpr), extra_s=max(intervals))
     for m, interval in enumerate(intervals):
         activity, t1 = cond.trials(n_trials, interval)
         pair_split = _split_mass(activity, t1, interval, fr, cond.half)
@@ -391,6 +408,14 @@ def plan_detectability(*, kernel=None, indicator=None, frame_rates=DEFAULT_FRAME
     -------
     DetectabilityPlan
 
+    Raises
+    ------
+    ValueError
+        Bad arguments (frame rates outside 0.1 Hz-20 kHz among them); and a
+        request whose largest condition would need more memory than is
+        available (estimated before any simulation: 20 times its largest
+        trials x frames array, a factor measured with tracemalloc).
+
     Notes
     -----
     Per trial, the forward model (:meth:`Kernel.evaluate` summed over the
@@ -449,7 +474,8 @@ def plan_detectability(*, kernel=None, indicator=None, frame_rates=DEFAULT_FRAME
     (1, 1)
     """
     kernel = _plan_kernel(kernel, indicator)
-    frame_rates = _as_positive_tuple(frame_rates, "frame_rates")
+    frame_rates = tuple(check_frame_rate(rate, "frame_rates") for rate in _as_positive_tuple(frame_rates,
+                                                                                            "frame_rates"))
     if noise_sd is not None and photons_per_frame is not None:
         raise ValueError("give either noise_sd or photons_per_frame, not both")
     photons = None
@@ -468,6 +494,12 @@ def plan_detectability(*, kernel=None, indicator=None, frame_rates=DEFAULT_FRAME
     if resolve_fraction > 1:
         raise ValueError(f"resolve_fraction must be in (0, 1], got {resolve_fraction!r}")
     seed = check_int(seed, "seed", minimum=0)
+    largest = max(_Condition(kernel, fr, 1.0, None, window_s, None).largest_array(n_trials, fpr, intervals)
+                  for fr in frame_rates)
+    check_memory(_PEAK_ARRAYS * 8.0 * largest,
+                 f"plan_detectability with frame_rates up to {max(frame_rates):g} Hz, n_trials={n_trials} and "
+                 f"false_positive_rate={fpr:g}",
+                 remedy="lower the frame rates or n_trials, or raise false_positive_rate")
 
     shape = (len(frame_rates), len(noise))
     out = {key: np.full(shape, np.nan) for key in

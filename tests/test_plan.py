@@ -130,3 +130,30 @@ def test_more_noise_never_resolves_shorter_intervals():
                               n_trials=80, intervals_s=(0.035, 0.05, 0.075, 0.1, 0.15, 0.25, 0.5), seed=1)
     quiet, noisy = plan.shortest_resolved_interval_s[:, 0], plan.shortest_resolved_interval_s[:, 1]
     assert np.all(np.nan_to_num(noisy, nan=np.inf) >= quiet)
+
+
+@pytest.mark.parametrize("rates, match", [
+    ((30.0, 1e6), r"frame_rates=1000000.0 Hz is above the range of calcium imaging"),
+    ((1 / 30,), r"frame_rates=0.0333+ Hz is below.*the frame rate is 1/0.0333+ = 30 Hz"),
+    ((1e-300,), r"frame_rates=1e-300 Hz is below"),
+])
+def test_implausible_frame_rates_are_refused(rates, match):
+    with pytest.raises(ValueError, match=match):
+        plan_detectability(indicator="GCaMP6f", frame_rates=rates, n_trials=20)
+
+
+def test_a_plan_beyond_the_machine_is_refused_before_simulating():
+    import tracemalloc
+
+    # 20 kHz with a one-in-a-million false-positive rate: 2e7 single-spike trials of ~1e5 frames each.
+    tracemalloc.start()
+    try:
+        with pytest.raises(ValueError, match=r"plan_detectability with frame_rates up to 20000 Hz, n_trials=20 and "
+                                             r"false_positive_rate=1e-06 would need about .* of memory, more than"
+                                             r".*raise false_positive_rate"):
+            plan_detectability(indicator="GCaMP6f", frame_rates=(30.0, 20000.0), n_trials=20,
+                               false_positive_rate=1e-6)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 20e6
