@@ -59,8 +59,8 @@ import numpy as np
 from ._checks import as_traces, check_choice, check_frame_rate, check_int
 from .kernel import Kernel
 
-__all__ = ["SessionCalibration", "CalibratedInference", "calibrate_session", "infer_session", "load_calibration",
-           "CALIBRATION_SOURCES"]
+__all__ = ["SessionCalibration", "CalibratedInference", "RoiCount", "calibrate_session", "count_roi", "infer_session",
+           "load_calibration", "CALIBRATION_SOURCES"]
 
 CALIBRATION_SOURCES = ("paired", "blind", "indicator", "given")
 
@@ -185,6 +185,50 @@ class SessionCalibration:
         lines.extend(self.notes)
         return "\n".join(lines)
 
+    def for_session(self, n_rois: int, rois=None) -> "SessionCalibration":
+        """This calibration's kinetics and prior for a session of ``n_rois`` ROIs.
+
+        ``rois`` maps this calibration's ROIs to their indices in the session
+        (default: the same indices); the ROIs it names keep their sizes only
+        if they are paired (fitted from electrical spikes): every other ROI
+        gets its size from its own events under :attr:`size_prior` when it
+        is counted (:func:`count_roi`).  Used to calibrate a subset of a large
+        session once and count every ROI from it.
+        """
+        n_rois = check_int(n_rois, "n_rois", minimum=1)
+        rois = list(range(self.n_rois)) if rois is None else [int(r) for r in rois]
+        if len(rois) != self.n_rois:
+            raise ValueError(f"rois must give the session index of each of the {self.n_rois} calibrated ROIs, got "
+                             f"{len(rois)}")
+        nan = np.full(n_rois, math.nan)
+        size, low, high, z = nan.copy(), nan.copy(), nan.copy(), nan.copy()
+        calibrated = np.zeros(n_rois, dtype=bool)
+        reasons = [""] * n_rois
+        paired = []
+        for own, roi in enumerate(rois):
+            if own in self.paired_rois:
+                size[roi], low[roi], high[roi] = self.spike_size[own], self.spike_size_low[own], self.spike_size_high[own]
+                calibrated[roi] = True
+                paired.append(roi)
+        import dataclasses
+
+        return dataclasses.replace(self, spike_size=size, spike_size_low=low, spike_size_high=high, size_z=z,
+                                   calibrated=calibrated, reasons=tuple(reasons), paired_rois=tuple(sorted(paired)))
+
+    @classmethod
+    def fixed(cls, kernel, n_rois, frame_rate, *, source="given", indicator=None) -> "SessionCalibration":
+        """Every ROI counted with one given kernel (its amplitude is the single-spike size; no interval)."""
+        if not isinstance(kernel, Kernel):
+            raise ValueError(f"kernel must be a calcium.Kernel, got {type(kernel).__name__}")
+        n_rois = check_int(n_rois, "n_rois", minimum=1)
+        size = np.full(n_rois, float(kernel.amplitude))
+        return cls(source=check_choice(source, "source", CALIBRATION_SOURCES), frame_rate=check_frame_rate(frame_rate),
+                   rise_s=kernel.rise_s, decay_s=kernel.decay_s, rise_range_s=(kernel.rise_s, kernel.rise_s),
+                   decay_range_s=(kernel.decay_s, kernel.decay_s), n_kinetics_rois=0, spike_size=size,
+                   spike_size_low=size.copy(), spike_size_high=size.copy(), calibrated=np.ones(n_rois, dtype=bool),
+                   reasons=("",) * n_rois, size_z=np.full(n_rois, math.nan), indicator=indicator,
+                   notes=("single-spike size given, not estimated: count intervals are not available",))
+
     def to_dict(self) -> dict:
         """Plain values (JSON-ready)."""
         return {"source": self.source, "frame_rate": self.frame_rate, "rise_s": self.rise_s, "decay_s": self.decay_s,
@@ -265,6 +309,111 @@ class CalibratedInference:
     def spike_counts(self) -> np.ndarray:
         """Total spikes per ROI."""
         return np.array([r.n_spikes for r in self.results], dtype=np.int64)
+
+
+@dataclass(frozen=True)
+class RoiCount:
+    """One ROI counted with a session calibration (see :func:`count_roi`).
+
+    Attributes
+    ----------
+    result : SpikeInference
+        Spikes at the ROI's single-spike size (``result.kernel`` carries it).
+    spike_size, spike_size_low, spike_size_high : float
+        ΔF/F of one spike and its 90 % interval.
+    size_z : float
+        ``spike_size`` in s.d. of an event's size noise (NaN if unknown).
+    count_low, count_high : int
+        Spike counts at the upper and at the lower end of the size interval.
+    calibrated : bool
+        False when the count is not to be trusted.
+    reason : str
+        Why not ("" when calibrated).
+    """
+
+    result: object
+    spike_size: float
+    spike_size_low: float
+    spike_size_high: float
+    size_z: float
+    count_low: int
+    count_high: int
+    calibrated: bool
+    reason: str
+
+
+def count_roi(trace, frame_rate, calibration, roi, *, noise_sd=None, threshold=0.5, unit_result=None) -> RoiCount:
+    """Spikes of one ROI with a session calibration.
+
+    The trace is deconvolved with the session kernel at unit amplitude
+    (or ``unit_result`` is taken as that deconvolution).  Where the
+    calibration holds a size for ``roi`` (paired ROIs, or a calibration of
+    these very ROIs) that size is used; otherwise the size is estimated from
+    the trace's events (:func:`calcium.infer.quantal.fit_quantal_mixture`)
+    under the calibration's prior across the session (its ``size_prior``),
+    as :func:`calibrate_session` does.  The events are then counted at that
+    size and at both ends of its interval.  A count is also flagged when it
+    is implausible (a rate above ``MAX_PLAUSIBLE_RATE_HZ``, more than
+    ``MAX_SPIKES_PER_FRAME`` spikes in a frame).
+
+    Parameters
+    ----------
+    trace : array_like, shape (frames,)
+        ΔF/F of the ROI.
+    frame_rate : float
+        Hz.
+    calibration : SessionCalibration
+    roi : int
+        The ROI's index in the calibration.
+    noise_sd : float, optional
+        Noise s.d. of the trace (estimated when not given).
+    threshold : float, default 0.5
+        As in :func:`calcium.infer_spikes`.
+    unit_result : SpikeInference, optional
+        The trace's deconvolution with ``calibration.shape()``, if already
+        computed.
+
+    Returns
+    -------
+    RoiCount
+    """
+    from .infer.api import infer_spikes, recount
+
+    if not isinstance(calibration, SessionCalibration):
+        raise ValueError(f"calibration must be a SessionCalibration, got {type(calibration).__name__}")
+    roi = check_int(roi, "roi", minimum=0, maximum=calibration.n_rois - 1)
+    shape = calibration.shape()
+    unit = unit_result
+    if unit is None:
+        unit = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold)
+    if np.isfinite(calibration.spike_size[roi]):
+        size, low, high = (float(calibration.spike_size[roi]), float(calibration.spike_size_low[roi]),
+                           float(calibration.spike_size_high[roi]))
+        z = float(calibration.size_z[roi]) if calibration.size_z.size else math.nan
+        reason = calibration.reasons[roi] if calibration.reasons else ""
+    else:
+        indicator_size = None
+        if calibration.indicator is not None:
+            from .indicators import get_indicator
+
+            indicator_size = get_indicator(calibration.indicator).dff_single_spike
+        size, low, high, z, reason = _roi_size(_quantal_fit(unit, frame_rate, shape), calibration.size_prior,
+                                               indicator_size)
+    if not (np.isfinite(size) and size > 0) or unit.kernel is None or unit.coefficients.size == 0:
+        empty = unit if unit.n_spikes == 0 else recount(unit, frame_rate, 1e300, threshold=threshold)
+        return RoiCount(empty, size, low, high, z, 0, 0, False, reason or "no single-spike size: no spikes counted")
+    result = recount(unit, frame_rate, size, threshold=threshold)
+    count_high = recount(unit, frame_rate, low, threshold=threshold).n_spikes
+    count_low = recount(unit, frame_rate, high, threshold=threshold).n_spikes
+    if not reason:
+        duration_s = unit.activity.size / frame_rate
+        rate = result.n_spikes / duration_s
+        if rate > MAX_PLAUSIBLE_RATE_HZ:
+            reason = f"implausible rate ({rate:.3g} spikes/s, more than {MAX_PLAUSIBLE_RATE_HZ:g})"
+        elif result.spike_counts.size and int(result.spike_counts.max()) > MAX_SPIKES_PER_FRAME:
+            reason = (f"implausible count ({int(result.spike_counts.max())} spikes in one frame, more than "
+                      f"{MAX_SPIKES_PER_FRAME})")
+    return RoiCount(result, size, low, high, z, count_low, count_high, reason == "", reason)
 
 
 # ---------------------------------------------------------------------------
@@ -349,20 +498,26 @@ def _paired_kinetics(rows, frame_rate, electrical, fit_options, progress):
 # ---------------------------------------------------------------------------
 # sizes
 # ---------------------------------------------------------------------------
-def _roi_events(trace, frame_rate, shape):
+def _roi_events(trace, frame_rate, shape, noise_sd=None, threshold=0.5):
     """Deconvolution with the unit-amplitude session kernel, and the quantal fit of its event sizes."""
     from .infer.api import infer_spikes
+
+    result = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold)
+    return result, _quantal_fit(result, frame_rate, shape)
+
+
+def _quantal_fit(result, frame_rate, shape):
+    """The quantal fit of the event sizes of a deconvolution with the unit-amplitude kernel ``shape``."""
     from .infer.counts import event_noise_size, event_sizes
     from .infer.quantal import fit_quantal_mixture
 
-    result = infer_spikes(trace, frame_rate, kernel=shape)
     if result.coefficients.size == 0 or not result.noise_sd > 0:
-        return result, None
+        return None
     # (a spike's activity spreads over about its rise: closer runs are one event)
     gap = max(1, int(math.ceil(shape.rise_s * frame_rate)))
     sizes = event_sizes(result.activity, merge_gap=gap)
     noise_size = event_noise_size(result.coefficients, result.noise_sd, result.activity.size) / result.spike_size
-    return result, fit_quantal_mixture(sizes, noise_size=noise_size)
+    return fit_quantal_mixture(sizes, noise_size=noise_size)
 
 
 def _paired_size(trace, frame_rate, spike_times, fit, shape):
@@ -445,6 +600,18 @@ def _posterior(fit, prior):
     cdf /= cdf[-1]
     at = [float(np.exp(np.interp(p, cdf, lg))) for p in ((1 - _LEVEL) / 2, 0.5, (1 + _LEVEL) / 2)]
     return at[1], at[0], at[2]
+
+
+def _roi_size(fit, prior, indicator_size):
+    """(size, low, high, z, reason) of one ROI from its quantal fit and the session's prior."""
+    size = low = high = z = math.nan
+    if fit is not None and np.isfinite(fit.quantum):
+        size, low, high = _posterior(fit, prior)
+        z = fit.quantum_z * size / fit.quantum  # (the posterior size over the same size noise)
+    elif np.isfinite(prior[0]):
+        size = math.exp(prior[0])
+        low, high = (math.exp(prior[0] + z * prior[1]) for z in (-1.645, 1.645))
+    return size, low, high, z, _size_verdict(fit, size, low, high, prior, indicator_size)
 
 
 def _size_verdict(fit, size, low, high, prior, indicator_size):
@@ -624,18 +791,9 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
     reasons = [""] * n
     size_z = np.full(n, math.nan)
     for i in range(n):
-        if i in paired:
-            continue  # (sizes from their own fits, below)
-        fit = fits[i]
-        if fit is not None and np.isfinite(fit.quantum):
-            size[i], low[i], high[i] = _posterior(fit, prior)
-        elif np.isfinite(prior[0]):
-            size[i] = math.exp(prior[0])
-            low[i], high[i] = (math.exp(prior[0] + z * prior[1]) for z in (-1.645, 1.645))
-        if fit is not None and np.isfinite(fit.quantum) and np.isfinite(size[i]):
-            size_z[i] = fit.quantum_z * size[i] / fit.quantum  # (the posterior size over the same size noise)
-        reasons[i] = _size_verdict(fit, size[i], low[i], high[i], prior, indicator_size)
-        calibrated[i] = reasons[i] == ""
+        if i not in paired:  # (paired sizes come from their own fits, below)
+            size[i], low[i], high[i], size_z[i], reasons[i] = _roi_size(fits[i], prior, indicator_size)
+            calibrated[i] = reasons[i] == ""
     for roi in paired:
         size[roi], low[roi], high[roi] = _paired_size(rows[roi], frame_rate, electrical[roi], paired_fits[roi], shape)
         calibrated[roi] = True
@@ -679,8 +837,6 @@ def infer_session(dff, frame_rate, *, calibration=None, electrical_spikes=None, 
     its count is implausible: a rate above ``MAX_PLAUSIBLE_RATE_HZ`` or more
     than ``MAX_SPIKES_PER_FRAME`` spikes in one frame.
     """
-    from .infer.api import infer_spikes, recount
-
     rows = _session_rows(dff)
     frame_rate = check_frame_rate(frame_rate)
     if calibration is None:
@@ -696,34 +852,13 @@ def infer_session(dff, frame_rate, *, calibration=None, electrical_spikes=None, 
             raise ValueError(f"the calibration was made at {calibration.frame_rate:g} Hz, the traces are at "
                              f"{frame_rate:g} Hz")
         unit_results = [None] * rows.shape[0]
-    shape = calibration.shape()
     n = rows.shape[0]
-    duration_s = rows.shape[1] / frame_rate
-    results, low_counts, high_counts = [], np.zeros(n, np.int64), np.zeros(n, np.int64)
-    calibrated = calibration.calibrated.copy()
-    reasons = list(calibration.reasons)
-    for i in _bar(range(n), progress, "counting"):
-        unit = unit_results[i]
-        if unit is None:
-            unit = infer_spikes(rows[i], frame_rate, kernel=shape, threshold=threshold)
-        size = float(calibration.spike_size[i])
-        if not (np.isfinite(size) and size > 0) or unit.kernel is None or unit.coefficients.size == 0:
-            results.append(unit if unit.n_spikes == 0 else recount(unit, frame_rate, 1e300, threshold=threshold))
-            calibrated[i] = False
-            reasons[i] = reasons[i] or "no single-spike size: no spikes counted"
-            continue
-        result = recount(unit, frame_rate, size, threshold=threshold)
-        results.append(result)
-        high_counts[i] = recount(unit, frame_rate, float(calibration.spike_size_low[i]), threshold=threshold).n_spikes
-        low_counts[i] = recount(unit, frame_rate, float(calibration.spike_size_high[i]), threshold=threshold).n_spikes
-        if calibrated[i]:
-            rate = result.n_spikes / duration_s
-            if rate > MAX_PLAUSIBLE_RATE_HZ:
-                calibrated[i] = False
-                reasons[i] = f"implausible rate ({rate:.3g} spikes/s, more than {MAX_PLAUSIBLE_RATE_HZ:g})"
-            elif result.spike_counts.size and int(result.spike_counts.max()) > MAX_SPIKES_PER_FRAME:
-                calibrated[i] = False
-                reasons[i] = (f"implausible count ({int(result.spike_counts.max())} spikes in one frame, more than "
-                              f"{MAX_SPIKES_PER_FRAME})")
+    counted = [count_roi(rows[i], frame_rate, calibration, i, threshold=threshold, unit_result=unit_results[i])
+               for i in _bar(range(n), progress, "counting")]
+    results = [c.result for c in counted]
+    low_counts = np.array([c.count_low for c in counted], dtype=np.int64)
+    high_counts = np.array([c.count_high for c in counted], dtype=np.int64)
+    calibrated = np.array([c.calibrated for c in counted], dtype=bool)
+    reasons = [c.reason for c in counted]
     return CalibratedInference(results=tuple(results), calibration=calibration, count_low=low_counts,
                                count_high=high_counts, calibrated=calibrated, reasons=tuple(reasons))

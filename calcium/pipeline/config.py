@@ -344,6 +344,27 @@ class InferenceConfig:
 
 
 @dataclass(frozen=True)
+class CalibrationConfig:
+    """[calibration]: how the kinetics and each ROI's single-spike size are learned (see calcium.calibrate)."""
+
+    source: str = _key("auto", _Choice("auto", "paired", "session", "per-roi", "indicator", "given", "file"),
+                       "Where the counts' calibration comes from. auto: ROIs with electrical spikes when "
+                       "inputs.electrical_spikes is given (paired), else the whole session (session); paired: fits "
+                       "of the ROIs with electrical spikes; session: blind, kinetics pooled over the ROIs and each "
+                       "ROI's spike size from its events, shrunk towards the session's sizes; per-roi: each ROI "
+                       "alone (not recommended: counts are often off by 2x); indicator: the published kinetics of "
+                       "inference.indicator, sizes still estimated per ROI; given: inference.rise_s, decay_s and "
+                       "spike_size as they are; file: the calibration in calibration.file.")
+    file: Path | None = _key(None, _Path("a calibration file (.json) written by calcium calibrate or calcium infer"),
+                             "With source = \"file\": a calibration of another session (or of this one) to reuse.",
+                             example="calibration.json", hashed=False)
+    max_rois: int = _key(200, _Integer(ge=1), "The session's kinetics and its distribution of spike sizes are "
+                         "learned on at most this many ROIs (spread evenly over the session, paired ROIs always "
+                         "included); every ROI's own size is then estimated from its events. 200 ROIs give the "
+                         "median size to about 2 % (its s.d. over the log sizes, 0.25 / sqrt(200)).")
+
+
+@dataclass(frozen=True)
 class QualityConfig:
     """[quality]: thresholds of the per-ROI quality flags."""
 
@@ -431,6 +452,7 @@ _SECTIONS = {
     "filter": FilterConfig,
     "noise": NoiseConfig,
     "inference": InferenceConfig,
+    "calibration": CalibrationConfig,
     "quality": QualityConfig,
     "kernel_fit": KernelFitConfig,
     "scoring": ScoringConfig,
@@ -446,7 +468,7 @@ class RunConfig:
 
     Attributes
     ----------
-    inputs, output, extraction, dff, filter, noise, inference, quality, kernel_fit, scoring, report, nwb, execution
+    inputs, output, extraction, dff, filter, noise, inference, calibration, quality, kernel_fit, scoring, report, nwb, execution
         The sections (see each class for its keys).
     source : pathlib.Path or None
         The TOML file the configuration was read from, if any.
@@ -461,6 +483,7 @@ class RunConfig:
     filter: FilterConfig = field(default_factory=FilterConfig)
     noise: NoiseConfig = field(default_factory=NoiseConfig)
     inference: InferenceConfig = field(default_factory=InferenceConfig)
+    calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
     quality: QualityConfig = field(default_factory=QualityConfig)
     kernel_fit: KernelFitConfig = field(default_factory=KernelFitConfig)
     scoring: ScoringConfig = field(default_factory=ScoringConfig)
@@ -561,6 +584,21 @@ def _check_consistency(config: RunConfig) -> None:
                           f"inference.decay_s = {inf.decay_s!r}")
     if inf.indicator is not None and inf.decay_s is not None:
         raise ConfigError("inference.indicator and inference.rise_s/decay_s were both given; give one kernel")
+    cal = config.calibration
+    if cal.source == "file" and cal.file is None:
+        raise ConfigError("calibration.source = \"file\" needs calibration.file (a calibration .json); give it or "
+                          "choose another calibration.source")
+    if cal.file is not None and cal.source != "file":
+        raise ConfigError(f"calibration.file is given but calibration.source = {cal.source!r}; set "
+                          f"calibration.source = \"file\" to use it")
+    if cal.source == "paired" and inputs.electrical_spikes is None:
+        raise ConfigError("calibration.source = \"paired\" needs inputs.electrical_spikes (spike times of some "
+                          "ROIs); give them or set calibration.source = \"session\"")
+    if cal.source == "indicator" and inf.indicator is None:
+        raise ConfigError("calibration.source = \"indicator\" needs inference.indicator")
+    if cal.source == "given" and inf.decay_s is None and inf.indicator is None:
+        raise ConfigError("calibration.source = \"given\" needs the kernel: inference.rise_s and decay_s (or "
+                          "inference.indicator), and optionally inference.spike_size")
     band = config.noise.band_hz
     if band is not None and not band[0] < band[1]:
         raise ConfigError(f"noise.band_hz = {list(band)!r} is not allowed: low must be below high")
