@@ -282,3 +282,111 @@ def test_worker_processes_import_the_installed_package_beside_a_folder_named_cal
 
     with open_results(session / "out" / "results.h5") as results:
         assert results.complete and results.n_rois == 3
+
+
+# ---------------------------------------------------------------------------
+# a full disk: one line naming the file and saying "no space left"; nothing that passes for finished
+# ---------------------------------------------------------------------------
+@pytest.mark.parametrize("failure", ["errno ENOSPC", "a write cut short by numpy"])
+def test_a_full_disk_while_writing_names_the_file_and_removes_the_part_written(tmp_path, failure, monkeypatch):
+    import errno
+    import shutil
+
+    from calcium.io.results import OutputWriteError, atomic_output
+
+    if failure == "errno ENOSPC":
+        cause = OSError(errno.ENOSPC, "No space left on device")
+    else:  # numpy's fwrite reports only the counts; the disk is then (nearly) full
+        cause = OSError("6000 requested and 2032 written")
+        usage = shutil.disk_usage(tmp_path)
+        monkeypatch.setattr(shutil, "disk_usage", lambda folder: usage._replace(free=512))
+    with pytest.raises(OutputWriteError) as info:
+        with atomic_output(tmp_path / "dff.npy") as tmp:
+            tmp.write_bytes(b"part of it")
+            raise cause
+    assert str(info.value).startswith(f"cannot write {tmp_path / 'dff.npy'}: no space left on the device")
+    assert info.value.errno == errno.ENOSPC and list(tmp_path.iterdir()) == []
+
+
+def test_a_write_cut_short_on_a_disk_with_room_is_not_called_a_full_disk(tmp_path):
+    from calcium.io.results import OutputWriteError, atomic_output
+
+    with pytest.raises(OSError, match="requested and") as info:
+        with atomic_output(tmp_path / "dff.npy"):
+            raise OSError("6000 requested and 2032 written")
+    assert not isinstance(info.value, OutputWriteError)
+
+
+def test_a_report_stopped_by_a_full_disk_leaves_no_page_and_no_work_folder(session, monkeypatch, capsys):
+    # The disk fills up under the report's second figure, on a rerun whose earlier report was complete.
+    import contextlib
+    import errno
+
+    from calcium.io import results as results_module
+    from calcium.pipeline import open_results
+
+    config = _toml(session / "run.toml", inputs={"traces": "traces.h5"}, output={"folder": "out"},
+                   report={"enabled": True, "n_examples": 2}, execution={"backend": "serial"})
+    assert main(["run", str(config), "--quiet"]) == 0
+    assert (session / "out" / "report" / "index.html").exists()
+    real, written = results_module.atomic_output, []
+
+    @contextlib.contextmanager
+    def disk_fills_up(path, **kwargs):
+        with real(path, **kwargs) as tmp:
+            yield tmp
+            written.append(Path(path).name)
+            if len(written) > 1 and Path(path).suffix == ".png":
+                raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(results_module, "atomic_output", disk_fills_up)
+    before = _sha(session / "traces.h5")
+    assert main(["run", str(config), "--overwrite", "--quiet"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no space left" in err[0] and f"{written[-1]}:" in err[0], err
+    assert not (session / "out" / "report" / "index.html").exists()  # no page that passes for the new report
+    assert not (session / "out" / ".calcium-work").exists()
+    assert _sha(session / "traces.h5") == before
+    with open_results(session / "out" / "results.h5") as view:  # the results themselves are finished
+        assert view.complete
+
+
+def _unshare_works(folder: Path) -> bool:
+    import shutil
+    import subprocess
+
+    if shutil.which("unshare") is None:
+        return False
+    probe = subprocess.run(["unshare", "--user", "--map-root-user", "--mount", "sh", "-c",
+                            f"mount -t tmpfs -o size=16k tmpfs '{folder}'"], capture_output=True)
+    return probe.returncode == 0
+
+
+def test_commands_on_a_really_full_disk_give_one_line_and_leave_nothing(session, tmp_path_factory):
+    # A real full disk: a 16 kB tmpfs mounted in a user namespace of its own (Linux), as the output folder.
+    import subprocess
+    import sys
+
+    disk = tmp_path_factory.mktemp("disk")
+    if not _unshare_works(disk):
+        pytest.skip("no unprivileged mount namespaces here (unshare --user --mount): a small disk cannot be made")
+    write_traces(session / "long.h5", 100.0 + np.random.default_rng(0).normal(0.0, 1.0, (3, 2000)),
+                 frame_rate=RATE)  # (48 kB of ΔF/F: more than the disk holds)
+    config = _toml(session / "run.toml", inputs={"traces": "long.h5"}, output={"folder": str(disk / "out")},
+                   execution={"backend": "serial"})
+    calcium = Path(sys.executable).with_name("calcium")
+    outputs = {f"dff long.h5 --out {disk}/dff.h5": "dff.h5", f"dff long.h5 --out {disk}/dff.npy": "dff.npy",
+               f"dff long.h5 --out {disk}/dff.csv": "dff.csv", f"run {config}": "results.h5"}
+    script = [f"mount -t tmpfs -o size=16k tmpfs '{disk}' || exit 99"]
+    for command in outputs:  # the exit code, then the last line on stderr (a .npy warning may come first)
+        script.append(f"said=$('{calcium}' {command} --quiet 2>&1 >/dev/null); echo \"$? $(echo \"$said\" | tail -n 1)\"")
+    script.append(f"find '{disk}' -type f")  # (the disk goes with the namespace: look now)
+    before = _files(session)
+    done = subprocess.run(["unshare", "--user", "--map-root-user", "--mount", "sh", "-c", "\n".join(script)],
+                          cwd=session, capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.strip().splitlines()
+    assert len(lines) == len(outputs), done.stdout  # one line per command, and no file left on the disk
+    for line, name in zip(lines, outputs.values()):
+        assert line.startswith("1 calcium ") and f"{name}: no space left on the device" in line, line
+    assert _files(session) == before

@@ -12,10 +12,13 @@ from __future__ import annotations
 
 import contextlib
 import csv
+import errno
 import hashlib
 import json
 import numbers
 import os
+import re
+import shutil
 import tempfile
 from datetime import datetime, timezone
 from pathlib import Path
@@ -28,6 +31,8 @@ __all__ = [
     "file_sha256",
     "atomic_output",
     "protect_inputs",
+    "OutputWriteError",
+    "size_text",
     "write_hdf5",
     "read_hdf5",
     "write_csv",
@@ -88,7 +93,9 @@ def _load_npy(path: Path, *, mmap_mode=None) -> np.ndarray:
 
 
 def _save_npy(path, array: np.ndarray, *, inputs=()) -> Path:
-    """np.save (no pickle) through :func:`atomic_output`."""
+    """np.save (no pickle) through :func:`atomic_output`, refused at once when the disk has no room for it."""
+    _refuse_inputs(path, inputs)
+    _check_room(path, array.nbytes + 4096)
     with atomic_output(path, inputs=inputs) as tmp:
         with open(tmp, "wb") as handle:
             np.save(handle, array, allow_pickle=False)
@@ -246,6 +253,81 @@ def _refuse_inputs(path: Path, inputs) -> None:
     protect_inputs(inputs, files=[path])
 
 
+class OutputWriteError(OSError):
+    """A file could not be written (a full disk above all); the message names the file, the reason and a remedy.
+
+    ``errno`` says why (ENOSPC for a full disk).
+    """
+
+    def __str__(self):
+        return self.strerror if self.strerror else super().__str__()
+
+
+def _short_write(text: str):
+    """(bytes requested, bytes written) from numpy's message for a write cut short, or None."""
+    found = re.search(r"(\d+) requested and (\d+) written", text)
+    return (int(found.group(1)), int(found.group(2))) if found else None
+
+
+def _no_space(exc: OSError, folder: Path) -> bool:
+    """Whether ``exc`` says that the disk holding ``folder`` is full (or the user's quota used up)."""
+    if getattr(exc, "errno", None) in (errno.ENOSPC, errno.EDQUOT):
+        return True
+    text = str(exc)
+    if "No space left" in text or "Disk quota exceeded" in text:  # (h5py and others put errno in the text)
+        return True
+    short = _short_write(text)  # numpy writes arrays with fwrite and reports only the counts
+    if short is not None:
+        try:  # (measured while the part written is still there)
+            return shutil.disk_usage(folder).free < short[0] - short[1]
+        except OSError:
+            return False
+    return False
+
+
+def space_error(path, exc: OSError, folder=None):
+    """An :class:`OutputWriteError` naming ``path`` and saying "no space left" when ``exc`` is a full disk (or a
+    used-up quota); else None."""
+    path = Path(path)
+    if isinstance(exc, OutputWriteError) or not _no_space(exc, Path(folder) if folder else path.parent):
+        return None
+    return OutputWriteError(errno.ENOSPC, f"cannot write {path}: no space left on the device (the disk or your "
+                                          f"quota is full); free some space, or write to another disk")
+
+
+def _check_room(path, n_bytes: int) -> None:
+    """Refuse, before writing, a file of about ``n_bytes`` that cannot fit on the disk of its folder.
+
+    (HDF5 cannot be relied on to fail cleanly when the disk fills up under it: the message comes, but the
+    library may crash the process afterwards.)
+    """
+    path = Path(path)
+    try:
+        free = shutil.disk_usage(path.parent if str(path.parent) else ".").free
+    except OSError:
+        return
+    if n_bytes > free:
+        raise OutputWriteError(errno.ENOSPC, f"cannot write {path}: no space left on the device (it needs about "
+                                             f"{size_text(n_bytes)}, {size_text(free)} are free); free some "
+                                             f"space, or write to another disk")
+
+
+def size_text(n_bytes: int) -> str:
+    """A size for people: '820 bytes', '1.5 kB', '12 MB', '3.2 GB' (decimal units)."""
+    if n_bytes < 1000:
+        return f"{int(n_bytes)} bytes"
+    for unit, scale in (("kB", 1e3), ("MB", 1e6), ("GB", 1e9), ("TB", 1e12)):
+        value = n_bytes / scale
+        if value < 999.5 or unit == "TB":
+            return f"{value:.1f} {unit}" if value < 9.95 else f"{value:.0f} {unit}"
+
+
+#: Bytes of HDF5 bookkeeping counted per dataset or attribute when the room a file needs is estimated: an
+#: upper bound (measured on our files: about 1 kB per dataset of a results file, 0.5 kB per item of a small
+#: ΔF/F file, superblock and heaps included).
+HDF5_OVERHEAD_BYTES = 2048
+
+
 @contextlib.contextmanager
 def atomic_output(path, *, inputs=()):
     """Write a file atomically: yield a temporary path, then move it onto ``path``.
@@ -270,6 +352,10 @@ def atomic_output(path, *, inputs=()):
 
     Raises
     ------
+    OutputWriteError
+        (an OSError) naming ``path`` and saying "no space left" when the
+        disk fills up while the ``with`` block writes (the temporary file
+        is removed).
     ValueError
         If ``path`` is one of ``inputs`` (by path or file identity, see
         :func:`protect_inputs`; then :class:`~calcium._checks.OutputOverInputError`),
@@ -292,7 +378,10 @@ def atomic_output(path, *, inputs=()):
         raise ValueError(f"cannot write {path}: folder {folder} does not exist")
     if path.is_dir():
         raise ValueError(f"cannot write {path}: it is a folder")
-    handle, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".part{path.suffix}", dir=folder)
+    try:
+        handle, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".part{path.suffix}", dir=folder)
+    except OSError as exc:  # (no room even for an empty file: inodes or quota)
+        raise space_error(path, exc, folder) or exc
     os.close(handle)
     tmp = Path(tmp_name)
     try:
@@ -302,9 +391,12 @@ def atomic_output(path, *, inputs=()):
         os.umask(umask)
         os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
+        full = space_error(path, exc, folder) if isinstance(exc, OSError) else None  # (measured before the unlink)
         with contextlib.suppress(OSError):
             tmp.unlink()
+        if full is not None:
+            raise full from exc
         raise
 
 
@@ -403,6 +495,9 @@ def write_hdf5(path, datasets: dict, *, attrs: dict | None = None, inputs=()) ->
     attrs["created"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
     attrs["input_sha256"] = _hash_inputs(inputs)
     stored = {name: _attr_value(name, value) for name, value in attrs.items()}
+    _refuse_inputs(path, inputs)
+    _check_room(path, sum(arr.nbytes for arr in arrays.values())
+                + HDF5_OVERHEAD_BYTES * (2 + len(arrays) + len(stored)))
     with atomic_output(path, inputs=inputs) as tmp:
         with h5py.File(tmp, "w") as handle:
             for name, arr in arrays.items():

@@ -506,6 +506,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
     with open_results(results_path) as results:
         quality = results.read("quality_flags")
     spikes_path = write_spike_table_from_results(results_path, folder / SPIKES_NAME, parts=parts)
+    shutil.rmtree(work, ignore_errors=True)  # (needed no more: a failing report or NWB export leaves none behind)
     report_path = None
     if config.report.enabled:
         report_path = write_session_report(results_path, folder / REPORT_FOLDER,
@@ -520,7 +521,6 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
                               session_description=config.nwb.session_description,
                               session_start=config.nwb.session_start, experimenter=config.nwb.experimenter,
                               location=config.nwb.location, indicator=config.inference.indicator)
-    shutil.rmtree(work, ignore_errors=True)
     elapsed = time.perf_counter() - started
     summary = RunSummary(
         output_folder=folder, results_path=results_path, spikes_path=spikes_path, report_path=report_path,

@@ -215,9 +215,9 @@ def _describe_oserror(exc: BaseException) -> str:
     code = getattr(exc, "errno", None)
     text = str(exc)
     if code == errno.ENOSPC or "No space left" in text:
-        return "the disk is full"
+        return "no space left on the device (the disk is full)"
     if code == errno.EDQUOT or "quota" in text.lower():
-        return "the disk quota is exhausted"
+        return "no space left under your disk quota"
     if code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission denied" in text or "Read-only" in text:
         return "permission denied (read-only folder or file system?)"
     return text or type(exc).__name__
@@ -330,7 +330,7 @@ class ResultStore:
             if not overwrite:
                 raise OutputMismatchError(verdict)
         specs = list(datasets)
-        cls._check_space(folder, specs)
+        cls._check_space(path, specs)
         cls._create(path, specs, np.asarray(chunk_bounds, dtype=np.int64), run_hash, attrs, parameters,
                     tuple(flags))
         return cls(path, cls._open_handle(path), resumed=False)
@@ -378,15 +378,18 @@ class ResultStore:
                 f"choose another output")
 
     @staticmethod
-    def _check_space(folder: Path, specs) -> None:
-        needed = sum(spec.nbytes for spec in specs)
+    def _check_space(path: Path, specs) -> None:
+        from ..io.results import HDF5_OVERHEAD_BYTES, size_text
+
+        needed = sum(spec.nbytes + HDF5_OVERHEAD_BYTES for spec in specs) + 16 * HDF5_OVERHEAD_BYTES
         try:
-            free = shutil.disk_usage(folder).free
+            free = shutil.disk_usage(path.parent if str(path.parent) else Path(".")).free
         except OSError:
             return
         if needed > free:
-            raise OutputError(errno.ENOSPC, f"not enough disk space in {folder}: the results need "
-                                            f"{needed / 1e9:.2f} GB, {free / 1e9:.2f} GB are free")
+            raise OutputError(errno.ENOSPC, f"cannot create {path}: no space left on the device for it (it needs "
+                                            f"{size_text(needed)}, {size_text(free)} are free); free some "
+                                            f"space, or write the results to another disk")
 
     @staticmethod
     def _create(path: Path, specs, bounds: np.ndarray, run_hash, attrs, parameters, flags) -> None:
