@@ -189,7 +189,8 @@ class SessionCalibration:
         """This calibration's kinetics and prior for a session of ``n_rois`` ROIs.
 
         ``rois`` maps this calibration's ROIs to their indices in the session
-        (default: the same indices); the ROIs it names keep their sizes only
+        (default: the same indices; empty: none of them is in the session,
+        as for a calibration of another session); the ROIs it names keep their sizes only
         if they are paired (fitted from electrical spikes): every other ROI
         gets its size from its own events under :attr:`size_prior` when it
         is counted (:func:`count_roi`).  Used to calibrate a subset of a large
@@ -197,7 +198,7 @@ class SessionCalibration:
         """
         n_rois = check_int(n_rois, "n_rois", minimum=1)
         rois = list(range(self.n_rois)) if rois is None else [int(r) for r in rois]
-        if len(rois) != self.n_rois:
+        if len(rois) not in (0, self.n_rois):
             raise ValueError(f"rois must give the session index of each of the {self.n_rois} calibrated ROIs, got "
                              f"{len(rois)}")
         nan = np.full(n_rois, math.nan)
@@ -228,6 +229,15 @@ class SessionCalibration:
                    spike_size_low=size.copy(), spike_size_high=size.copy(), calibrated=np.ones(n_rois, dtype=bool),
                    reasons=("",) * n_rois, size_z=np.full(n_rois, math.nan), indicator=indicator,
                    notes=("single-spike size given, not estimated: count intervals are not available",))
+
+    def session_dict(self) -> dict:
+        """The session-level values (no per-ROI arrays but the paired ROIs' sizes) and the summary: what a
+        results file records."""
+        data = {k: v for k, v in self.to_dict().items()
+                if k not in ("spike_size", "spike_size_low", "spike_size_high", "calibrated", "reasons", "size_z")}
+        data["paired_spike_size"] = [float(self.spike_size[r]) for r in self.paired_rois]
+        data["summary"] = self.summary()
+        return data
 
     def to_dict(self) -> dict:
         """Plain values (JSON-ready)."""

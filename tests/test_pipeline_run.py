@@ -90,8 +90,10 @@ def _same_config(session, folder, **sections):
 # what a run computes
 # ---------------------------------------------------------------------------
 def test_each_roi_gets_the_results_of_the_stage_functions_called_directly(session):
-    # Reference: the public stage functions applied to one ROI by hand.
-    from calcium.infer import infer_spikes
+    # Reference: the public stage functions applied to one ROI by hand: ΔF/F, noise, the session calibration
+    # (paired: ROIs 0 and 1 have electrical spikes) and the count of the ROI with it.
+    from calcium.calibrate import calibrate_session, count_roi
+    from calcium.io import read_spike_times
     from calcium.signal import delta_f_over_f, estimate_noise
 
     summary = session["summary"]
@@ -102,7 +104,13 @@ def test_each_roi_gets_the_results_of_the_stage_functions_called_directly(sessio
     assert np.array_equal(data["dff"][roi], direct.dff.astype(np.float32))
     assert np.array_equal(data["f0"][roi], direct.f0.astype(np.float32))
     noise_sd = estimate_noise(direct.dff, RATE)
-    inferred = infer_spikes(direct.dff, RATE, noise_sd=noise_sd)
+    usable = [r for r in range(N_ROIS) if r not in (ALL_MISSING, NEGATIVE)]
+    dff = delta_f_over_f(session["raw"][usable], RATE).dff
+    calibration = calibrate_session(dff, RATE, electrical_spikes=read_spike_times(session["electrical"]),
+                                    fit_options={"n_bootstrap": 0})
+    assert calibration.source == "paired" and calibration.paired_rois == (0, 1)
+    inferred = count_roi(direct.dff, RATE, calibration.for_session(N_ROIS, rois=usable), roi,
+                         noise_sd=noise_sd).result
     assert data["noise_sd"][roi] == noise_sd
     assert np.array_equal(data["activity"][roi], np.asarray(inferred.activity, dtype=np.float32))
     assert np.array_equal(data["spike_counts"][roi], np.asarray(inferred.spike_counts))
@@ -113,7 +121,8 @@ def test_each_roi_gets_the_results_of_the_stage_functions_called_directly(sessio
 
 
 def test_by_default_f0_is_left_out_and_the_report_draws_it_from_f_and_dff(session, tmp_path):
-    config = _config(tmp_path / "out", session["traces"], report={"enabled": True, "n_examples": 2})
+    config = _config(tmp_path / "out", session["traces"], report={"enabled": True, "n_examples": 2},
+                     inputs={"electrical_spikes": str(session["electrical"])})
     summary = run_pipeline(config, progress=False)
     data, _ = read_results(summary.results_path)
     reference, _ = read_results(session["summary"].results_path)
@@ -212,7 +221,7 @@ def test_rois_with_electrical_spikes_get_kernel_fits_and_scores(session):
 def test_report_has_every_figure_and_a_row_per_roi(session):
     page = session["summary"].report_path
     html = page.read_text(encoding="utf-8")
-    for name in ("raster", "noise", "snr", "kernel-half-decay", "fit-half-decay", "scores"):
+    for name in ("raster", "noise", "snr", "calibration", "fit-half-decay", "scores"):
         assert f"figures/{name}.png" in html and (page.parent / "figures" / f"{name}.png").is_file()
     assert html.count('id="fig-roi-') == 3
     table = html[html.index("All 12 ROIs"):]
@@ -354,7 +363,7 @@ def test_a_disk_that_fills_up_under_the_rows_written_by_the_workers_stops_clearl
 
     def disk_fills_up(fd, data, offset):
         calls.append(offset)
-        if len(calls) > 20:
+        if len(calls) > 60:  # (a few chunks of one ROI: each writes every per-ROI dataset)
             raise OSError(errno.ENOSPC, "No space left on device")
         pwrite(fd, data, offset)
 

@@ -74,6 +74,12 @@ class RunSummary:
         (``rois computed x n_frames / elapsed_s``).
     backend : str
     workers : int
+    n_uncalibrated : int
+        ROIs whose spike counts are not calibrated (flag "uncalibrated
+        counts"): their single-spike size could not be identified.
+    calibration : str
+        Plain-words summary of the session calibration ("" when the counts
+        were made per ROI, without one).
     """
 
     output_folder: Path
@@ -92,6 +98,8 @@ class RunSummary:
     frames_per_second: float
     backend: str
     workers: int
+    n_uncalibrated: int = 0
+    calibration: str = ""
 
     def __str__(self) -> str:
         if self.chunks_resumed == self.chunks_total:
@@ -104,6 +112,14 @@ class RunSummary:
         lines = [f"{self.n_rois} ROIs x {self.n_frames} frames at {self.frame_rate:g} Hz: "
                  f"{self.n_flagged} flagged ({self.n_failed} without results)", speed,
                  f"results: {self.results_path}", f"spikes:  {self.spikes_path}"]
+        if self.calibration:
+            lines.append(self.calibration.splitlines()[0])
+        if self.n_uncalibrated:
+            lines.append(f"{self.n_uncalibrated} of {self.n_rois} ROIs have UNCALIBRATED spike counts (flag "
+                         f"'uncalibrated counts': their single-spike size could not be identified); do not read "
+                         f"their counts as numbers of spikes")
+        elif self.calibration:
+            lines.append("every ROI's spike count is calibrated")
         if self.report_path is not None:
             lines.append(f"report:  {self.report_path}")
         if self.nwb_path is not None:
@@ -275,6 +291,65 @@ def _inference_kwargs(config: RunConfig) -> dict:
     return kwargs
 
 
+def _calibration_how(config: RunConfig, electrical) -> str:
+    how = config.calibration.source
+    if how == "auto":
+        how = "paired" if electrical else "session"
+    return how
+
+
+def _calibrated_params(config: RunConfig, prepared, params, store, progress):
+    """The stage parameters with the session calibration the chunks count with (recorded in the results)."""
+    import dataclasses
+
+    from ..kernel import Kernel
+
+    how = _calibration_how(config, prepared.electrical)
+    inf = config.inference
+    kernel, size_given = None, False
+    if inf.decay_s is not None:
+        kernel = Kernel(inf.rise_s, inf.decay_s, inf.spike_size if inf.spike_size is not None else 1.0)
+        size_given = inf.spike_size is not None
+    elif inf.indicator is not None and how in ("given", "indicator"):
+        kernel = Kernel.from_indicator(inf.indicator)
+        size_given = how == "given"
+        if inf.spike_size is not None:
+            kernel, size_given = kernel.scaled(inf.spike_size), how == "given"
+    options = dict(_fit_options(config), n_bootstrap=0)
+    try:
+        cal = stages.session_calibration(prepared.source, params, how=how, electrical=prepared.electrical,
+                                         indicator=inf.indicator, kernel=kernel, size_given=size_given,
+                                         calibration_file=config.calibration.file,
+                                         max_rois=config.calibration.max_rois, fit_options=options,
+                                         progress=progress)
+    except ValueError as exc:
+        if how == "file":
+            raise ConfigError(f"calibration.file: {exc}") from None
+        # nothing to learn the kinetics from (a session of noise): every ROI on its own, and every count flagged
+        reason = f"no session calibration ({str(exc).splitlines()[0]})"
+        _say(progress, f"calibration: {reason}; every ROI's counts are flagged as uncalibrated")
+        store.write_rows(stages.CALIBRATION_DATASET.name, slice(0, 1),
+                         [json.dumps({"source": "none", "summary": f"calibration failed: {reason}"})])
+        return dataclasses.replace(params, uncalibrated=reason)
+    if cal is None:
+        return params
+    _say(progress, cal.summary().splitlines()[0])
+    store.write_rows(stages.CALIBRATION_DATASET.name, slice(0, 1), [json.dumps(cal.session_dict())])
+    return dataclasses.replace(params, calibration=cal)
+
+
+def _stored_calibration_summary(results_path) -> str:
+    """The first line of the calibration summary recorded in a results file ("" when there is none)."""
+    with open_results(results_path) as results:
+        if stages.CALIBRATION_DATASET.name not in results.names():
+            return ""
+        text = results.read(stages.CALIBRATION_DATASET.name)[0]
+    text = text.decode() if isinstance(text, bytes) else str(text)
+    if not text:
+        return ""
+    return json.loads(text).get("summary", "")
+
+
 def _fit_options(config: RunConfig) -> dict:
     fit = config.kernel_fit
     options = {"model": fit.model, "max_lag_s": fit.max_lag_s, "n_bootstrap": fit.n_bootstrap,
@@ -305,6 +380,7 @@ def _layout(config: RunConfig, prepared: _Inputs, electrical_rois: list[int]) ->
                         per_roi=False),
         ]
     specs += stages.electrical_datasets(len(electrical_rois), len(config.scoring.bin_widths_s))
+    specs.append(stages.CALIBRATION_DATASET)
     return specs
 
 
@@ -484,6 +560,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         if todo:
             if prepared.kind == "movie":
                 prepared.source = _extraction(config, prepared, store, work, run_hash, progress)
+            params = _calibrated_params(config, prepared, params, store, progress)
             backend, workers, computed_rois = _run_chunks(
                 prepared.source, params, store, todo, backend=config.execution.backend,
                 workers=config.execution.workers, scheduler=config.execution.scheduler, progress=progress,
@@ -528,7 +605,8 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         n_flagged=int(np.count_nonzero(quality)), n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)),
         chunks_total=int(bounds.size - 1), chunks_resumed=chunks_resumed, elapsed_s=elapsed,
         frames_per_second=computed_rois * prepared.n_frames / elapsed if elapsed > 0 else float("nan"),
-        backend=backend, workers=workers)
+        backend=backend, workers=workers, n_uncalibrated=int(np.count_nonzero(quality & stages.FLAG_UNCALIBRATED)),
+        calibration=_stored_calibration_summary(results_path))
     return summary
 
 
@@ -947,6 +1025,7 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
             raise ValueError(f"{results_path} has no {', '.join(missing)}: the session report needs the results of "
                              f"a whole-session run (calcium run), not of inference alone (calcium infer)")
         per_roi = {name: results.read(name) for name in _PER_ROI}
+        calibration = _read_calibration(results)
         # electrical spikes drawn on the imaging clock: add the fitted clock lag where there is one
         lags = {}
         if "electrical/roi" in results and "electrical/fit_lag_s" in results:
@@ -1023,7 +1102,9 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
         half = _half_decays(per_roi["kernel_rise_s"], per_roi["kernel_decay_s"])
         reference = _reference_range(indicator, "half-decay")
         known = half[np.isfinite(half)]
-        if known.size and np.ptp(known) == 0:
+        if calibration is not None:
+            _calibration_section(report, calibration, rate, n_rois)
+        elif known.size and np.ptp(known) == 0:
             report.add_text(f"The inference used one fixed kernel for every ROI (half-decay time {known[0]:.3g} s"
                             + (f", from the published kinetics of {indicator})." if indicator else ")."))
         else:
@@ -1049,6 +1130,13 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
         rows = [[i, int(per_roi["n_spikes"][i]), per_roi["n_spikes"][i] / duration_s, per_roi["noise_sd"][i],
                  per_roi["snr"][i], int(per_roi["missing_frames"][i]), per_roi["f0_min"][i],
                  per_roi["kernel_decay_s"][i], stages.describe_flags(flags[i])] for i in range(n_rois)]
+        if calibration is not None:
+            sizes = calibration["per_roi"]
+            header[2:2] = ["spikes (90 % interval)", "spike size ΔF/F (90 %)", "calibrated"]
+            for i, row in enumerate(rows):
+                row[2:2] = [f"{int(sizes['count_low'][i])}-{int(sizes['count_high'][i])}",
+                            f"{sizes['spike_size'][i]:.3g} ({sizes['spike_size_low'][i]:.3g}-"
+                            f"{sizes['spike_size_high'][i]:.3g})", "yes" if sizes["calibrated"][i] else "NO"]
         report.add_table(header, rows, caption=f"All {n_rois} ROIs.", flags=[str(f) for f in per_roi["flags"]])
     # a report left half-written (a full disk) must not pass for a finished one: the old page goes first,
     # the new one is written last, after its figures
@@ -1057,6 +1145,58 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
     page = report.write(folder)
     _say(progress, f"report: {page}")
     return page
+
+
+_CALIBRATION_PER_ROI = ("spike_size", "spike_size_low", "spike_size_high", "count_low", "count_high", "calibrated")
+
+
+def _read_calibration(results):
+    """The session calibration recorded in a results file ({"session": dict, "per_roi": arrays}) or None."""
+    if stages.CALIBRATION_DATASET.name not in results or any(n not in results for n in _CALIBRATION_PER_ROI):
+        return None
+    text = results.read(stages.CALIBRATION_DATASET.name)[0]
+    text = text.decode() if isinstance(text, bytes) else str(text)
+    if not text:
+        return None
+    return {"session": json.loads(text), "per_roi": {n: results.read(n) for n in _CALIBRATION_PER_ROI}}
+
+
+def _calibration_section(report, calibration, rate, n_rois):
+    """Report section: how the counts were calibrated, the session kernel with its spread, each ROI's size."""
+    from ..kernel import Kernel
+    from ..report import calibration_figure
+
+    session, per_roi = calibration["session"], calibration["per_roi"]
+    calibrated = per_roi["calibrated"].astype(bool)
+    n_bad = int(n_rois - calibrated.sum())
+    text = session.get("summary", "")
+    verdict = (f"{n_bad} of {n_rois} ROIs have UNCALIBRATED counts: their single-spike size could not be identified "
+               f"(reason in the table's flags). Do not read their counts as numbers of spikes." if n_bad else
+               "Every ROI's count is calibrated.")
+    report.add_section("Spike counts: calibration", verdict)
+    for line in text.splitlines():
+        report.add_text(line)
+    if session.get("source") in (None, "none") or "rise_s" not in session:
+        return
+    sizes = per_roi["spike_size"]
+    median = float(np.nanmedian(sizes)) if np.isfinite(sizes).any() else 1.0
+    duration = 5.0 * float(session["decay_s"])
+    time = np.linspace(0.0, duration, 400)
+    shape = Kernel(float(session["rise_s"]), float(session["decay_s"]), median)
+    spread = []
+    rise_range, decay_range = session.get("rise_range_s", []), session.get("decay_range_s", [])
+    if len(rise_range) == 2 and len(decay_range) == 2 and np.all(np.isfinite(rise_range + decay_range)):
+        for rise in rise_range:
+            for decay in decay_range:
+                if 0 <= rise < decay:
+                    spread.append(Kernel(rise, decay, median).evaluate(time))
+    fig = calibration_figure(time, shape.evaluate(time), np.array(spread), sizes, per_roi["spike_size_low"],
+                             per_roi["spike_size_high"], calibrated,
+                             kinetics_label=f"session kernel ({session.get('source')})")
+    report.add_figure(fig, name="calibration",
+                      caption="Left: the kernel shared by the session's ROIs, at the median single-spike size, with "
+                              "the range of the per-ROI kinetics (10-90 %). Right: each ROI's single-spike ΔF/F with "
+                              "its 90 % interval; hollow markers: uncalibrated ROIs.")
 
 
 def _electrical_section(report, results, indicator, rate, kernel_figure, distribution_figure, score_figure):

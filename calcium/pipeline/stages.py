@@ -47,6 +47,7 @@ __all__ = [
     "FLAG_F0",
     "FLAG_MISSING",
     "FLAG_NOT_CONVERGED",
+    "FLAG_UNCALIBRATED",
     "FLAG_NAMES",
     "describe_flags",
 ]
@@ -58,8 +59,10 @@ FLAG_SATURATION = 4      # raw maximum repeated in many frames (clipping of the 
 FLAG_F0 = 8              # F0 <= 0 (ROI failed) or F0 clipped at dff.floor
 FLAG_MISSING = 16        # more than quality.max_missing_fraction of the frames missing
 FLAG_NOT_CONVERGED = 32  # the inference solver stopped before converging
+FLAG_UNCALIBRATED = 64   # the single-spike size could not be identified: the spike counts are not to be trusted
 FLAG_NAMES = {FLAG_FAILED: "failed", FLAG_LOW_SNR: "low SNR", FLAG_SATURATION: "saturation suspected",
-              FLAG_F0: "F0 problem", FLAG_MISSING: "many missing frames", FLAG_NOT_CONVERGED: "not converged"}
+              FLAG_F0: "F0 problem", FLAG_MISSING: "many missing frames", FLAG_NOT_CONVERGED: "not converged",
+              FLAG_UNCALIBRATED: "uncalibrated counts"}
 FLAG_TEXT_BYTES = 240
 #: Decimals of the spike times in the spike table (microseconds; the results file keeps the exact offsets).
 SPIKE_TIME_DECIMALS = 6
@@ -258,6 +261,13 @@ class StageParams:
     keep_f0 : bool
         Return the per-frame baseline F0 (``f0``); its minimum ``f0_min``
         and the F0 flags are always computed.
+    calibration : calcium.calibrate.SessionCalibration or None
+        Count every ROI with this session calibration
+        (:func:`calcium.calibrate.count_roi`; ``inference`` then only
+        gives the threshold); None: :func:`calcium.infer_spikes` per ROI.
+    uncalibrated : str
+        When not "": why no calibration could be made; every ROI's counts
+        are flagged as uncalibrated with this reason.
     """
 
     frame_rate: float
@@ -269,6 +279,8 @@ class StageParams:
     max_missing_fraction: float = 0.1
     saturation_frames: int = 3
     keep_f0: bool = True
+    calibration: object = None
+    uncalibrated: str = ""
 
 
 @dataclass(frozen=True)
@@ -322,10 +334,20 @@ def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: boo
         DatasetSpec("kernel_decay_s", one, "f8", "decay time constant of the kernel used", "s"),
         DatasetSpec("kernel_amplitude", one, "f8", "peak ΔF/F of one spike in the kernel used", "ΔF/F"),
         DatasetSpec("converged", one, "u1", "1 if the inference solver converged", ""),
+        DatasetSpec("spike_size", one, "f8", "ΔF/F (peak) of one spike used to count (calibrated runs; NaN "
+                                             "otherwise)", "ΔF/F"),
+        DatasetSpec("spike_size_low", one, "f8", "lower end of the 90 % interval of spike_size", "ΔF/F"),
+        DatasetSpec("spike_size_high", one, "f8", "upper end of the 90 % interval of spike_size", "ΔF/F"),
+        DatasetSpec("size_z", one, "f8", "spike_size in standard deviations of an event's size noise", ""),
+        DatasetSpec("count_low", one, "i8", "spike count at the upper end of the spike-size interval", "spikes"),
+        DatasetSpec("count_high", one, "i8", "spike count at the lower end of the spike-size interval", "spikes"),
+        DatasetSpec("calibrated", one, "u1", "1 if the counts are calibrated (single-spike size identified), 0 "
+                                             "if they are not to be trusted", ""),
         DatasetSpec("missing_frames", one, "i8", "number of missing (NaN/inf) frames of the input", "frames"),
         DatasetSpec("saturated_frames", one, "i8", "frames at which the raw trace equals its maximum", "frames"),
         DatasetSpec("quality_flags", one, "u2", "bit field: 1 failed, 2 low SNR, 4 saturation suspected, 8 F0 "
-                                                "problem, 16 many missing frames, 32 not converged", ""),
+                                                "problem, 16 many missing frames, 32 not converged, 64 "
+                                                "uncalibrated counts", ""),
         DatasetSpec("flags", one, f"text{FLAG_TEXT_BYTES}", "reasons for the flags, in words ('' = none)", ""),
     ]
     return specs
@@ -378,11 +400,13 @@ def _empty_results(n: int, n_frames: int, filtered: bool, with_dff: bool, with_f
             out["f0"] = _frame_array("f0", n, n_frames)
     if filtered:
         out["dff_filtered"] = _frame_array("dff_filtered", n, n_frames)
-    for name in ("baseline", "noise_sd", "snr", "penalty", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude"):
+    for name in ("baseline", "noise_sd", "snr", "penalty", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude",
+                 "spike_size", "spike_size_low", "spike_size_high", "size_z"):
         out[name] = np.full(n, np.nan)
-    for name in ("n_spikes", "missing_frames", "saturated_frames"):
+    for name in ("n_spikes", "missing_frames", "saturated_frames", "count_low", "count_high"):
         out[name] = np.zeros(n, dtype=np.int64)
     out["converged"] = np.zeros(n, dtype=np.uint8)
+    out["calibrated"] = np.zeros(n, dtype=np.uint8)
     out["quality_flags"] = np.zeros(n, dtype=np.uint16)
     return out
 
@@ -507,7 +531,7 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
             out["dff_filtered"][rows] = signal
         noise = _noise_rows(signal, params, rows, reasons)
         for k, i in enumerate(rows):
-            inferred[i] = _infer_roi(signal[k], noise[k], i, params, out, flags, reasons)
+            inferred[i] = _infer_roi(signal[k], noise[k], i, params, out, flags, reasons, roi=first_roi + i)
     with_dff_rows = np.zeros(n, dtype=bool)
     with_dff_rows[rows] = True
     _fill_unset_rows(out, with_dff_rows, inferred)
@@ -626,18 +650,41 @@ def _noise_rows(signal: np.ndarray, params: StageParams, rows: np.ndarray, reaso
 
 
 def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, out: dict, flags,
-               reasons) -> bool:
+               reasons, *, roi: int) -> bool:
     from ..infer import infer_spikes
 
+    counted = None
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # per-ROI trouble is reported through the flags instead
-            result = infer_spikes(trace, params.frame_rate, noise_sd=noise_sd if noise_sd > 0 else None,
-                                  **params.inference)
+            if params.calibration is not None:
+                from ..calibrate import count_roi
+
+                counted = count_roi(trace, params.frame_rate, params.calibration, roi,
+                                    noise_sd=noise_sd if noise_sd > 0 else None,
+                                    threshold=params.inference.get("threshold", 0.5))
+                result = counted.result
+            else:
+                result = infer_spikes(trace, params.frame_rate, noise_sd=noise_sd if noise_sd > 0 else None,
+                                      **params.inference)
     except (ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError) as exc:
         flags[i] |= FLAG_FAILED
         reasons[i].append("inference failed: " + _first_line(exc))
         return False
+    if counted is not None:
+        out["spike_size"][i] = counted.spike_size
+        out["spike_size_low"][i] = counted.spike_size_low
+        out["spike_size_high"][i] = counted.spike_size_high
+        out["size_z"][i] = counted.size_z
+        out["count_low"][i] = counted.count_low
+        out["count_high"][i] = counted.count_high
+        out["calibrated"][i] = counted.calibrated
+        if not counted.calibrated:
+            flags[i] |= FLAG_UNCALIBRATED
+            reasons[i].append("uncalibrated counts: " + counted.reason)
+    elif params.uncalibrated:
+        flags[i] |= FLAG_UNCALIBRATED
+        reasons[i].append("uncalibrated counts: " + params.uncalibrated)
     counts = np.asarray(result.spike_counts, dtype=np.int64)
     out["activity"][i] = result.activity
     out["denoised"][i] = result.denoised
@@ -862,3 +909,84 @@ def electrical_step(store, electrical: dict, frame_rate: float, n_frames: int, *
     store.write_rows("electrical/bin_widths_s", (), np.asarray(scoring.bin_widths_s, dtype=np.float64))
     store.write_rows("electrical/note", (), np.array(["; ".join(n) for n in notes], dtype=object))
     store.set_flag("electrical")
+
+
+# ---------------------------------------------------------------------------
+# the session calibration (once, in the parent, before the chunks)
+# ---------------------------------------------------------------------------
+#: The session calibration of a run (kinetics, prior of the sizes, paired ROIs, summary; JSON text), written once.
+CALIBRATION_DATASET = DatasetSpec("calibration/session_json", (1,), "text16000",
+                                  "session calibration the counts were made with (JSON: source, kinetics, "
+                                  "distribution of single-spike sizes, paired ROIs, summary); '' when none",
+                                  per_roi=False, fill=0)
+
+
+def calibration_rois(n_rois: int, max_rois: int, keep=()) -> np.ndarray:
+    """At most ``max_rois`` ROI indices spread evenly over ``n_rois``, always including ``keep``."""
+    keep = sorted({int(r) for r in keep if 0 <= int(r) < n_rois})
+    room = max(max_rois - len(keep), 0)
+    spread = np.unique(np.linspace(0, n_rois - 1, min(room, n_rois)).round().astype(np.int64)) if room else []
+    return np.unique(np.concatenate([np.asarray(spread, dtype=np.int64), np.asarray(keep, dtype=np.int64)]))
+
+
+def calibration_signal(source: TraceSource, params: StageParams, rois: np.ndarray):
+    """The inference's input (ΔF/F, filtered as configured) of the ROIs ``rois``: (rois kept, rows)."""
+    raw = np.vstack([source.read_rows(int(i), int(i) + 1) for i in rois])
+    reasons = [[] for _ in rois]
+    flags = np.zeros(len(rois), dtype=np.uint16)
+    finite = np.isfinite(raw).any(axis=1)
+    usable = np.flatnonzero(finite)
+    if params.dff is not None:
+        kept, signal, _, _, _ = _dff_rows(raw, params, reasons, flags, usable)
+    else:
+        kept, signal = usable, raw[usable]
+    if kept.size and params.filter is not None:
+        signal = params.filter.apply(signal)
+    return np.asarray(rois)[kept], signal
+
+
+def session_calibration(source: TraceSource, params: StageParams, *, how: str, electrical=None, indicator=None,
+                        kernel=None, size_given=False, calibration_file=None, max_rois: int = 200, fit_options=None,
+                        progress=False):
+    """The session calibration a run counts with (None for ``how = "per-roi"``).
+
+    ``how`` is the configuration's ``calibration.source``; with ``how =
+    "given"`` and ``size_given``, ``kernel`` (its amplitude the single-spike
+    size) counts every ROI as it is.  The kinetics and
+    the prior of the sizes are learned on at most ``max_rois`` ROIs (the
+    paired ones always among them); :meth:`SessionCalibration.for_session`
+    then leaves every other ROI's size to :func:`calcium.calibrate.count_roi`
+    in the workers.
+    """
+    from ..calibrate import SessionCalibration, calibrate_session, load_calibration
+
+    n = source.n_rois
+    if how == "per-roi":
+        return None
+    if how == "file":
+        cal = load_calibration(calibration_file)
+        if abs(cal.frame_rate - params.frame_rate) > 1e-6 * params.frame_rate:
+            raise ValueError(f"{calibration_file}: the calibration was made at {cal.frame_rate:g} Hz, the recording "
+                             f"is at {params.frame_rate:g} Hz")
+        # (a calibration of another session brings its kinetics and its distribution of sizes, not sizes)
+        return cal if cal.n_rois == n else cal.for_session(n, rois=())
+    if how == "given" and size_given:
+        return SessionCalibration.fixed(kernel, n, params.frame_rate, indicator=indicator)
+    paired = {int(k): v for k, v in (electrical or {}).items()} if how in ("auto", "paired") else {}
+    rois = calibration_rois(n, max_rois, keep=paired)
+    kept, signal = calibration_signal(source, params, rois)
+    if not kept.size:
+        raise ValueError("no ROI has a usable ΔF/F to calibrate the session with")
+    own = {int(np.flatnonzero(kept == roi)[0]): times for roi, times in paired.items() if roi in kept}
+    fixed_kernel = kernel if how in ("given", "indicator") else None
+    if how == "indicator" and fixed_kernel is None and indicator is not None:
+        from ..kernel import Kernel
+
+        fixed_kernel = Kernel.from_indicator(indicator)
+    cal = calibrate_session(signal, params.frame_rate, electrical_spikes=own or None, indicator=indicator,
+                            kernel=fixed_kernel, fit_options=fit_options, progress=progress)
+    if how == "indicator" and cal.source == "given":
+        import dataclasses
+
+        cal = dataclasses.replace(cal, source="indicator")
+    return cal.for_session(n, rois=kept)

@@ -7,6 +7,7 @@ sortable tables into a self-contained folder (``index.html`` + ``figures/``).
 """
 from .figures import (
     PALETTE,
+    calibration_figure,
     distribution_figure,
     figure_png_bytes,
     filter_figure,
@@ -27,6 +28,7 @@ from .html import HtmlReport
 __all__ = [
     "PALETTE",
     "HtmlReport",
+    "calibration_figure",
     "distribution_figure",
     "figure_png_bytes",
     "filter_figure",

@@ -56,6 +56,7 @@ __all__ = [
     "prediction_figure",
     "kernel_figure",
     "kernel_fit_figure",
+    "calibration_figure",
     "raster_figure",
     "score_figure",
     "planner_figure",
@@ -672,6 +673,72 @@ def _response(values, name: str, time: np.ndarray) -> np.ndarray:
                              f"(k / frame_rate), got {time[:3]}...")
         return _vector(values.impulse_response(1.0 / float(step[0]), time.size), name, length=time.size)
     return _vector(values, name, length=time.size)
+
+
+def calibration_figure(time_s, session_response, spread_responses, spike_size, spike_size_low, spike_size_high,
+                       calibrated, *, kinetics_label="session kernel") -> Figure:
+    """The session calibration: the shared kernel with its spread, and every ROI's single-spike size.
+
+    Parameters
+    ----------
+    time_s : array_like, shape (n,)
+        Time after the spike (s).
+    session_response : array_like, shape (n,)
+        The session kernel (ΔF/F after one spike of the median size).
+    spread_responses : array_like, shape (m, n)
+        Kernels at the ends of the per-ROI range of the kinetics (drawn as a
+        band: their point-wise minimum and maximum); may be empty.
+    spike_size, spike_size_low, spike_size_high : array_like, shape (rois,)
+        Single-spike ΔF/F of each ROI and its 90 % interval (NaN: none).
+    calibrated : array_like of bool, shape (rois,)
+        ROIs whose size was identified; the others are drawn hollow.
+    kinetics_label : str
+        Legend text of the kernel.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    time = _vector(time_s, "time_s", finite=True, allow_empty=False)
+    response = _vector(session_response, "session_response", length=time.size)
+    spread = np.asarray(spread_responses, dtype=np.float64).reshape(-1, time.size) if np.size(spread_responses) \
+        else np.zeros((0, time.size))
+    size = _vector(spike_size, "spike_size")
+    low = _vector(spike_size_low, "spike_size_low", length=size.size)
+    high = _vector(spike_size_high, "spike_size_high", length=size.size)
+    good = np.asarray(calibrated, dtype=bool).reshape(-1)
+    if good.size != size.size:
+        raise ValueError(f"calibrated must have one value per ROI ({size.size}), got {good.size}")
+    fig = _figure(3.6)
+    left, right = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1.0, 1.3]})
+    for ax in (left, right):
+        _style(ax)
+    n_bad = int((~good).sum())
+    _title(fig, f"session calibration: {size.size - n_bad} of {size.size} ROI(s) calibrated")
+    if spread.shape[0]:
+        left.fill_between(time, spread.min(axis=0), spread.max(axis=0), color=PALETTE["sand"], alpha=0.6,
+                          linewidth=0, label="per-ROI range of the kinetics")
+    left.plot(time, response, color=PALETTE["orange"], linewidth=1.8, label=_label(kinetics_label, "kinetics_label"))
+    left.axhline(0.0, color=_FRAME, linewidth=0.6)
+    left.set_xlabel("time after the spike (s)")
+    left.set_ylabel("ΔF/F of one spike")
+    _legend(left, loc="upper right")
+    index = np.arange(size.size)
+    for mask, filled, label in ((good, True, "calibrated"), (~good, False, "uncalibrated (count not trusted)")):
+        shown = mask & np.isfinite(size)
+        if not shown.any():
+            continue
+        below = np.where(np.isfinite(low[shown]), size[shown] - low[shown], 0.0)
+        above = np.where(np.isfinite(high[shown]), high[shown] - size[shown], 0.0)
+        right.errorbar(index[shown], size[shown], yerr=[np.maximum(below, 0), np.maximum(above, 0)], fmt="o",
+                       color=PALETTE["blue"] if filled else PALETTE["plum"], markersize=4,
+                       markerfacecolor=PALETTE["blue"] if filled else "white", elinewidth=1.0, capsize=2,
+                       label=label)
+    right.set_xlabel("ROI")
+    right.set_ylabel("single-spike ΔF/F (90 % interval)")
+    if np.isfinite(size).any():
+        _legend(right, loc="best")
+    return fig
 
 
 def kernel_figure(time_s, *, fitted=None, free_form=None, reference=None, free_form_time_s=None,
