@@ -12,5 +12,11 @@ try:
     from .stages import warm_up
 
     warm_up()
+    # ... and the edge lines of F0, which a chunk of one baseline window (as in warm_up) does not reach
+    import numpy as _np
+
+    from ..signal import delta_f_over_f
+
+    delta_f_over_f(_np.linspace(2.0, 1.0, 600), 10.0, window_s=20.0)
 except Exception:  # noqa: BLE001 - see the module docstring
     pass

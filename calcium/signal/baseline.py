@@ -6,7 +6,10 @@ transients do not. ΔF/F = (F − F0) / F0.
 
 The running percentile is computed on a coarse grid (see the Notes of
 :func:`delta_f_over_f`), so that ΔF/F of a thousand ROIs costs a small
-multiple of the time of one pass over the data.
+multiple of the time of one pass over the data. At both ends of the
+recording, where no window can be centred, F0 comes from a line fitted to
+the outermost window (a local linear quantile regression), so that it
+follows bleaching up to the first and the last frame.
 """
 from __future__ import annotations
 
@@ -39,6 +42,10 @@ _ENVELOPE_PASSES = 3
 _BUFFER_RANKS = 32
 # Ranks kept beyond the wanted one, so that the next window's pivot rarely falls short.
 _PIVOT_MARGIN = 4
+# Edges of the recording: fewest smoothed samples in a window for the local line (two on either side of its
+# middle), and how exactly its slope is bisected: F0 at the edge to this fraction of the window's range.
+_EDGE_MIN_SAMPLES = 4
+_EDGE_PRECISION = 1e-6
 
 
 @dataclass(frozen=True, eq=False)
@@ -336,9 +343,167 @@ def _baseline_and_dff(rows, knots, knots_at, f0, dff, lowest, floor, at_floor): 
 
 
 def _percentile_knots(rows: np.ndarray, finite: np.ndarray | None, grid: _Grid,
-                      percentile: float) -> np.ndarray:
-    """Running-percentile baseline of ``rows`` (2-D) at the knots of ``grid``."""
-    return _window_percentile(_smoothed_samples(rows, finite, grid), grid, percentile)
+                      percentile: float) -> tuple[np.ndarray, np.ndarray]:
+    """Running-percentile baseline of ``rows`` (2-D): (knot positions in frames, values (rows, knots)).
+
+    The knots of ``grid`` (window centres), and, when the edges of the recording lie outside the outermost
+    knots, one knot at the first and one at the last frame, from a local line (:func:`_edge_values`).
+    """
+    samples = _smoothed_samples(rows, finite, grid)
+    knots = _window_percentile(samples, grid, percentile)
+    edges = _edge_values(samples, knots, grid, percentile)
+    if edges is None:
+        return grid.knot_frames, knots
+    first, last = edges
+    return (np.concatenate([[0.0], grid.knot_frames, [grid.n_frames - 1.0]]),
+            np.concatenate([first[:, None], knots, last[:, None]], axis=1))
+
+
+def _edge_values(samples: np.ndarray, knots: np.ndarray, grid: _Grid, percentile: float):
+    """F0 at the first and at the last frame: (values at frame 0, values at the last frame), each (rows,).
+
+    The outermost window at each end is the one of the outermost knot; in it a line is fitted to the
+    smoothed samples with the ``percentile`` as its level (:func:`_quantile_line_at`), and its value at
+    the edge frame is F0 there. None when there is nothing to do: a single window (the whole recording: F0
+    is one constant), windows of fewer than :data:`_EDGE_MIN_SAMPLES` samples, the 0th or 100th
+    percentile (an extreme sample, no level to balance), or edge frames that already are knots.
+    """
+    k = grid.window
+    if (grid.starts.size < 2 or k < _EDGE_MIN_SAMPLES or not 0.0 < percentile < 100.0
+            or not 0.0 < grid.knot_frames[0] < grid.knot_frames[-1] < grid.n_frames - 1):
+        return None
+    out = []
+    for window, anchor, fallback in ((slice(0, k), 0.0, knots[:, 0]),
+                                     (slice(grid.n_samples - k, grid.n_samples), grid.n_frames - 1.0, knots[:, -1])):
+        values = samples[:, window]
+        offsets = grid.sample_frames[window] - anchor  # frames from the edge
+        edge = np.array(fallback, dtype=np.float64)
+        holes = np.isnan(values).any(axis=1)
+        whole = np.flatnonzero(~holes)
+        if whole.size:
+            edge[whole] = _quantile_line_at(values[whole], offsets, percentile)
+        for i in np.flatnonzero(holes):  # (a missing stretch: the line through the samples that are there)
+            ok = ~np.isnan(values[i])
+            if np.count_nonzero(ok) >= _EDGE_MIN_SAMPLES:
+                edge[i] = _quantile_line_at(values[i, ok][None], offsets[ok], percentile)[0]
+        out.append(edge)
+    return out
+
+
+def _quantile_line_at(values: np.ndarray, offsets: np.ndarray, percentile: float, *, compiled: bool = True
+                      ) -> np.ndarray:
+    """Value at offset 0 of the ``percentile`` line through the points (offsets, values[r]) of each row r.
+
+    ``offsets`` are frames from the edge, whole or half (the centres of the smoothed samples), increasing.
+    The slope b balances the samples at or below the line: the m lowest residuals ``values - b * offsets``
+    (m: the rank below the percentile, as np.percentile counts) lie, on average, at the mean offset of all
+    samples. This is the first-order condition of the linear quantile regression of Koenker and Bassett
+    (1978), found by bisection: raising b moves the lowest residuals to later offsets, so the balance rises
+    with b. Samples tied with the m-th lowest residual count in proportion, and the balance is compared in
+    whole numbers (offsets are multiples of half a frame), so it does not depend on the order of a sum:
+    the compiled pass (:func:`_edge_slopes`) and its numpy reference (:func:`_edge_slopes_reference`) give
+    the same slopes. The value at offset 0 is then the ``percentile`` of the residuals, kept within the
+    range of the row's values (F0 never leaves the range of the data it came from).
+    """
+    n = values.shape[1]
+    m = int(np.floor(percentile / 100.0 * (n - 1))) + 1
+    doubled = np.rint(2.0 * offsets).astype(np.int64)
+    low_value, high_value = values.min(axis=1), values.max(axis=1)
+    # no slope steeper than the whole range over the closest two samples can balance anything
+    steepest = (high_value - low_value) / np.min(np.diff(offsets))
+    # A slope off by d moves the line's value at the edge by d times the farthest offset, and the bracket's
+    # width 2 * steepest times that offset is about 2 n times the range: halve it until that is
+    # _EDGE_PRECISION of the range.
+    iterations = int(np.ceil(np.log2(2.0 * n / _EDGE_PRECISION)))
+    if compiled:
+        slopes = np.empty(values.shape[0])
+        _edge_slopes(np.ascontiguousarray(values), doubled, m, iterations, steepest, slopes)
+    else:
+        slopes = _edge_slopes_reference(values, doubled, m, iterations, steepest)
+    level = np.percentile(values - slopes[:, None] * (0.5 * doubled), percentile, axis=1)
+    return np.clip(level, low_value, high_value)
+
+
+def _edge_slopes_reference(values, doubled, m, iterations, steepest) -> np.ndarray:
+    """numpy reference of :func:`_edge_slopes` (same arithmetic, whole rows at a time)."""
+    n = values.shape[1]
+    offsets = 0.5 * doubled
+    total = int(doubled.sum())
+    lo, hi = -steepest, steepest.copy()
+    for _ in range(iterations):
+        slope = 0.5 * (lo + hi)
+        residual = values - slope[:, None] * offsets
+        level = np.partition(residual, m - 1, axis=1)[:, m - 1:m]
+        below, tied = residual < level, residual == level
+        n_below, n_tied = below.sum(axis=1), tied.sum(axis=1)
+        later = n * (n_tied * (below @ doubled) + (m - n_below) * (tied @ doubled)) > m * n_tied * total
+        hi = np.where(later, slope, hi)
+        lo = np.where(later, lo, slope)
+    return 0.5 * (lo + hi)
+
+
+@njit(cache=True)
+def _kth_smallest(a, kth):  # pragma: no cover - compiled
+    """The ``kth`` smallest value (0-based) of ``a``, reordering ``a`` (quickselect, middle pivot)."""
+    left = 0
+    right = a.shape[0] - 1
+    while left < right:
+        pivot = a[(left + right) // 2]
+        i = left
+        j = right
+        while i <= j:
+            while a[i] < pivot:
+                i += 1
+            while a[j] > pivot:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if kth <= j:
+            right = j
+        elif kth >= i:
+            left = i
+        else:
+            return a[kth]
+    return a[kth]
+
+
+@njit(cache=True)
+def _edge_slopes(values, doubled, m, iterations, steepest, slopes):  # pragma: no cover - compiled
+    """Slopes of the edge lines of :func:`_quantile_line_at`, row by row, into ``slopes``: bisection of the
+    balance of the ``m`` lowest residuals in [-steepest, steepest] (``doubled``: offsets in half frames)."""
+    n_rows, n = values.shape
+    residual = np.empty(n)
+    scratch = np.empty(n)
+    total = 0
+    for i in range(n):
+        total += doubled[i]
+    for r in range(n_rows):
+        lo = -steepest[r]
+        hi = steepest[r]
+        for _ in range(iterations):
+            slope = 0.5 * (lo + hi)
+            for i in range(n):
+                residual[i] = values[r, i] - slope * (0.5 * doubled[i])
+                scratch[i] = residual[i]
+            level = _kth_smallest(scratch, m - 1)
+            n_below = 0
+            n_tied = 0
+            sum_below = 0
+            sum_tied = 0
+            for i in range(n):
+                if residual[i] < level:
+                    n_below += 1
+                    sum_below += doubled[i]
+                elif residual[i] == level:
+                    n_tied += 1
+                    sum_tied += doubled[i]
+            if n * (n_tied * sum_below + (m - n_below) * sum_tied) > m * n_tied * total:
+                hi = slope
+            else:
+                lo = slope
+        slopes[r] = 0.5 * (lo + hi)
 
 
 def _check_baseline_args(window_s, percentile, smooth_s) -> tuple[float, float, float]:
@@ -428,9 +593,23 @@ def delta_f_over_f(raw, frame_rate, *, window_s=60.0, percentile=8.0, smooth_s=1
     2. The ``percentile`` is taken over the smoothed samples that fall in a
        window of ``window_s`` (within one sub-block) centred on a knot;
        knots lie every ``window_s / 20`` (3 s by default). Near the ends of
-       the recording the window stays inside it, so the first and last
-       half-window share the F0 of the outermost knots.
-    3. F0 at every frame is the piecewise-linear interpolation between knots.
+       the recording the window stays inside it, so the outermost knots lie
+       half a window from the ends.
+    3. At the first and the last frame, one more knot each: in the outermost
+       window a line is fitted whose level is the ``percentile`` (the
+       linear quantile regression of Koenker and Bassett, 1978, on that
+       window: a local linear fit, whose value at the boundary does not
+       carry the bias of a local constant one; Yu and Jones, 1998), and its
+       value at the edge frame is F0 there. Holding the outermost knot's
+       value instead left F0 a whole half window behind a bleaching
+       baseline (a quarter of the light lost to bleaching: F0 at t = 0 8 to
+       13 % low, and a spurious "transient" at the start of most ROIs). The edge value stays within
+       the range of the window's smoothed samples. Not done when the
+       recording is one window (F0 is then one constant), when a window
+       holds fewer than four smoothed samples, or for the 0th and 100th
+       percentile.
+    4. F0 at every frame is the piecewise-linear interpolation between knots
+       (between the outermost window centres it does not depend on step 3).
 
     Compared with an exact running percentile of a moving average at every
     frame, the percentile sees the moving average sampled every
@@ -457,6 +636,11 @@ def delta_f_over_f(raw, frame_rate, *, window_s=60.0, percentile=8.0, smooth_s=1
     described in Jia H, Rochefort NL, Chen X, Konnerth A (2011), "In vivo
     two-photon imaging of sensory-evoked dendritic calcium signals in
     cortical neurons", Nature Protocols 6(1):28–35.
+
+    The edge lines: Koenker R, Bassett G (1978), "Regression quantiles",
+    Econometrica 46(1):33–50; Yu K, Jones MC (1998), "Local linear quantile
+    regression", Journal of the American Statistical Association
+    93(441):228–237.
 
     Examples
     --------
@@ -552,15 +736,15 @@ def _delta_f(x, missing, frame_rate, window_s, percentile, smooth_s, floor, *, k
     for part in row_chunks(rows.shape[0], per_row):
         hole = miss_rows[part]
         finite = ~hole if missing.per_roi[part].any() else None
-        knots = _percentile_knots(rows[part], finite, grid, percentile)
+        knots_at, knots = _percentile_knots(rows[part], finite, grid, percentile)
         if floor is not None:
             np.maximum(knots, floor, out=knots)
         lowest_knot[part] = knots.min(axis=1)
-        parts.append((part, knots))
+        parts.append((part, knots_at, knots))
     if floor is None and not (lowest_knot > 0).all():
         raise ValueError(_non_positive_f0_message(x, lowest_knot, percentile))
-    for part, knots in parts:
-        _baseline_and_dff(rows[part], knots, grid.knot_frames, f0[part] if keep_f0 else f0, dff[part], lowest[part],
+    for part, knots_at, knots in parts:
+        _baseline_and_dff(rows[part], knots, knots_at, f0[part] if keep_f0 else f0, dff[part], lowest[part],
                           -np.inf if floor is None else floor, at_floor[part])
     return dff, (f0 if keep_f0 else None), lowest, at_floor
 
