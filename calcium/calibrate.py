@@ -217,6 +217,25 @@ class SessionCalibration:
                                    calibrated=calibrated, reasons=tuple(reasons), paired_rois=tuple(sorted(paired)))
 
     @classmethod
+    def from_fit(cls, fit, *, indicator=None) -> "SessionCalibration":
+        """A one-ROI paired calibration from a :class:`calcium.fit.KernelFit` (to reuse its kinetics, and its
+        spike size as the centre of the prior of another session's sizes)."""
+        from .fit import KernelFit
+
+        if not isinstance(fit, KernelFit):
+            raise ValueError(f"fit must be a calcium.fit.KernelFit, got {type(fit).__name__}")
+        k = fit.kernel
+        low, high = (fit.confidence.amplitude if fit.confidence is not None else (k.amplitude, k.amplitude))
+        log_size = math.log(k.amplitude)
+        return cls(source="paired", frame_rate=float(fit.frame_rate), rise_s=k.rise_s, decay_s=k.decay_s,
+                   rise_range_s=(k.rise_s, k.rise_s), decay_range_s=(k.decay_s, k.decay_s), n_kinetics_rois=1,
+                   spike_size=np.array([k.amplitude]), spike_size_low=np.array([float(low)]),
+                   spike_size_high=np.array([float(high)]), calibrated=np.ones(1, dtype=bool), reasons=("",),
+                   size_z=np.full(1, math.nan), size_prior=(log_size, 2 * MIN_SIZE_SPREAD), paired_rois=(0,),
+                   indicator=indicator, notes=(f"from one kernel fit ({fit.n_spikes} spikes, R² "
+                                               f"{fit.r_squared:.3g})",))
+
+    @classmethod
     def fixed(cls, kernel, n_rois, frame_rate, *, source="given", indicator=None) -> "SessionCalibration":
         """Every ROI counted with one given kernel (its amplitude is the single-spike size; no interval)."""
         if not isinstance(kernel, Kernel):

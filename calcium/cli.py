@@ -336,10 +336,19 @@ def cmd_infer(args):
     kernel = _kernel_from_args(args, required=False)
     if args.frame_rate is not None and args.frame_rate <= 0:
         raise UsageError(f"--frame-rate must be positive, got {args.frame_rate}")
+    calibration = args.calibration
+    if args.amplitude is not None:  # a spike size given by hand: counted as it is
+        if calibration != "session":
+            raise UsageError("--amplitude fixes the single-spike size: it does not go with --calibration")
+        calibration = "given"
+    indicator = None
+    if kernel is not None and args.indicator and calibration != "given":
+        kernel, indicator = None, args.indicator  # (the table's kinetics; the sizes are estimated per ROI)
     from calcium.pipeline.executors import ExecutorError
     try:  # infer_file streams the file and checks the frame rate against the one it records
-        summary = infer_file(args.input, args.out, frame_rate=args.frame_rate, kernel=kernel, dataset=args.dataset,
-                             workers=args.workers, overwrite=args.overwrite, progress=_progress(args))
+        summary = infer_file(args.input, args.out, frame_rate=args.frame_rate, kernel=kernel, indicator=indicator,
+                             dataset=args.dataset, workers=args.workers, overwrite=args.overwrite,
+                             progress=_progress(args), calibration=calibration)
     except ExecutorError as exc:  # a worker process died: one line, no traceback
         raise CommandError(str(exc)) from exc
     except (ValueError, OSError) as exc:
@@ -374,6 +383,36 @@ def _output_folder(args, *names, inputs=None) -> list[Path]:
     return paths
 
 
+def cmd_calibrate(args):
+    from calcium.calibrate import calibrate_session
+    data = _read_traces(args.input, args.dataset)
+    rate = _frame_rate(args, data)
+    electrical = None
+    if args.electrical_spikes:
+        from calcium.io import read_spike_times
+        try:
+            electrical = read_spike_times(args.electrical_spikes)
+        except (ValueError, OSError) as exc:
+            raise _fail(args.electrical_spikes, exc) from exc
+    out = _check_new_output(args.out, overwrite=args.overwrite,
+                            inputs={"INPUT": args.input, "--electrical-spikes": args.electrical_spikes}) \
+        if args.out else None
+    try:
+        calibration = calibrate_session(data.traces, rate, electrical_spikes=electrical, indicator=args.indicator,
+                                        max_kinetics_rois=args.max_rois, progress=_progress(args))
+    except ValueError as exc:
+        raise _fail(args.input, exc) from exc
+    print(calibration.summary())
+    flagged = [(i, r) for i, r in enumerate(calibration.reasons) if r]
+    for roi, reason in flagged[:20]:
+        print(f"  ROI {roi}: {reason}")
+    if len(flagged) > 20:
+        print(f"  ... and {len(flagged) - 20} more")
+    if out is not None:
+        calibration.save(out)
+        _say(args, f"calibration -> {out}")
+
+
 def cmd_fit_kernel(args):
     from calcium.fit import check_kinetics, fit_kernel
     from calcium.io import read_spike_times, write_csv
@@ -392,8 +431,8 @@ def cmd_fit_kernel(args):
         raise CommandError(f"{args.spikes}: no spike times for ROI {spike_roi} (ROIs in the file: "
                            f"{', '.join(map(str, sorted(spikes))) or 'none'})")
     if args.out:  # check before the (slow) fit
-        table, figure = _output_folder(args, "kernel_fit.csv", "kernel_fit.png",
-                                       inputs={"TRACE": args.trace, "SPIKES": args.spikes})
+        table, figure, calibration = _output_folder(args, "kernel_fit.csv", "kernel_fit.png", "calibration.json",
+                                                    inputs={"TRACE": args.trace, "SPIKES": args.spikes})
     try:
         fit = fit_kernel(data.traces[roi], times, rate, model=args.model, initial=args.indicator,
                          max_lag_s=args.max_lag_s, n_bootstrap=args.bootstrap, seed=args.seed)
@@ -411,7 +450,10 @@ def cmd_fit_kernel(args):
         reference = Kernel.from_indicator(args.indicator) if args.indicator else None
         save_figure(kernel_fit_figure(fit, reference=reference,
                                       reference_label=f"published {args.indicator}" if reference else ""), figure)
-        _say(args, f"table -> {table}\nfigure -> {figure}")
+        from calcium.calibrate import SessionCalibration
+        SessionCalibration.from_fit(fit, indicator=args.indicator).save(calibration)
+        _say(args, f"table -> {table}\nfigure -> {figure}\ncalibration -> {calibration} (reuse it with "
+                   f"'calcium infer --calibration {calibration}' or [calibration] file in a run)")
 
 
 def cmd_score(args):
@@ -603,11 +645,30 @@ def build_parser() -> argparse.ArgumentParser:
     _add_kernel_options(p)
     output(p, help_text="output traces (.h5, .npy or .csv)")
 
-    p = add("infer", cmd_infer, "ΔF/F -> inferred spikes (exact non-negative deconvolution), resumable")
+    p = add("infer", cmd_infer, "ΔF/F -> inferred spikes (exact non-negative deconvolution), counts calibrated "
+                                "across the file's ROIs, resumable")
     traces_input(p)
-    _add_kernel_options(p, help_suffix=" (default: estimated from each trace)")
+    _add_kernel_options(p, help_suffix=" (default: learned from the file's ROIs; --amplitude counts with that "
+                                       "single-spike size as it is)")
+    p.add_argument("--calibration", default="session", metavar="session|per-roi|FILE",
+                   help="how the single-spike size of each ROI is found: 'session' (default) pools the kinetics "
+                        "over the file's ROIs and estimates each ROI's size from its events, shrunk towards the "
+                        "session's sizes; 'per-roi' estimates each ROI alone (counts often off by 2x, not "
+                        "flagged); FILE: a calibration written by 'calcium calibrate' or 'calcium fit-kernel --out' "
+                        "(its kinetics and distribution of sizes)")
     p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="parallel processes (default: all cores)")
     output(p, help_text="output HDF5 file; a CSV spike table is written beside it")
+
+    p = add("calibrate", cmd_calibrate, "ΔF/F of a session -> shared kinetics and each ROI's single-spike size, "
+                                        "with intervals and flags")
+    traces_input(p)
+    p.add_argument("--electrical-spikes", help="spike CSV (roi,time_s) of ROIs recorded electrically: the kinetics "
+                                               "are fitted on them")
+    p.add_argument("--indicator", help="indicator name (`calcium indicators`): its published single-spike ΔF/F is a "
+                                       "weak prior, its kinetics are checked against the session's")
+    p.add_argument("--max-rois", type=int, default=48, help="blind: ROIs (clearest signal first) whose kinetics "
+                                                            "are pooled (default 48)")
+    output(p, required=False, help_text="write the calibration (.json) for 'calcium infer --calibration'")
 
     p = add("fit-kernel", cmd_fit_kernel, "fit indicator kinetics and clock lag from electrically recorded spikes")
     p.add_argument("trace", help="ΔF/F trace file")

@@ -4,6 +4,7 @@ The CLI holds no science, so these tests compare its files with the Python API c
 """
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -13,7 +14,7 @@ from calcium.cli import build_parser, main
 from calcium.io import read_hdf5, read_spike_times, read_traces, write_spike_table, write_traces
 
 COMMANDS = ["demo", "extract", "dff", "filter", "noise", "indicators", "simulate", "predict", "infer",
-            "fit-kernel", "score", "plan", "init", "run", "report", "export-nwb"]
+            "calibrate", "fit-kernel", "score", "plan", "init", "run", "report", "export-nwb"]
 
 
 @pytest.mark.parametrize("command", COMMANDS)
@@ -305,3 +306,33 @@ def test_infer_never_replaces_an_unrelated_spike_table(tmp_path, capsys):
                  "--quiet"]) == 1
     assert (tmp_path / "result.csv").read_text() == "mine\n"
     assert "result.csv" in capsys.readouterr().err
+
+
+def test_infer_counts_with_a_session_calibration_and_reuses_a_saved_one(tmp_path):
+    # ground truth from the independent generator (scripts/truth_sessions.py, no calcium code): the counts of
+    # `calcium infer` are within [0.67, 1.5] of the truth, and a calibration written by `calcium calibrate`
+    # gives the same counts when passed back with --calibration
+    import importlib.util
+
+    from calcium.io import read_spike_times, write_traces
+    from calcium.signal import delta_f_over_f
+
+    spec = importlib.util.spec_from_file_location("truth_sessions", Path(__file__).parent.parent / "scripts" /
+                                                  "truth_sessions.py")
+    truth = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = truth
+    spec.loader.exec_module(truth)
+    s = truth.make_session(n_rois=6, frame_rate=30.0, duration_s=150.0, rise_s=0.06, decay_s=0.8, snr=5.0, seed=5)
+    dff = tmp_path / "dff.h5"
+    write_traces(dff, delta_f_over_f(s.raw, 30.0).dff, frame_rate=30.0)
+    assert main(["infer", str(dff), "--out", str(tmp_path / "a.h5"), "--workers", "1", "--quiet"]) == 0
+    counts = read_spike_times(tmp_path / "a.csv")
+    ratios = np.array([counts[r].size / s.spike_times[r].size for r in range(6)])
+    assert np.all((ratios > 0.67) & (ratios < 1.5)), ratios
+    assert main(["calibrate", str(dff), "--out", str(tmp_path / "cal.json"), "--quiet"]) == 0
+    assert main(["infer", str(dff), "--out", str(tmp_path / "b.h5"), "--workers", "1", "--quiet",
+                 "--calibration", str(tmp_path / "cal.json")]) == 0
+    again = read_spike_times(tmp_path / "b.csv")
+    assert all(np.array_equal(again[r], counts[r]) for r in counts)
+    # a calibration file that is not one: one line naming the file, exit 1
+    assert main(["infer", str(dff), "--out", str(tmp_path / "c.h5"), "--calibration", str(dff), "--quiet"]) == 1

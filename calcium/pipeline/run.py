@@ -187,6 +187,10 @@ def _prepare_inputs(config: RunConfig, work: Path, progress) -> _Inputs:
             if not path.is_file():
                 raise CalciumInputError(f"inputs.{role}: file not found: {path}")
             paths[role] = path
+    if config.calibration.file is not None:
+        if not config.calibration.file.is_file():
+            raise CalciumInputError(f"calibration.file: file not found: {config.calibration.file}")
+        paths["calibration"] = config.calibration.file
     sha = {role: _hash(path, role, progress) for role, path in paths.items()}
 
     if inputs.movie is not None:
@@ -300,8 +304,6 @@ def _calibration_how(config: RunConfig, electrical) -> str:
 
 def _calibrated_params(config: RunConfig, prepared, params, store, progress):
     """The stage parameters with the session calibration the chunks count with (recorded in the results)."""
-    import dataclasses
-
     from ..kernel import Kernel
 
     how = _calibration_how(config, prepared.electrical)
@@ -314,17 +316,27 @@ def _calibrated_params(config: RunConfig, prepared, params, store, progress):
         kernel = Kernel.from_indicator(inf.indicator)
         size_given = how == "given"
         if inf.spike_size is not None:
-            kernel, size_given = kernel.scaled(inf.spike_size), how == "given"
-    options = dict(_fit_options(config), n_bootstrap=0)
+            kernel = kernel.scaled(inf.spike_size)
+    return _with_calibration(prepared.source, params, store, how=how, electrical=prepared.electrical,
+                             indicator=inf.indicator, kernel=kernel, size_given=size_given,
+                             calibration_file=config.calibration.file, max_rois=config.calibration.max_rois,
+                             fit_options=dict(_fit_options(config), n_bootstrap=0), progress=progress,
+                             key="calibration.source")
+
+
+def _with_calibration(source, params, store, *, how, electrical, indicator, kernel, size_given, calibration_file,
+                      max_rois, fit_options, progress, key):
+    """params with the session calibration (stages.session_calibration), recorded in the results file; a
+    session with nothing to learn from is counted per ROI with every count flagged."""
+    import dataclasses
+
     try:
-        cal = stages.session_calibration(prepared.source, params, how=how, electrical=prepared.electrical,
-                                         indicator=inf.indicator, kernel=kernel, size_given=size_given,
-                                         calibration_file=config.calibration.file,
-                                         max_rois=config.calibration.max_rois, fit_options=options,
-                                         progress=progress)
+        cal = stages.session_calibration(source, params, how=how, electrical=electrical, indicator=indicator,
+                                         kernel=kernel, size_given=size_given, calibration_file=calibration_file,
+                                         max_rois=max_rois, fit_options=fit_options, progress=progress)
     except ValueError as exc:
         if how == "file":
-            raise ConfigError(f"calibration.file: {exc}") from None
+            raise ConfigError(f"{key} = \"file\": {exc}") from None
         # nothing to learn the kinetics from (a session of noise): every ROI on its own, and every count flagged
         reason = f"no session calibration ({str(exc).splitlines()[0]})"
         _say(progress, f"calibration: {reason}; every ROI's counts are flagged as uncalibrated")
@@ -336,6 +348,29 @@ def _calibrated_params(config: RunConfig, prepared, params, store, progress):
     _say(progress, cal.summary().splitlines()[0])
     store.write_rows(stages.CALIBRATION_DATASET.name, slice(0, 1), [json.dumps(cal.session_dict())])
     return dataclasses.replace(params, calibration=cal)
+
+
+def _infer_calibration(calibration, kernel, indicator):
+    """(how, calibration file or None, size given) of infer_file's ``calibration`` argument."""
+    from ..calibrate import SessionCalibration
+
+    if isinstance(calibration, SessionCalibration):
+        raise ValueError("infer_file takes a calibration file, not a SessionCalibration object: save it first "
+                         "(SessionCalibration.save) and pass the path")
+    if isinstance(calibration, str) and calibration in ("session", "given", "per-roi"):
+        if calibration == "given" and kernel is None and indicator is None:
+            raise ValueError("calibration='given' needs a kernel or an indicator (its kernel is used as it is)")
+        if calibration == "session" and indicator is not None:
+            return "indicator", None, False
+        if calibration == "session" and kernel is not None:
+            return "given", None, False  # (fixed kinetics; the sizes are still estimated)
+        return calibration, None, calibration == "given"
+    if isinstance(calibration, (str, os.PathLike)):
+        path = Path(calibration)
+        if not path.is_file():
+            raise CalciumInputError(f"calibration file not found: {path}")
+        return "file", path, False
+    raise ValueError(f"calibration must be 'session', 'given', 'per-roi' or a calibration file, got {calibration!r}")
 
 
 def _stored_calibration_summary(results_path) -> str:
@@ -742,12 +777,14 @@ def write_spike_table_from_results(results_path, path, *, parts=None) -> Path:
 # inference only, for a ΔF/F file (calcium infer)
 # ---------------------------------------------------------------------------
 def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, dataset=None, workers=None,
-               backend="processes", chunk_rois=0, overwrite=False, progress=True) -> RunSummary:
+               backend="processes", chunk_rois=0, overwrite=False, progress=True, calibration="session",
+               max_calibration_rois=200) -> RunSummary:
     """Infer spikes for every ROI of a ΔF/F file on all cores; resumable results file and spike table.
 
     The per-ROI stages of :func:`run_pipeline` without ΔF/F (the input
     already is ΔF/F): noise (:func:`calcium.signal.estimate_noise`) and
-    inference (:func:`calcium.infer.infer_spikes`), with the quality flags.
+    inference counted with a session calibration
+    (:mod:`calcium.calibrate`), with the quality flags.
 
     Parameters
     ----------
@@ -761,10 +798,24 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         Hz; taken from the file when it records it (they must agree when both
         are known).
     kernel : calcium.kernel.Kernel, optional
-        Fixed kernel. Give at most one of ``kernel`` and ``indicator``;
-        with neither, the kinetics of each ROI are estimated.
+        Fixed kinetics. Its amplitude is the single-spike size only with
+        ``calibration="given"``; otherwise every ROI's size is estimated.
+        Give at most one of ``kernel`` and ``indicator``.
     indicator : str, optional
-        Indicator whose published kernel is used.
+        Indicator whose published kinetics are used (its single-spike ΔF/F
+        is a weak prior on the sizes; with ``calibration="given"`` the
+        table's kernel is used as it is).
+    calibration : str, path-like or SessionCalibration, default "session"
+        ``"session"``: calibrated blind across the ROIs of the file (kinetics
+        pooled over the ROIs unless ``kernel``/``indicator`` fix them, each
+        ROI's spike size from its events, shrunk towards the session's);
+        ``"given"``: ``kernel``/``indicator`` as they are; ``"per-roi"``:
+        each ROI alone, without calibration (counts often off by 2x, and
+        not flagged); a path: a calibration file (``.json``, written by
+        ``calcium calibrate`` or :meth:`SessionCalibration.save`).
+    max_calibration_rois : int, default 200
+        The session's kinetics and its distribution of sizes are learned on
+        at most this many ROIs (see ``[calibration] max_rois``).
     dataset : str, optional
         HDF5 dataset (default: ``traces``, else the only 1-D/2-D one).
     workers : int, optional
@@ -800,6 +851,7 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         raise CalciumInputError(f"ΔF/F file not found: {path}")
     if kernel is not None and indicator is not None:
         raise ValueError("give at most one of kernel and indicator")
+    how, calibration_file, size_given = _infer_calibration(calibration, kernel, indicator)
     if chunk_rois:
         from .._checks import check_int
 
@@ -809,8 +861,8 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     work = folder / f".{out.stem}.calcium-work"
     from ..io.results import protect_inputs
 
-    protect_inputs({"the ΔF/F file": path}, files=[out, spikes_path], folders=[work],
-                   remedy="choose another out (--out)")
+    protect_inputs({"the ΔF/F file": path, "the calibration file": calibration_file}, files=[out, spikes_path],
+                   folders=[work], remedy="choose another out (--out)")
     if spikes_path.exists() and not out.exists() and not overwrite:
         # a spike table of this run is only ever rewritten from its own results file
         raise ValueError(f"{spikes_path} already exists (the spike table goes beside {out.name}); pass "
@@ -827,8 +879,10 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     params = stages.StageParams(frame_rate=rate, dff=None, inference=inference)
     chunk_rois = min(chunk_rois or stages.auto_chunk_rois(source.n_rois, source.n_frames), source.n_rois)
     bounds = stages.chunk_bounds(source.n_rois, chunk_rois)
-    parameters = {"infer_file": {"kernel": repr(kernel), "indicator": indicator, "dataset": source.dataset},
-                  "inputs_sha256": {"dff": sha}, "frame_rate": rate, "n_rois": source.n_rois,
+    parameters = {"infer_file": {"kernel": repr(kernel), "indicator": indicator, "dataset": source.dataset,
+                                 "calibration": how, "max_calibration_rois": int(max_calibration_rois)},
+                  "inputs_sha256": {"dff": sha, **({"calibration": file_sha256(calibration_file)}
+                                                   if calibration_file is not None else {})}, "frame_rate": rate, "n_rois": source.n_rois,
                   "n_frames": source.n_frames, "chunk_rois": int(chunk_rois), "calcium_version": __version__}
     attrs = {"calcium_version": __version__, "frame_rate": rate, "n_rois": source.n_rois,
              "n_frames": source.n_frames, "chunk_rois": int(chunk_rois), "input_kind": "dff",
@@ -839,7 +893,7 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     run_hash = parameters_digest(parameters)
     parts = work / f"spikes-{run_hash[:16]}"
     store = ResultStore.open(out, datasets=stages.result_datasets(source.n_rois, source.n_frames, filtered=False,
-                                                                  with_dff=False),
+                                                                  with_dff=False) + [stages.CALIBRATION_DATASET],
                              chunk_bounds=bounds, run_hash=run_hash, attrs=attrs,
                              parameters=parameters, overwrite=overwrite)
     chunks_resumed = int(store.done.sum())
@@ -847,6 +901,14 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     try:
         todo = [c for c in range(store.n_chunks) if not store.done[c]]
         if todo:
+            from ..kernel import Kernel
+
+            params = _with_calibration(source, params, store, how=how, electrical=None, indicator=indicator,
+                                       kernel=kernel if kernel is not None else (
+                                           Kernel.from_indicator(indicator) if indicator is not None else None),
+                                       size_given=size_given, calibration_file=calibration_file,
+                                       max_rois=max_calibration_rois, fit_options=None, progress=progress,
+                                       key="calibration")
             used_backend, used_workers, computed = _run_chunks(source, params, store, todo, backend=backend,
                                                                workers=workers, scheduler=None, progress=progress,
                                                                parts=parts, label="inference")
@@ -870,7 +932,9 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)), chunks_total=int(bounds.size - 1),
         chunks_resumed=chunks_resumed, elapsed_s=elapsed,
         frames_per_second=computed * source.n_frames / elapsed if elapsed > 0 else float("nan"),
-        backend=used_backend, workers=used_workers)
+        backend=used_backend, workers=used_workers, n_uncalibrated=int(np.count_nonzero(quality &
+                                                                                        stages.FLAG_UNCALIBRATED)),
+        calibration=_stored_calibration_summary(out))
 
 
 # ---------------------------------------------------------------------------
