@@ -2,11 +2,12 @@
 
 For each case the suite checks the outcome (exit code and a fragment of the one-line message, or the flag in
 the results), that every input file has the same SHA-256 before and after, and that nothing is left behind
-that passes for a finished output.
+that passes for a finished output. The interruption cases (kill -9, Ctrl-C, a full disk under the workers,
+two writers at once) are in tests/test_pipeline_run.py and tests/test_pipeline_store.py.
 
-Cases by outcome
-----------------
-refused before anything is written (exit 1, the message names the output and the input; inputs unchanged):
+Cases by outcome (41 test items)
+--------------------------------
+refused before anything is written, exit 1, one line naming the output and the input (17):
     run: output.folder "." with electrical_spikes = "spikes.csv" in it; a traces CSV named spikes.csv in the
     output folder; --overwrite with traces = "results.h5" in the output folder; the spike table a hard link to
     the electrical spikes; the output folder a symbolic link to the inputs' folder; an input inside the work
@@ -15,6 +16,21 @@ refused before anything is written (exit 1, the message names the output and the
     input; predict --out the spike file; infer whose spike table (beside --out) is the input CSV;
     fit-kernel and score --out folders holding an input under an output name; report with the results file
     inside the report's figures folder; export-nwb --out a hard link to the results; extract --out the masks.
+    (+1 unit test of the check itself: roles, hard links, folders, symbolic links inside an output folder.)
+usage error, exit 2, naming the flag, nothing read or written (12):
+    --frame-rate nan / inf / -30 / 0 (dff), nan (noise, predict, fit-kernel), -inf (infer); --duration-s nan
+    (simulate); --window-s inf (dff); --frame-rates nan (plan); --percentile nan (dff).
+refused at once, exit 1, one line naming the address, no output folder (2):
+    execution.scheduler = "tcp://127.0.0.1:1", and a port nothing listens on.
+"no space left" naming the file, exit 1, no partial file, no page or work folder that looks finished (7):
+    atomic_output under ENOSPC and under numpy's cut-short write (2); the report's second figure on a full
+    disk (an earlier report's page removed, the results complete); on a real 16 kB disk: dff to .h5, .npy and
+    .csv, and run (4, one test).
+not called a full disk (1): a write cut short on a disk with room keeps its own message.
+flagged, the run completes, exit 0 (1): an all-zero ROI and a dim ROI (F0 exactly 0) in calcium run.
+one line naming the ROIs, exit 1; with the remedy it names, exit 0 (1): dff of those ROIs.
+works, exit 0 (2): a run with worker processes beside a folder named calcium; --overwrite replacing the
+    outputs of an earlier run (the control of the refusals).
 """
 import hashlib
 import os
@@ -390,3 +406,54 @@ def test_commands_on_a_really_full_disk_give_one_line_and_leave_nothing(session,
     for line, name in zip(lines, outputs.values()):
         assert line.startswith("1 calcium ") and f"{name}: no space left on the device" in line, line
     assert _files(session) == before
+
+
+# ---------------------------------------------------------------------------
+# F0 exactly 0 (an all-zero ROI, dim photon counts): a flagged ROI in a run, one line from the CLI
+# ---------------------------------------------------------------------------
+@pytest.fixture
+def dark_roi(session, recording):
+    """traces.h5 with ROI 1 all zero and ROI 2 dim (a photon count now and then: its 8th percentile is 0)."""
+    raw = recording.raw.copy()
+    raw[1] = 0.0
+    raw[2] = (np.random.default_rng(5).random(raw.shape[1]) < 0.05).astype(float)
+    write_traces(session / "dark.h5", raw, frame_rate=RATE)
+    return session / "dark.h5"
+
+
+def test_a_run_flags_rois_whose_f0_is_exactly_zero_and_analyses_the_others(session, dark_roi):
+    from calcium.pipeline import open_results, stages
+
+    config = _toml(session / "run.toml", inputs={"traces": dark_roi.name}, output={"folder": "out"},
+                   report={"enabled": False}, execution={"backend": "serial"})
+    before = _sha(dark_roi)
+    assert main(["run", str(config), "--quiet"]) == 0
+    with open_results(session / "out" / "results.h5") as results:
+        flags, reasons = results.read("quality_flags"), results.read("flags")
+        assert results.complete and np.isfinite(results.read("dff", 0)).all()
+    for roi in (1, 2):
+        assert flags[roi] & stages.FLAG_FAILED and flags[roi] & stages.FLAG_F0, (roi, reasons[roi])
+        assert "exactly 0" in reasons[roi]
+    assert not flags[0] & stages.FLAG_FAILED and _sha(dark_roi) == before
+
+
+def test_dff_of_a_roi_whose_f0_is_exactly_zero_is_one_line_naming_it(session, dark_roi, capsys):
+    before = _files(session)
+    assert main(["dff", dark_roi.name, "--out", "dff.h5", "--quiet"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "exactly 0 in ROI(s) 1, 2" in err[0] and "floor" in err[0], err
+    assert _files(session) == before
+    assert main(["dff", dark_roi.name, "--out", "dff.h5", "--floor", "1", "--quiet"]) == 0  # the named remedy
+
+
+def test_overwrite_still_replaces_the_outputs_of_an_earlier_run(session):
+    # (the control of the refusals above: --overwrite replaces outputs, it is only never aimed at an input)
+    config = _run_config(session, traces="traces.h5")
+    inputs = _sha(session / "traces.h5")
+    assert main(["run", str(config), "--quiet"]) == 0
+    first = _sha(session / "results.h5")
+    changed = _toml(session / "run.toml", inputs={"traces": "traces.h5"}, output={"folder": "."},
+                    report={"enabled": False}, execution={"backend": "serial"}, dff={"window_s": 20.0})
+    assert main(["run", str(changed), "--quiet"]) == 1  # another run's results: refused without --overwrite
+    assert main(["run", str(changed), "--overwrite", "--quiet"]) == 0
+    assert _sha(session / "results.h5") != first and _sha(session / "traces.h5") == inputs
