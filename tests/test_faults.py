@@ -5,13 +5,14 @@ the results), that every input file has the same SHA-256 before and after, and t
 that passes for a finished output. The interruption cases (kill -9, Ctrl-C, a full disk under the workers,
 two writers at once) are in tests/test_pipeline_run.py and tests/test_pipeline_store.py.
 
-Cases by outcome (41 test items)
+Cases by outcome (42 test items)
 --------------------------------
-refused before anything is written, exit 1, one line naming the output and the input (17):
+refused before anything is written, exit 1, one line naming the output and the input (18):
     run: output.folder "." with electrical_spikes = "spikes.csv" in it; a traces CSV named spikes.csv in the
     output folder; --overwrite with traces = "results.h5" in the output folder; the spike table a hard link to
     the electrical spikes; the output folder a symbolic link to the inputs' folder; an input inside the work
-    folder; the configuration file itself named spikes.csv in the output folder;
+    folder; the configuration file itself named spikes.csv in the output folder; a calibration file
+    (calibration.file) named spikes.csv there;
     dff --out a hard link / a symbolic link to the input (with --overwrite); filter --plot a link to the
     input; predict --out the spike file; infer whose spike table (beside --out) is the input CSV;
     fit-kernel and score --out folders holding an input under an output name; report with the results file
@@ -135,6 +136,14 @@ def _run_configuration_file_named_like_the_spike_table(s):
     return ["run", str(_run_config(s, name="spikes.csv", traces="traces.h5"))], "configuration file"
 
 
+def _run_calibration_file_named_like_the_spike_table(s):
+    (s / "spikes.csv").write_text("{}\n")  # (refused before it is read)
+    config = _toml(s / "run.toml", inputs={"traces": "traces.h5"}, output={"folder": "."},
+                   calibration={"source": "file", "file": "spikes.csv"}, report={"enabled": False},
+                   execution={"backend": "serial"})
+    return ["run", str(config)], "calibration.file"
+
+
 def _dff_out_a_hard_link_to_the_input(s):
     os.link(s / "traces.h5", s / "out.h5")
     return ["dff", "traces.h5", "--out", "out.h5", "--overwrite"], "link"
@@ -194,7 +203,8 @@ def _extract_out_the_masks(s):
 PROTECTED = [_run_electrical_spikes_in_output_folder, _run_traces_named_like_the_spike_table,
              _run_overwrite_with_traces_named_like_the_results, _run_spike_table_a_hard_link_to_the_electrical_spikes,
              _run_output_folder_a_symbolic_link_to_the_inputs, _run_input_inside_the_work_folder,
-             _run_configuration_file_named_like_the_spike_table, _dff_out_a_hard_link_to_the_input,
+             _run_configuration_file_named_like_the_spike_table, _run_calibration_file_named_like_the_spike_table,
+             _dff_out_a_hard_link_to_the_input,
              _dff_out_a_symbolic_link_to_the_input, _filter_plot_a_link_to_the_input, _predict_out_the_spike_file,
              _infer_spike_table_beside_out_is_the_input, _fit_kernel_folder_holding_the_spikes_as_its_table,
              _score_folder_holding_an_input_as_its_table, _report_results_inside_its_figures_folder,
