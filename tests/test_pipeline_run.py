@@ -541,7 +541,9 @@ def test_workers_leave_when_the_parent_is_killed_outright(tmp_path):
 
 
 def test_infer_file_gives_the_inference_of_each_dff_row_and_resumes(session, tmp_path):
-    # Reference: calcium.signal.estimate_noise and calcium.infer.infer_spikes on each ΔF/F row by hand.
+    # Reference: calcium.signal.estimate_noise, the session calibration of the file's rows and count_roi on each
+    # ΔF/F row by hand; calibration="per-roi": calcium.infer.infer_spikes on each row.
+    from calcium.calibrate import calibrate_session, count_roi
     from calcium.infer import infer_spikes
     from calcium.pipeline import infer_file
     from calcium.signal import estimate_noise
@@ -552,10 +554,17 @@ def test_infer_file_gives_the_inference_of_each_dff_row_and_resumes(session, tmp
     assert summary.spikes_path == tmp_path / "spikes.csv" and summary.report_path is None
     data, attrs = read_results(summary.results_path)
     assert "dff" not in data and attrs["input_kind"] == "dff"
+    calibration = calibrate_session(dff, RATE).for_session(4)
+    for roi in range(4):
+        direct = count_roi(dff[roi], RATE, calibration, roi, noise_sd=estimate_noise(dff[roi], RATE)).result
+        assert np.array_equal(data["spike_counts"][roi], direct.spike_counts)
+        assert np.array_equal(data["activity"][roi], direct.activity.astype(np.float32))
+    alone = infer_file(source, tmp_path / "alone.h5", backend="serial", chunk_rois=1, progress=False,
+                       calibration="per-roi")
+    data, _ = read_results(alone.results_path)
     for roi in range(4):
         direct = infer_spikes(dff[roi], RATE, noise_sd=estimate_noise(dff[roi], RATE))
         assert np.array_equal(data["spike_counts"][roi], direct.spike_counts)
-        assert np.array_equal(data["activity"][roi], direct.activity.astype(np.float32))
     again = infer_file(source, tmp_path / "spikes.h5", backend="serial", chunk_rois=1, progress=False)
     assert again.chunks_resumed == 4
     with pytest.raises(OutputMismatchError, match="indicator"):

@@ -373,16 +373,24 @@ def _infer_calibration(calibration, kernel, indicator):
     raise ValueError(f"calibration must be 'session', 'given', 'per-roi' or a calibration file, got {calibration!r}")
 
 
-def _stored_calibration_summary(results_path) -> str:
-    """The first line of the calibration summary recorded in a results file ("" when there is none)."""
-    with open_results(results_path) as results:
-        if stages.CALIBRATION_DATASET.name not in results.names():
-            return ""
-        text = results.read(stages.CALIBRATION_DATASET.name)[0]
+def _calibration_record(results) -> dict | None:
+    """The session calibration recorded in an open results file (a dict), or None when there is none."""
+    if stages.CALIBRATION_DATASET.name not in results:
+        return None
+    text = results.read(stages.CALIBRATION_DATASET.name)[0]
     text = text.decode() if isinstance(text, bytes) else str(text)
-    if not text:
-        return ""
-    return json.loads(text).get("summary", "")
+    try:
+        record = json.loads(text) if text.startswith("{") else None
+    except json.JSONDecodeError:
+        return None
+    return record if isinstance(record, dict) else None
+
+
+def _stored_calibration_summary(results_path) -> str:
+    """The calibration summary recorded in a results file ("" when there is none)."""
+    with open_results(results_path) as results:
+        record = _calibration_record(results)
+    return "" if record is None else str(record.get("summary", ""))
 
 
 def _fit_options(config: RunConfig) -> dict:
@@ -1216,13 +1224,10 @@ _CALIBRATION_PER_ROI = ("spike_size", "spike_size_low", "spike_size_high", "coun
 
 def _read_calibration(results):
     """The session calibration recorded in a results file ({"session": dict, "per_roi": arrays}) or None."""
-    if stages.CALIBRATION_DATASET.name not in results or any(n not in results for n in _CALIBRATION_PER_ROI):
+    record = _calibration_record(results)
+    if record is None or any(n not in results for n in _CALIBRATION_PER_ROI):
         return None
-    text = results.read(stages.CALIBRATION_DATASET.name)[0]
-    text = text.decode() if isinstance(text, bytes) else str(text)
-    if not text:
-        return None
-    return {"session": json.loads(text), "per_roi": {n: results.read(n) for n in _CALIBRATION_PER_ROI}}
+    return {"session": record, "per_roi": {n: results.read(n) for n in _CALIBRATION_PER_ROI}}
 
 
 def _calibration_section(report, calibration, rate, n_rois):
