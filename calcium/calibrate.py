@@ -83,6 +83,7 @@ MAX_PLAUSIBLE_RATE_HZ = 20.0
 #: An event of more spikes than this in one frame is flagged (common practice: bursts of 2-5 spikes).
 MAX_SPIKES_PER_FRAME = 5
 _LEVEL = 0.9
+_PRIOR_GRID_POINTS = 24  # grid of a ROI's size within 4 s.d. of the session's prior (steps of a third of an s.d.)
 
 
 @dataclass(frozen=True)
@@ -426,8 +427,8 @@ def count_roi(trace, frame_rate, calibration, roi, *, noise_sd=None, threshold=0
             from .indicators import get_indicator
 
             indicator_size = get_indicator(calibration.indicator).dff_single_spike
-        size, low, high, z, reason = _roi_size(_quantal_fit(unit, frame_rate, shape), calibration.size_prior,
-                                               indicator_size)
+        size, low, high, z, reason = _roi_size(_quantal_fit(unit, frame_rate, shape, calibration.size_prior),
+                                               calibration.size_prior, indicator_size)
     if not (np.isfinite(size) and size > 0) or unit.kernel is None or unit.coefficients.size == 0:
         empty = unit if unit.n_spikes == 0 else recount(unit, frame_rate, 1e300, threshold=threshold)
         return RoiCount(empty, size, low, high, z, 0, 0, False, reason or "no single-spike size: no spikes counted")
@@ -535,8 +536,9 @@ def _roi_events(trace, frame_rate, shape, noise_sd=None, threshold=0.5):
     return result, _quantal_fit(result, frame_rate, shape)
 
 
-def _quantal_fit(result, frame_rate, shape):
-    """The quantal fit of the event sizes of a deconvolution with the unit-amplitude kernel ``shape``."""
+def _quantal_fit(result, frame_rate, shape, prior=(math.nan, math.nan)):
+    """The quantal fit of the event sizes of a deconvolution with the unit-amplitude kernel ``shape``; with a
+    prior across the session, q is searched where the prior has nearly all its mass (4 s.d. either side)."""
     from .infer.counts import event_noise_size, event_sizes
     from .infer.quantal import fit_quantal_mixture
 
@@ -546,6 +548,10 @@ def _quantal_fit(result, frame_rate, shape):
     gap = max(1, int(math.ceil(shape.rise_s * frame_rate)))
     sizes = event_sizes(result.activity, merge_gap=gap)
     noise_size = event_noise_size(result.coefficients, result.noise_sd, result.activity.size) / result.spike_size
+    mean, sd = prior
+    if np.isfinite(mean) and np.isfinite(sd):
+        return fit_quantal_mixture(sizes, noise_size=noise_size, grid_points=_PRIOR_GRID_POINTS,
+                                   search=(math.exp(mean - 4.0 * sd), math.exp(mean + 4.0 * sd)))
     return fit_quantal_mixture(sizes, noise_size=noise_size)
 
 
@@ -601,19 +607,22 @@ def _empirical_bayes(fits, indicator_size, fixed=None):
     centres = np.array([math.log(f.quantum) for f in usable])
     means = np.linspace(centres.min() - 0.5, centres.max() + 0.5, 81)
     sds = np.exp(np.linspace(math.log(MIN_SIZE_SPREAD), math.log(2.0), 25))
+    # every ROI's profile on its own grid (same number of points): rows of (ROIs, grid)
+    logs = np.array([np.log(f.grid) for f in usable])
+    steps = np.gradient(logs, axis=1) if logs.shape[1] > 1 else np.ones_like(logs)
+    peaks = np.array([f.log_likelihood - f.log_likelihood.max() for f in usable])
+    weight = np.exp(peaks) * steps
     best, best_value = None, -np.inf
-    logs = [np.log(f.grid) for f in usable]
-    steps = [np.gradient(lg) if lg.size > 1 else np.ones(1) for lg in logs]
-    peaks = [f.log_likelihood - f.log_likelihood.max() for f in usable]
     for sd in sds:
-        for mean in means:
-            total = 0.0
-            for lg, step, ll in zip(logs, steps, peaks):
-                total += math.log(max(float(np.sum(np.exp(ll + _log_prior(lg, mean, sd)) * step)), 1e-300))
-            if indicator_size is not None:
-                total += -0.5 * ((mean - math.log(indicator_size)) / INDICATOR_PRIOR_SPREAD) ** 2
-            if total > best_value:
-                best, best_value = (float(mean), float(sd)), total
+        # marginal likelihood of each ROI under N(mean, sd) on the log size, for every mean at once
+        z = (logs[None, :, :] - means[:, None, None]) / sd
+        marginal = np.einsum("mrg,rg->mr", np.exp(-0.5 * z * z), weight) / sd
+        total = np.log(np.maximum(marginal, 1e-300)).sum(axis=1)
+        if indicator_size is not None:
+            total = total - 0.5 * ((means - math.log(indicator_size)) / INDICATOR_PRIOR_SPREAD) ** 2
+        j = int(np.argmax(total))
+        if total[j] > best_value:
+            best, best_value = (float(means[j]), float(sd)), float(total[j])
     return best
 
 

@@ -69,9 +69,10 @@ MIN_QUANTUM_Z = 3.0
 #: about 3 size-noise s.d. (measured on our independent generator, scripts/bench_calibration.py); they stay
 #: below half a spike, the counting threshold, only when one spike is at least 6 s.d.
 IDENTIFIABLE_Z = 6.0
-_GRID_POINTS = 64
+_GRID_POINTS = 48
 _MAX_COMPONENTS = 24
 _EM_STEPS = 60
+_EM_TOLERANCE = 1e-3  # log-likelihood gain below which EM stops (far below the 1.92 of the interval)
 _V_BOUNDS = (0.05, 0.35)  # relative s.d. of one spike's size between spikes (bounds of the fit)
 #: Events of one spike are taken to be at least this many times as common as events of two.  For a Poisson
 #: train of rate r, an event window w holds a second spike with probability about r w, so the ratio is about
@@ -119,7 +120,7 @@ class QuantalFit:
     quantum_z: float
 
 
-def fit_quantal_mixture(sizes, *, noise_size, min_events=8, grid_points=_GRID_POINTS) -> QuantalFit:
+def fit_quantal_mixture(sizes, *, noise_size, min_events=8, grid_points=_GRID_POINTS, search=None) -> QuantalFit:
     r"""Single-spike size from event sizes: maximum likelihood of a quantal mixture.
 
     Parameters
@@ -134,8 +135,11 @@ def fit_quantal_mixture(sizes, *, noise_size, min_events=8, grid_points=_GRID_PO
         activity of one unit-amplitude spike.
     min_events : int, default 8
         With fewer events above the noise, ``quantum`` is NaN.
-    grid_points : int, default 64
+    grid_points : int, default 48
         Points of the logarithmic grid of q.
+    search : (low, high), optional
+        Search q only within this range (intersected with the default one),
+        e.g. where a prior across cells puts nearly all its mass.
 
     Returns
     -------
@@ -168,14 +172,20 @@ def fit_quantal_mixture(sizes, *, noise_size, min_events=8, grid_points=_GRID_PO
                           math.nan)
     lo = MIN_QUANTUM_Z * noise_size
     hi = max(float(np.quantile(x, 0.95)), lo * 1.5)
+    if search is not None:
+        low, high = float(search[0]), float(search[1])
+        if not 0 < low < high:
+            raise ValueError(f"search must be (low, high) with 0 < low < high, got {tuple(search)}")
+        lo, hi = max(lo, low), min(hi, high)
+        if not lo < hi:  # (the range and the data do not meet: its nearer end)
+            lo, hi = (hi / 1.5, hi) if low >= hi else (lo, lo * 1.5)
     grid = np.exp(np.linspace(math.log(lo), math.log(hi), grid_points))
     values, weights = _binned(x, noise_size)
     loglik = np.empty(grid.size)
     shares = np.empty(grid.size)
     vs = np.empty(grid.size)
     props = np.zeros((grid.size, _MAX_COMPONENTS))
-    for j, q in enumerate(grid):
-        loglik[j], shares[j], vs[j] = _em_profile(values, weights, float(q), noise_size, _EM_STEPS, props[j])
+    _profile(values, weights, grid, noise_size, _EM_STEPS, _EM_TOLERANCE, loglik, shares, vs, props)
     best = int(np.argmax(loglik))
     within = np.flatnonzero(loglik >= loglik[best] - 1.92)  # chi-square(1) 95 % / 2 (Wilks 1938)
     interval = (float(grid[within.min()]), float(grid[within.max()]))
@@ -187,11 +197,12 @@ def fit_quantal_mixture(sizes, *, noise_size, min_events=8, grid_points=_GRID_PO
 
 
 def _binned(x, noise_size):
-    """Sizes binned finely enough not to matter (bins of a tenth of the size noise, or 1 % of the size,
-    whichever is wider): the mean size and the count of each occupied bin, sorted."""
-    # bin coordinate: steps of 0.1 noise_size up to 10 noise_size, then steps of 1 % of the size
+    """Sizes binned finely enough not to matter (bins of a fifth of the size noise, or 2 % of the size,
+    whichever is wider; a single spike's size varies by more than 5 % between spikes): the mean size and the
+    count of each occupied bin, sorted."""
+    # bin coordinate: steps of 0.2 noise_size up to 10 noise_size, then steps of 2 % of the size
     knee = 10.0 * noise_size
-    coordinate = np.where(x < knee, x / (0.1 * noise_size), 100.0 + 100.0 * np.log(np.maximum(x, knee) / knee))
+    coordinate = np.where(x < knee, x / (0.2 * noise_size), 50.0 + 50.0 * np.log(np.maximum(x, knee) / knee))
     _, groups = np.unique(np.floor(coordinate).astype(np.int64), return_inverse=True)
     weights = np.bincount(groups).astype(np.float64)
     values = np.bincount(groups, weights=x) / weights
@@ -222,41 +233,67 @@ def _pava_non_increasing(values, out):
 
 
 @njit(cache=True)
-def _em_profile(x, weight, q, noise_size, steps, proportions_out):
-    """EM for the mixture at a fixed quantum q; returns (log-likelihood, noise share, v) and fills the
-    proportions p_k."""
+def _profile(x, weight, grid, noise_size, steps, tolerance, loglik_out, share_out, v_out, proportions_out):
+    """The profile likelihood over the grid of q (ascending): EM at each q, warm-started from the previous q's
+    parameters, stopped when an EM step gains less than ``tolerance`` in log-likelihood."""
+    state = np.empty(6)  # pi0, alpha, theta, a^2, v, (unused)
+    p = np.zeros(_MAX_COMPONENTS)
+    for j in range(grid.shape[0]):
+        loglik_out[j], share_out[j], v_out[j] = _em_fit(x, weight, grid[j], noise_size, steps, tolerance, state, p,
+                                                         True)
+        for k in range(_MAX_COMPONENTS):
+            proportions_out[j, k] = p[k]
+
+
+@njit(cache=True)
+def _em_fit(x, weight, q, noise_size, steps, tolerance, state, p, fresh):
+    """EM for the mixture at a fixed quantum q; returns (log-likelihood, noise share, v); ``state`` and ``p``
+    (the proportions p_k) hold the parameters, in and out (``fresh``: start from the defaults)."""
     n = x.shape[0]
     n_total = 0.0
     for i in range(n):
         n_total += weight[i]
     K = min(_MAX_COMPONENTS, max(3, int(math.ceil(x[n - 1] / q)) + 2))
-    p = np.empty(K)
-    total = 0.0
-    for k in range(K):
-        p[k] = 0.5 ** (k + 1)
-        total += p[k]
-    for k in range(K):
-        p[k] /= total
-    a2 = noise_size * noise_size
-    v = 0.15
-    pi0 = 0.5
-    # the noise pile starts at the median of the events below half a quantum
-    count = 0
-    below = 0.0
-    for i in range(n):
-        if x[i] < 0.5 * q:
-            count += 1
-            below += weight[i]
-    mean0 = x[count // 2] if below > 4 else min(3.0 * noise_size, 0.4 * q)
-    alpha = 8.0
-    theta = mean0 / alpha
+    if fresh:
+        total = 0.0
+        for k in range(K):
+            p[k] = 0.5 ** (k + 1)
+            total += p[k]
+        for k in range(K):
+            p[k] /= total
+        state[0] = 0.5
+        # the noise pile starts at the median of the events below half a quantum
+        count = 0
+        below = 0.0
+        for i in range(n):
+            if x[i] < 0.5 * q:
+                count += 1
+                below += weight[i]
+        mean0 = x[count // 2] if below > 4 else min(3.0 * noise_size, 0.4 * q)
+        state[1] = 8.0
+        state[2] = mean0 / 8.0
+        state[3] = noise_size * noise_size
+        state[4] = 0.15
+    else:
+        # components the previous (smaller) quantum had beyond this one's K are folded into the last
+        total = 0.0
+        for k in range(K, _MAX_COMPONENTS):
+            p[K - 1] += p[k]
+            p[k] = 0.0
+        for k in range(K):
+            total += p[k]
+        for k in range(K):
+            p[k] = p[k] / total if total > 0 else 1.0 / K
+        if state[2] * state[1] > 0.5 * q:  # (the pile's mean stays below half a quantum)
+            state[2] = 0.5 * q / state[1]
+    pi0, alpha, theta, a2, v = state[0], state[1], state[2], state[3], state[4]
     resp = np.empty(K + 1)
     nk = np.empty(K + 1)
     sk = np.empty(K + 1)       # sum of resp * x (noise) / resp * (x - kq)^2 (spikes)
-    s0x2 = 0.0
     share = np.empty(K)
     iso = np.empty(K)
     loglik = -np.inf
+    previous = -np.inf
     for step in range(steps + 1):
         for k in range(K + 1):
             nk[k] = 0.0
@@ -264,25 +301,34 @@ def _em_profile(x, weight, q, noise_size, steps, proportions_out):
         s0x2 = 0.0
         loglik = 0.0
         log_norm0 = -math.lgamma(alpha) - alpha * math.log(theta)
+        log_pi0 = math.log(max(pi0, 1e-300))
+        sd_max = math.sqrt(a2 + K * v * v * q * q)
         for i in range(n):
             xi = x[i]
-            best = -np.inf
-            resp[0] = math.log(max(pi0, 1e-300)) + log_norm0 + (alpha - 1.0) * math.log(xi) - xi / theta
+            resp[0] = log_pi0 + log_norm0 + (alpha - 1.0) * math.log(xi) - xi / theta
             best = resp[0]
-            for k in range(K):
-                m = (k + 1) * q
-                var = a2 + (k + 1) * v * v * q * q
+            # components more than 8 s.d. away contribute nothing a double can hold (exp(-32)): skipped
+            lo_k = max(1, int(math.floor((xi - 8.0 * sd_max) / q)))
+            hi_k = min(K, int(math.ceil((xi + 8.0 * sd_max) / q)))
+            for k in range(1, K + 1):
+                if k < lo_k or k > hi_k:
+                    resp[k] = -np.inf
+                    continue
+                m = k * q
+                var = a2 + k * v * v * q * q
                 d = xi - m
-                resp[k + 1] = (math.log(max((1.0 - pi0) * p[k], 1e-300)) - 0.5 * d * d / var
-                               - 0.5 * math.log(2.0 * math.pi * var))
-                if resp[k + 1] > best:
-                    best = resp[k + 1]
+                resp[k] = (math.log(max((1.0 - pi0) * p[k - 1], 1e-300)) - 0.5 * d * d / var
+                           - 0.5 * math.log(2.0 * math.pi * var))
+                if resp[k] > best:
+                    best = resp[k]
             total = 0.0
             for k in range(K + 1):
-                resp[k] = math.exp(resp[k] - best)
+                resp[k] = math.exp(resp[k] - best) if resp[k] > -np.inf else 0.0
                 total += resp[k]
             loglik += weight[i] * (best + math.log(total))
             for k in range(K + 1):
+                if resp[k] == 0.0:
+                    continue
                 r = weight[i] * resp[k] / total
                 nk[k] += r
                 if k == 0:
@@ -291,8 +337,9 @@ def _em_profile(x, weight, q, noise_size, steps, proportions_out):
                 else:
                     d = xi - k * q
                     sk[k] += r * d * d
-        if step == steps:
+        if step == steps or loglik - previous < tolerance:
             break
+        previous = loglik
         # M step: noise share and pile (moments of a gamma, mean kept below q / 2)
         pi0 = nk[0] / n_total
         if nk[0] > 1e-9:
@@ -351,6 +398,7 @@ def _em_profile(x, weight, q, noise_size, steps, proportions_out):
             new_v2 = 0.0
         a2 = max(new_a2, noise_size * noise_size)
         v = min(max(math.sqrt(max(new_v2, 0.0)), _V_BOUNDS[0]), _V_BOUNDS[1])
-    for k in range(proportions_out.shape[0]):
-        proportions_out[k] = p[k] if k < K else 0.0
+    state[0], state[1], state[2], state[3], state[4] = pi0, alpha, theta, a2, v
+    for k in range(K, _MAX_COMPONENTS):
+        p[k] = 0.0
     return loglik, pi0, v
