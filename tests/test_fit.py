@@ -36,6 +36,8 @@ def test_kinetics_amplitude_and_clock_offset_are_recovered_at_single_spike_snr_3
     assert abs(fit.lag_s - lag_s) < 1.0 / frame_rate
     assert fit.converged and fit.n_spikes == true_times.size
     assert fit.r_squared > 0 and fit.residual_sd == pytest.approx(kernel.amplitude / 3, rel=0.1)
+    assert fit.usable and fit.response_p_value <= 0.01 and "responds to the spikes beyond chance" in fit.verdict
+    assert fit.require_usable() is fit
 
 
 def test_a_large_clock_offset_is_found_without_an_initial_kernel():
@@ -151,8 +153,9 @@ def test_no_spikes_or_too_few_isolated_spikes_raise_with_the_counts():
     dff, times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=40.0, seed=6)
     with pytest.raises(ValueError, match="no spikes"):
         fit_kernel(dff, [], 30.0)
-    burst = np.array([10.0, 10.05, 10.1, 20.0, 20.05])  # no spike is isolated
-    with pytest.raises(ValueError, match=r"found 0 isolated spike\(s\).*at least 3"):
+    burst = np.array([10.0, 10.05, 10.1, 20.0, 20.05])  # no spike is isolated, and 5 spikes in all
+    with pytest.raises(ValueError, match=r"found 0 isolated spike\(s\).*at least 3 isolated spikes, or at least "
+                                         r"min_spikes=10 spikes in all"):
         fit_kernel(dff, burst, 30.0, isolation_s=0.3)
 
 
@@ -229,3 +232,106 @@ def test_saturating_indicator_with_bursts_is_flagged_as_saturation():
 def test_check_kinetics_refuses_other_objects():
     with pytest.raises(ValueError, match="KernelFit or a Kernel"):
         check_kinetics({"decay_s": 1.0}, "GCaMP6f")
+
+
+# --------------------------------------------------------------------------- busy cells
+def _double_exponential_sum(times_s, spikes_s, rise_s, decay_s, amplitude):
+    """Sum over spikes of amplitude * (exp(-t/decay) - exp(-t/rise)) / peak, written out here (not calcium.forward);
+    the peak of the bracket is at t* = ln(decay/rise) rise decay / (decay - rise) (handbook calculus)."""
+    t_peak = np.log(decay_s / rise_s) * rise_s * decay_s / (decay_s - rise_s)
+    peak = np.exp(-t_peak / decay_s) - np.exp(-t_peak / rise_s)
+    delay = times_s[:, None] - spikes_s[None, :]
+    after = np.maximum(delay, 0.0)
+    responses = np.where(delay >= 0, (np.exp(-after / decay_s) - np.exp(-after / rise_s)) / peak, 0.0)
+    return amplitude * responses.sum(axis=1)
+
+
+def test_a_cell_firing_at_3_hz_without_isolated_spikes_is_fitted_through_its_summed_responses():
+    # Ground truth: the double-exponential sum above. 3 Hz with gamma(4) intervals (CV 0.5): no spike has the
+    # default 0.8 s of quiet on both sides, so the isolated-spike requirement alone would refuse the cell.
+    rise, decay, amplitude, frame_rate = 0.05, 0.4, 0.2, 30.0
+    rng = np.random.default_rng(21)
+    spikes = 1.0 + np.cumsum(rng.gamma(4.0, 1.0 / 12.0, size=360))
+    times = np.arange(int((spikes[-1] + 3.0) * frame_rate)) / frame_rate
+    dff = _double_exponential_sum(times, spikes, rise, decay, amplitude) + rng.normal(0.0, amplitude / 4, times.size)
+    fit = fit_kernel(dff, spikes, frame_rate, isolation_s=0.8, n_bootstrap=0)
+    assert fit.n_isolated < 3 and fit.n_spikes == spikes.size
+    # Tolerances as for isolated spikes at single-spike SNR 3 (decay 10 %, rise 35 %, amplitude 15 %), tighter
+    # where the many spikes allow it.
+    assert fit.kernel.decay_s == pytest.approx(decay, rel=0.10)
+    assert fit.kernel.rise_s == pytest.approx(rise, rel=0.35)
+    assert fit.kernel.amplitude == pytest.approx(amplitude, rel=0.10)
+    assert abs(fit.lag_s) < 1.0 / frame_rate
+    assert fit.usable and "busy cell: " in fit.verdict and f"all {spikes.size} spikes" in fit.verdict
+
+
+def test_a_busy_cell_needs_min_spikes_in_all():
+    rng = np.random.default_rng(22)
+    spikes = 1.0 + np.cumsum(rng.gamma(4.0, 1.0 / 12.0, size=8))
+    times = np.arange(int((spikes[-1] + 3.0) * 30.0)) / 30.0
+    dff = _double_exponential_sum(times, spikes, 0.05, 0.4, 0.2) + rng.normal(0.0, 0.05, times.size)
+    with pytest.raises(ValueError, match=r"among 8 spikes.*min_spikes=10"):
+        fit_kernel(dff, spikes, 30.0, isolation_s=0.8, n_bootstrap=0)
+    fit = fit_kernel(dff, spikes, 30.0, isolation_s=0.8, n_bootstrap=0, min_spikes=8)
+    assert fit.n_spikes == 8
+
+
+# --------------------------------------------------------------------------- verdict
+def test_pure_noise_gives_an_unusable_fit_that_says_why():
+    rng = np.random.default_rng(5)
+    noise = rng.normal(0.0, 0.05, 3600)
+    _, times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=120.0, seed=7)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fit = fit_kernel(noise, times, 30.0, n_bootstrap=0)
+    assert not fit.usable
+    assert "does not respond to these spikes more than to the same spikes shifted in time" in fit.verdict
+    with pytest.raises(ValueError, match="the kernel fit is not usable: the trace does not respond"):
+        fit.require_usable()
+    assert "NOT USABLE" in str(fit)
+
+
+def test_another_cells_spikes_give_an_unusable_fit():
+    rec = simulate_recording(2, 180.0, 30.0, indicator="GCaMP6f", rate_hz=0.8, noise_sd=0.05, seed=12)
+    fit = fit_kernel(rec.dff[0], rec.spike_times[1], 30.0, initial="GCaMP6f", n_bootstrap=0)
+    assert not fit.usable and fit.signal_explained < 0.3
+    own = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, initial="GCaMP6f", n_bootstrap=0)
+    assert own.usable and own.signal_explained > 0.6
+
+
+def test_shifted_spike_p_values_are_not_small_for_unrelated_trains_more_often_than_stated():
+    # Reference: the definition of a p-value: under the null hypothesis P(p <= alpha) <= alpha. 40 traces each
+    # fitted to an independent spike train: at most 2 + 2 binomial s.d. of them may have p <= 0.05 (about 5).
+    small = 0
+    for seed in range(40):
+        rec = simulate_recording(1, 120.0, 15.0, indicator="GCaMP6s", rate_hz=1.0, noise_sd=0.05, seed=seed)
+        other = simulate_recording(1, 120.0, 15.0, indicator="GCaMP6s", rate_hz=1.0, seed=1000 + seed)
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                fit = fit_kernel(rec.dff[0], other.spike_times[0], 15.0, initial="GCaMP6s", n_bootstrap=0)
+        except ValueError:  # nothing rises after the spikes: certainly no response
+            continue
+        small += fit.response_p_value <= 0.05
+    assert small <= 5
+
+
+def test_a_clock_offset_beyond_the_search_range_is_reported_at_the_edge():
+    # A true offset of 1.5 s with max_lag_s=1: the lag can only reach the bound; the fit must say so. (A slow
+    # indicator, so that spikes 1 s off still overlap their responses and a fit is found.)
+    dff, true_times, _ = _recording("GCaMP6s", frame_rate=30.0, duration_s=120.0, seed=9)
+    given = true_times - 1.5
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fit = fit_kernel(dff, given, 30.0, initial="GCaMP6s", n_bootstrap=0, max_lag_s=1.0)
+        wider = fit_kernel(dff, given, 30.0, initial="GCaMP6s", n_bootstrap=0, max_lag_s=2.0)
+    assert fit.lag_at_edge and not fit.usable
+    assert "sits at the edge of the search range (max_lag_s=1 s)" in fit.verdict
+    assert "refit with a wider max_lag_s (e.g. 2)" in fit.verdict and "AT THE EDGE" in str(fit)
+    assert abs(wider.lag_s - 1.5) < 1 / 30.0 and not wider.lag_at_edge and wider.usable
+    # a fast indicator 1.5 s off gives nothing to fit within 1 s: the error points at max_lag_s
+    dff, true_times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=120.0, seed=9)
+    with pytest.raises(ValueError, match=r"at any lag within max_lag_s=1 s.*widen max_lag_s"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fit_kernel(dff, true_times - 1.5, 30.0, initial="GCaMP6f", n_bootstrap=0, max_lag_s=1.0)
