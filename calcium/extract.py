@@ -50,6 +50,10 @@ _HUBER_C = 1.345
 # 4.685 when cells are active 10-30 % of the time; equal when they are silent).
 _BISQUARE_C = 3.0
 _MIN_FRAMES_FOR_ESTIMATE = 10
+# A ROI (or ring) frame with non-finite pixels is estimated from the finite ones when at least this fraction of
+# its pixels is finite (our own choice: with half the pixels the shot noise of the mean grows by at most sqrt(2),
+# common practice; below that the estimate would rest on a minority of the ROI).
+DEFAULT_MIN_FINITE_FRACTION = 0.5
 
 
 @dataclass(frozen=True)
@@ -77,7 +81,14 @@ class Extraction:
         Ring geometry used.
     missing : MissingFrames
         Missing samples of ``corrected`` (NaN frames of a float movie, or
-        NaN pixels inside a ROI or ring).
+        too few finite pixels in a ROI or its ring).
+    nan_pixel_frames : ndarray of int, shape (rois,)
+        Frames in which the ROI or its ring held NaN (or inf) pixels.
+    nan_pixel_missing : ndarray of int, shape (rois,)
+        Of those, the frames left missing because fewer than
+        ``min_finite_fraction`` of the ROI's (or the ring's) pixels were
+        finite; the others were estimated from the finite pixels (see
+        :func:`extract_traces`).
     """
 
     roi_f: np.ndarray
@@ -90,6 +101,13 @@ class Extraction:
     neuropil_gap_px: float
     neuropil_radius_px: float
     missing: MissingFrames
+    nan_pixel_frames: np.ndarray = None
+    nan_pixel_missing: np.ndarray = None
+
+    def __post_init__(self):
+        for name in ("nan_pixel_frames", "nan_pixel_missing"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.zeros(self.roi_f.shape[0], dtype=np.int64))
 
     @property
     def n_rois(self) -> int:
@@ -354,14 +372,15 @@ def _check_factor(neuropil_factor, n_rois: int):
 
 def extract_traces(movie, masks, *, neuropil_gap_px: float = 2, neuropil_radius_px: float = 15,
                    neuropil_factor=DEFAULT_NEUROPIL_FACTOR, chunk_frames: int = 500,
-                   progress: bool = False) -> Extraction:
+                   min_finite_fraction: float = DEFAULT_MIN_FINITE_FRACTION, progress: bool = False) -> Extraction:
     """Mean ROI and neuropil fluorescence per frame, and the neuropil-corrected traces.
 
     Parameters
     ----------
     movie : Movie or array_like, shape (frames, height, width)
         From :func:`calcium.io.open_movie` (read in chunks) or in memory.
-        NaN pixels of a float movie mark missing data and stay missing.
+        NaN (or inf) pixels of a float movie mark missing data: see
+        ``min_finite_fraction`` and Notes.
     masks : array_like
         Boolean stack (rois, height, width) or label image (height, width).
     neuropil_gap_px : float, default 2
@@ -375,6 +394,11 @@ def extract_traces(movie, masks, *, neuropil_gap_px: float = 2, neuropil_radius_
         warning is issued and 0.7 is used (see ``factor_estimated``).
     chunk_frames : int, default 500
         Frames read and reduced at a time (memory ~ chunk_frames x frame size).
+    min_finite_fraction : float in (0, 1], default 0.5
+        A frame in which a ROI (or its ring) has NaN or inf pixels is
+        estimated from its finite pixels when at least this fraction of the
+        group's pixels is finite, and is missing otherwise (see Notes).
+        1.0: any non-finite pixel makes the sample missing.
     progress : bool, default False
         Show a progress bar (tqdm).
 
@@ -397,8 +421,34 @@ def extract_traces(movie, masks, *, neuropil_gap_px: float = 2, neuropil_radius_
 
     Each ROI and ring is stored as a list of flat pixel indices and the sums
     run in a compiled loop over those lists, frame by frame (cost: one
-    addition per listed pixel and frame). A NaN pixel in P_i or N_i makes that
-    sample NaN (missing); it is never averaged away.
+    addition per listed pixel and frame).
+
+    *NaN pixels.* A NaN (or inf) pixel of a float movie in P_i or N_i would
+    make the whole sample missing; a single dead pixel in a ring of hundreds
+    would then wipe out every frame. Instead, the frames with non-finite
+    pixels are estimated from the finite ones when at least
+    ``min_finite_fraction`` of the group's pixels are finite (else they are
+    missing), by a ratio estimate (Cochran 1977, ch. 6): with
+    :math:`\\bar m_p` the mean over the movie of pixel p (its finite frames),
+    :math:`F = \\frac{\\sum_{p\\ finite} m_t(p)}{\\sum_{p\\ finite} \\bar m_p}
+    \\cdot \\frac{1}{|L|}\\sum_{p \\in L} \\bar m_p`, L the group's pixels that
+    are finite in some frame (a pixel never finite is left out of every
+    frame). Where brightness varies within the ROI, a plain mean of the
+    finite pixels would jump whenever the set of finite pixels changes; the
+    ratio estimate does not when the pixels change in proportion to each
+    other (it is exact then). Where some pixel mean is <= 0 (a movie with
+    its background subtracted) the difference estimate
+    :math:`\\mathrm{mean}_{finite} m_t(p) + \\mathrm{mean}_L \\bar m_p -
+    \\mathrm{mean}_{finite} \\bar m_p` is used instead. A warning says how
+    many frames were estimated and how many became missing
+    (``nan_pixel_frames``, ``nan_pixel_missing``). These passes run only
+    when a non-finite pixel was met; they read the movie once more (twice
+    when a frame needs an estimate).
+
+    References
+    ----------
+    Cochran WG (1977) Sampling Techniques, 3rd ed. Wiley (ch. 6, ratio
+    estimators; ch. 7, difference estimators).
 
     Examples
     --------
@@ -415,6 +465,9 @@ def extract_traces(movie, masks, *, neuropil_gap_px: float = 2, neuropil_radius_
     stack = check_masks(masks)
     gap, radius = _check_geometry(neuropil_gap_px, neuropil_radius_px)
     chunk_frames = check_int(chunk_frames, "chunk_frames", minimum=1)
+    min_finite_fraction = check_positive(min_finite_fraction, "min_finite_fraction")
+    if min_finite_fraction > 1:
+        raise ValueError(f"min_finite_fraction must be in (0, 1], got {min_finite_fraction!r}")
     if stack.shape[1:] != movie.shape[1:]:
         raise ValueError(f"masks are {stack.shape[1]}x{stack.shape[2]} pixels but the movie frames are "
                          f"{movie.shape[1]}x{movie.shape[2]}")
@@ -435,6 +488,14 @@ def extract_traces(movie, masks, *, neuropil_gap_px: float = 2, neuropil_radius_
         for start, frames in movie.iter_chunks(chunk_frames, copy=False):
             _group_means_numba(_chunk_rows(frames), groups.order, groups.starts, groups.counts, means, start)
             bar.update(frames.shape[0])
+    nan_frames = np.zeros(n_rois, dtype=np.int64)
+    nan_missing = np.zeros(n_rois, dtype=np.int64)
+    bad = ~np.isfinite(means)
+    if bad.any():  # (only a float movie with NaN or inf pixels gets here)
+        affected, lost = _repair_nan_pixels(movie, chunk_frames, rois + rings, means, bad, min_finite_fraction)
+        nan_frames = (affected[:n_rois] | affected[n_rois:]).sum(axis=1)
+        nan_missing = (lost[:n_rois] | lost[n_rois:]).sum(axis=1)
+        _warn_nan_pixels(nan_frames, nan_missing, n_frames, min_finite_fraction)
     roi_f, neuropil_f = means[:n_rois], means[n_rois:]
     estimated = np.zeros(n_rois, dtype=bool)
     if estimate:
@@ -451,4 +512,68 @@ def extract_traces(movie, masks, *, neuropil_gap_px: float = 2, neuropil_radius_
     return Extraction(roi_f=roi_f, neuropil_f=neuropil_f, corrected=corrected, neuropil_factor=factors,
                       neuropil_pixels=np.array([r.size for r in rings]), roi_pixels=np.array([r.size for r in rois]),
                       factor_estimated=estimated, neuropil_gap_px=gap, neuropil_radius_px=radius,
-                      missing=find_missing(corrected))
+                      missing=find_missing(corrected), nan_pixel_frames=nan_frames, nan_pixel_missing=nan_missing)
+
+
+def _repair_nan_pixels(movie, chunk_frames, pixel_lists, means, bad, min_fraction):
+    """Estimate from their finite pixels the group means that non-finite pixels spoiled (see extract_traces).
+
+    ``means`` (groups, frames) is changed in place; ``bad`` marks its non-finite entries. Returns the boolean
+    (groups, frames) arrays of the entries that had non-finite pixels and of those left missing.
+    """
+    groups = np.flatnonzero(bad.any(axis=1))
+    lists = [pixel_lists[g] for g in groups]
+    pixels, inverse = np.unique(np.concatenate(lists), return_inverse=True)
+    where = np.split(inverse, np.cumsum([idx.size for idx in lists])[:-1])  # each group's columns in `pixels`
+    total = np.zeros(pixels.size)
+    count = np.zeros(pixels.size, dtype=np.int64)
+    estimate = np.zeros(bad.shape, dtype=bool)  # enough finite pixels: estimated in the second pass
+    for start, frames in movie.iter_chunks(chunk_frames, copy=False):
+        values = _chunk_rows(frames)[:, pixels].astype(np.float64)
+        finite = np.isfinite(values)
+        for row in np.where(finite, values, 0.0):  # frame by frame: the same sums whatever the chunk size
+            total += row
+        count += finite.sum(axis=0)
+        stop = start + frames.shape[0]
+        for g, columns in zip(groups, where):
+            spoiled = np.flatnonzero(bad[g, start:stop])
+            if spoiled.size:
+                enough = finite[np.ix_(spoiled, columns)].sum(axis=1) >= min_fraction * columns.size
+                estimate[g, start + spoiled[enough]] = True
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pixel_mean = total / count  # NaN for a pixel never finite
+    lost = bad & ~estimate
+    means[lost] = np.nan
+    if estimate.any():
+        need = np.flatnonzero(estimate.any(axis=0))
+        for start, frames in movie.iter_chunks(chunk_frames, copy=False):
+            stop = start + frames.shape[0]
+            if not np.any((need >= start) & (need < stop)):
+                continue
+            values = _chunk_rows(frames)[:, pixels].astype(np.float64)
+            for g, columns in zip(groups, where):
+                for t in np.flatnonzero(estimate[g, start:stop]):
+                    means[g, start + t] = _estimate_group(values[t, columns], pixel_mean[columns])
+    return bad, lost
+
+
+def _estimate_group(values, pixel_mean):
+    """Ratio (or difference) estimate of a group's mean over its live pixels from the finite ones."""
+    live = np.isfinite(pixel_mean)
+    used = np.isfinite(values) & live
+    if np.all(pixel_mean[live] > 0):
+        return float(values[used].sum() / pixel_mean[used].sum() * pixel_mean[live].mean())
+    return float(values[used].mean() + pixel_mean[live].mean() - pixel_mean[used].mean())
+
+
+def _warn_nan_pixels(nan_frames, nan_missing, n_frames, min_fraction):
+    rois = np.flatnonzero(nan_frames)
+    worst = int(rois[np.argmax(nan_frames[rois])])
+    text = (f"NaN or inf pixels in {rois.size} ROI(s) or their neuropil rings (e.g. ROI {worst}: in "
+            f"{int(nan_frames[worst])} of {n_frames} frames): frames with at least {min_fraction:.0%} finite pixels "
+            f"were estimated from those (a ratio estimate with each pixel's mean)")
+    if nan_missing.any():
+        worst_lost = int(np.argmax(nan_missing))
+        text += (f"; {int(nan_missing.sum())} sample(s) in {np.count_nonzero(nan_missing)} ROI(s) had fewer and are "
+                 f"missing (ROI {worst_lost}: {int(nan_missing[worst_lost])} of {n_frames} frames)")
+    warnings.warn(text + "; see Extraction.nan_pixel_frames and nan_pixel_missing", UserWarning, stacklevel=3)

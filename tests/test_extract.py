@@ -105,17 +105,95 @@ def test_chunk_size_and_file_backed_movies_do_not_change_the_result(tmp_path):
             np.testing.assert_array_equal(part.corrected, whole.corrected)
 
 
-def test_missing_frames_and_pixels_stay_missing():
+def test_missing_frames_stay_missing_and_a_bad_pixel_is_estimated_around_or_strictly_missing():
     movie = np.full((6, 40, 40), 10.0)
     masks = _two_square_rois()
     movie[2] = np.nan                    # a dropped frame
     movie[4, 9, 9] = np.nan              # one bad pixel inside ROI 0
-    result = extract_traces(movie, masks)
+    with pytest.warns(UserWarning, match=r"NaN or inf pixels in 2 ROI\(s\).*ROI 0: in 2 of 6 frames.*2 sample\(s\) "
+                                         r"in 2 ROI\(s\) had fewer and are missing"):
+        result = extract_traces(movie, masks)
     assert np.isnan(result.corrected[:, 2]).all()
-    assert np.isnan(result.corrected[0, 4]) and np.isfinite(result.corrected[1, 4])
-    assert result.missing.count == 3
+    assert result.corrected[0, 4] == pytest.approx(10.0 - 0.7 * 10.0)  # 24 of 25 pixels finite: estimated
+    assert result.missing.count == 2
+    np.testing.assert_array_equal(result.nan_pixel_frames, [2, 1])
+    np.testing.assert_array_equal(result.nan_pixel_missing, [1, 1])
     finite = np.isfinite(result.corrected)
     np.testing.assert_allclose(result.corrected[finite], 10.0 - 0.7 * 10.0)
+    with pytest.warns(UserWarning):
+        strict = extract_traces(movie, masks, min_finite_fraction=1.0)  # any bad pixel: the sample is missing
+    assert np.isnan(strict.corrected[0, 4]) and np.isfinite(strict.corrected[1, 4]) and strict.missing.count == 3
+    with pytest.raises(ValueError, match="min_finite_fraction"):
+        extract_traces(movie, masks, min_finite_fraction=1.5)
+
+
+def _proportional_movie(rng, frames=200, size=40):
+    """Every pixel p at frame t is gain_p * f(t): ROIs brighter than the background and uneven inside."""
+    gain = rng.uniform(50.0, 150.0, size=(size, size))
+    gain[8:13, 8:13] *= np.linspace(1.0, 4.0, 5)[None, :]  # ROI 0 brightens from left to right
+    course = 1.0 + 0.5 * np.abs(np.sin(np.arange(frames) / 7.0))
+    return gain[None] * course[:, None, None]
+
+
+def test_a_dead_pixel_in_every_frame_no_longer_wipes_out_the_rois_and_is_reported():
+    # The dead pixel sits in both rings; 198 of 200 frames also lose a ring pixel. Reference: the mean over the
+    # pixels that are ever finite, computed with numpy (ratio estimates are exact for proportional pixels,
+    # Cochran 1977, ch. 6).
+    rng = np.random.default_rng(9)
+    masks = _two_square_rois()
+    movie = _proportional_movie(rng)
+    truth = movie.copy()
+    rings = neuropil_rings(masks)
+    dead = tuple(np.argwhere(rings[0] & rings[1])[0])
+    movie[:, dead[0], dead[1]] = np.nan
+    with pytest.warns(UserWarning, match=r"NaN or inf pixels in 2 ROI\(s\).*in 200 of 200 frames"):
+        result = extract_traces(movie, masks)
+    assert not result.missing.any
+    np.testing.assert_array_equal(result.nan_pixel_frames, [200, 200])
+    np.testing.assert_array_equal(result.nan_pixel_missing, [0, 0])
+    for i in range(2):
+        live = rings[i].copy()
+        live[dead] = False
+        np.testing.assert_allclose(result.neuropil_f[i], truth[:, live].mean(axis=1), rtol=1e-12)
+        np.testing.assert_allclose(result.roi_f[i], truth[:, masks[i]].mean(axis=1), rtol=1e-13)
+
+
+def test_frames_with_part_of_an_uneven_roi_missing_are_estimated_without_a_jump():
+    # Reference: the full-ROI mean of the movie before its pixels were hidden. Hiding the bright right half of
+    # ROI 0 would drop a plain mean of the finite pixels by a third; the ratio estimate stays within 1 %.
+    rng = np.random.default_rng(10)
+    masks = _two_square_rois()
+    movie = _proportional_movie(rng)
+    truth = movie[:, masks[0]].mean(axis=1)
+    hidden = np.zeros((40, 40), dtype=bool)
+    hidden[8:13, 11:13] = True            # 10 of the 25 pixels of ROI 0 (the brightest two columns)
+    frames = np.arange(40, 60)
+    movie[np.ix_(frames, *np.nonzero(hidden))] = np.nan
+    gone = movie[:, 8:13, 8:13].copy()
+    gone[:, :3, :] = np.nan               # frame 100: 15 of 25 pixels hidden, fewer than half left: missing
+    movie[100, 8:13, 8:13] = gone[100]
+    with pytest.warns(UserWarning, match=r"ROI 0: in 21 of 200 frames.*1 sample\(s\) in 1 ROI\(s\)"):
+        result = extract_traces(movie, masks)
+    plain = np.nanmean(movie[frames][:, masks[0]], axis=1)
+    assert np.all(np.abs(plain / truth[frames] - 1) > 0.15)
+    np.testing.assert_allclose(result.roi_f[0, frames], truth[frames], rtol=0.01)
+    assert np.isnan(result.roi_f[0, 100]) and result.nan_pixel_missing[0] == 1
+    others = np.setdiff1d(np.arange(200), np.append(frames, 100))
+    np.testing.assert_allclose(result.roi_f[0, others], truth[others], rtol=1e-13)
+
+
+def test_nan_pixel_estimates_do_not_depend_on_the_chunk_size():
+    rng = np.random.default_rng(11)
+    masks = _two_square_rois()
+    movie = _proportional_movie(rng, frames=30)
+    movie[rng.random(movie.shape) < 0.05] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        whole = extract_traces(movie, masks, chunk_frames=1000)
+        for chunk in (1, 7):
+            part = extract_traces(movie, masks, chunk_frames=chunk)
+            np.testing.assert_array_equal(part.roi_f, whole.roi_f)
+            np.testing.assert_array_equal(part.neuropil_f, whole.neuropil_f)
 
 
 def test_a_roi_without_neuropil_pixels_asks_for_a_larger_radius():
