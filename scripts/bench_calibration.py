@@ -83,11 +83,10 @@ MEDIAN_TARGET_SATURATING = (0.75, 1.33)
 WITHIN_TARGET = 0.90
 F1_MARGIN = {"blind": 0.05, "paired": 0.02}
 CALIBRATED_CONDITIONS = ("blind", "paired")
-UNAVAILABLE = "calibrate_session not available yet"
 
 
 class CalibrationUnavailable(Exception):
-    """The calibration API (calcium.calibrate_session and its result's fields) is not there yet."""
+    """A condition that cannot run on this session (e.g. too few ROIs to pair some)."""
 
 
 # ------------------------------------------------------------------------------------------ conditions
@@ -99,37 +98,28 @@ def _infer_all(session, dff, rois, kernel_of=None):
             calcium.infer_spikes(dff[i], fr, kernel=kernel_of(i)) for i in rois}
 
 
-def _calibrated(session, dff, **kwargs):
-    try:
-        calibrate = calcium.calibrate_session
-    except AttributeError as error:
-        raise CalibrationUnavailable(UNAVAILABLE) from error
-    cal = calibrate(dff, session.frame_rate, **kwargs)
-    try:
-        kernel_of, flags = cal.kernel, cal.calibrated
-    except AttributeError as error:
-        raise CalibrationUnavailable(f"{UNAVAILABLE} (its result has no {error.name!r})") from error
-    return kernel_of, flags
-
-
 def run_uncalibrated(session, dff):
     rois = range(session.n_rois)
     return list(rois), _infer_all(session, dff, rois), None
 
 
+def _session_counts(session, dff, rois, **kwargs):
+    """calcium.infer_session (what `calcium infer` and `calcium run` count with): its spikes and its flags,
+    which also cover implausible counts and cells that rarely rest."""
+    out = calcium.infer_session(dff, session.frame_rate, **kwargs)
+    return rois, {i: out.results[i] for i in rois}, {i: bool(out.calibrated[i]) for i in rois}
+
+
 def run_blind(session, dff):
-    kernel_of, flags = _calibrated(session, dff)
-    rois = list(range(session.n_rois))
-    return rois, _infer_all(session, dff, rois, kernel_of), {i: bool(flags[i]) for i in rois}
+    return _session_counts(session, dff, list(range(session.n_rois)))
 
 
 def run_paired(session, dff):
     if session.n_rois <= len(PAIRED_ROIS):
         raise CalibrationUnavailable(f"needs more than {len(PAIRED_ROIS)} ROIs")
     electrical = session.electrical_spikes(PAIRED_ROIS, clock_offset_s=ELECTRICAL_CLOCK_OFFSET_S)
-    kernel_of, flags = _calibrated(session, dff, electrical_spikes=electrical)
     rois = [i for i in range(session.n_rois) if i not in PAIRED_ROIS]
-    return rois, _infer_all(session, dff, rois, kernel_of), {i: bool(flags[i]) for i in rois}
+    return _session_counts(session, dff, rois, electrical_spikes=electrical)
 
 
 def run_truth(session, dff):
