@@ -194,8 +194,11 @@ def _demo_stages(data: Path, out: Path, sc: dict, steps) -> Path:
     predicted = {roi: calcium.predict_fluorescence(ephys[roi] + lag, kernel, fr, dff.dff.shape[1])
                  + fits[roi].baseline for roi in patched}
     step("forward model")
-    # 6. spike inference for every ROI with the kernel learned above
-    inferred = calcium.infer_spikes_many(dff.dff, fr, kernel=kernel)
+    # 6. spike inference for every ROI, counted with the session calibration (paired: the patched cells' fits give
+    # the kinetics and the prior of the others' single-spike sizes), as `calcium run` does
+    session = calcium.infer_session(dff.dff, fr, electrical_spikes={roi: ephys[roi] for roi in patched},
+                                    indicator=sc["indicator"])
+    inferred = list(session.results)
     step("inference")
     # 7. scores: against the electrical spikes (patched cells) and the simulation's ground truth (all cells)
     truth = calcium.read_spike_times(data / "truth_spikes.csv")
@@ -247,6 +250,19 @@ def _demo_stages(data: Path, out: Path, sc: dict, steps) -> Path:
                                              roi_label=f"ROI {roi}"),
                        caption=f"ROI {roi}: the fitted kernel driven by the electrical spikes.",
                        name=f"predict_roi{roi}")
+    rep.add_section("Spike counts: calibration")
+    cal = session.calibration
+    rep.add_text(cal.summary())
+    times = np.linspace(0.0, 5.0 * cal.decay_s, 400)
+    spread = [calcium.Kernel(r, d, float(np.nanmedian(cal.spike_size))).evaluate(times)
+              for r in cal.rise_range_s for d in cal.decay_range_s if 0 <= r < d]
+    rep.add_figure(fig.calibration_figure(times, cal.kernel(0).scaled(float(np.nanmedian(cal.spike_size)))
+                                          .evaluate(times), np.array(spread), cal.spike_size, cal.spike_size_low,
+                                          cal.spike_size_high, session.calibrated,
+                                          kinetics_label=f"session kernel ({cal.source})"),
+                   caption="Left: the kernel shared by the session's ROIs with the range of the per-ROI kinetics. "
+                           "Right: each ROI's single-spike ΔF/F with its 90 % interval (hollow: uncalibrated).",
+                   name="calibration")
     rep.add_section("Inferred spikes")
     rep.add_figure(fig.raster_figure([r.spike_times for r in inferred], duration_s=dff.dff.shape[1] / fr),
                    caption="Inferred spikes of every ROI.", name="raster")
@@ -266,13 +282,16 @@ def _demo_stages(data: Path, out: Path, sc: dict, steps) -> Path:
     rep.add_figure(fig.plan_figure(plan), caption="Detection probability of single spikes at a 1 % "
                    "false-positive rate, by frame rate, at this session's noise and twice it.", name="plan")
     rep.add_section("Per-ROI table")
-    header = ["roi", "noise_sd", "snr", "n_inferred", "n_true", "f1", "missing_frames"]
+    header = ["roi", "noise_sd", "snr", "n_inferred", "count 90 %", "spike size", "n_true", "f1", "missing_frames"]
     rows, flags = [], []
     for i, r in enumerate(inferred):
-        snr = kernel.amplitude / noise[i]
+        snr = float(cal.spike_size[i]) / noise[i]
         s = vs_truth[i]
-        rows.append([i, float(noise[i]), float(snr), int(r.n_spikes), s.n_true, s.f1,
-                     int(dff.missing.per_roi[i])])
-        flags.append("low SNR" if snr < 2 else "")
+        rows.append([i, float(noise[i]), snr, int(r.n_spikes),
+                     f"{int(session.count_low[i])}-{int(session.count_high[i])}", float(cal.spike_size[i]),
+                     s.n_true, s.f1, int(dff.missing.per_roi[i])])
+        flags.append("; ".join(x for x in ("low SNR" if snr < 2 else "",
+                                           "uncalibrated counts: " + session.reasons[i] if session.reasons[i]
+                                           else "") if x))
     rep.add_table(header, rows, caption="Click a column heading to sort.", flags=flags)
     return rep.write(out)
