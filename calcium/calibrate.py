@@ -766,6 +766,9 @@ def calibrate_session(dff, frame_rate, *, electrical_spikes=None, indicator=None
 
 
 def _session_rows(dff) -> np.ndarray:
+    from ._checks import check_dff_like
+
+    check_dff_like(dff, "dff")
     rows = as_traces(dff, "dff")
     if rows.ndim == 1:
         rows = rows[None, :]

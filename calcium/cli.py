@@ -78,12 +78,30 @@ def _check_new_output(path, *, overwrite: bool, inputs=None, flag: str = "--out"
     return path
 
 
-def _read_traces(path, dataset=None):
+# API keywords named in the readers' messages, and the flags a command-line user changes instead
+_FLAG_OF_KEYWORD = (("pass orientation_check=False to read_traces", "pass --wide"),
+                    ("orientation_check=False", "--wide"), ("pass time_column=None", "pass --time-column none"),
+                    ("time_column=", "--time-column "), ("pass allow_raw=True", "pass --allow-raw"))
+
+
+def _cli_words(message: str) -> str:
+    for keyword, flag in _FLAG_OF_KEYWORD:
+        message = message.replace(keyword, flag)
+    return message
+
+
+def _read_traces(path, dataset=None, args=None):
     from calcium.io import read_traces
+    options = {}
+    if args is not None and getattr(args, "time_column", None) is not None:
+        column = args.time_column
+        options["time_column"] = None if column.lower() == "none" else (int(column) if column.isdigit() else column)
+    if args is not None and getattr(args, "wide", False):
+        options["orientation_check"] = False
     try:
-        return read_traces(path, dataset=dataset)
+        return read_traces(path, dataset=dataset, **options)
     except (ValueError, OSError) as exc:
-        raise _fail(path, exc) from exc
+        raise _fail(path, ValueError(_cli_words(str(exc)))) from exc
 
 
 def _frame_rate(args, data) -> float:
@@ -99,8 +117,12 @@ def _frame_rate(args, data) -> float:
     return float(given if given is not None else found)
 
 
-def _kernel_from_args(args, *, required: bool = True):
-    """A Kernel from --indicator or --rise-s/--decay-s/--amplitude (None if neither and not required)."""
+def _kernel_from_args(args, *, required: bool = True, size_needed: bool = True):
+    """A Kernel from --indicator or --rise-s/--decay-s/--amplitude (None if neither and not required).
+
+    ``size_needed``: the command uses the kernel's amplitude as the ΔF/F of one spike, so --decay-s without
+    --amplitude is refused rather than completed with an invented 1.0 (``infer`` estimates the size instead).
+    """
     from calcium.kernel import Kernel
     if getattr(args, "indicator", None):
         if args.rise_s is not None or args.decay_s is not None:
@@ -110,6 +132,9 @@ def _kernel_from_args(args, *, required: bool = True):
             kernel = kernel.scaled(args.amplitude)
         return kernel
     if args.decay_s is not None:
+        if args.amplitude is None and size_needed:
+            raise UsageError("--decay-s was given without --amplitude (the peak ΔF/F of one spike); give "
+                             "--amplitude, or --indicator NAME to take the published kinetics and size")
         return Kernel(rise_s=args.rise_s or 0.0, decay_s=args.decay_s,
                       amplitude=args.amplitude if args.amplitude is not None else 1.0)
     if args.rise_s is not None:
@@ -194,7 +219,7 @@ def cmd_extract(args):
 def cmd_dff(args):
     from calcium.signal import delta_f_over_f
     out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"INPUT": args.input})
-    data = _read_traces(args.input, args.dataset)
+    data = _read_traces(args.input, args.dataset, args)
     rate = _frame_rate(args, data)
     try:
         result = delta_f_over_f(data.traces, rate, window_s=args.window_s, percentile=args.percentile,
@@ -219,7 +244,7 @@ def cmd_filter(args):
     out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"INPUT": args.input})
     plot = (_check_new_output(args.plot, overwrite=args.overwrite, inputs={"INPUT": args.input}, flag="--plot")
             if args.plot else None)
-    data = _read_traces(args.input, args.dataset)
+    data = _read_traces(args.input, args.dataset, args)
     rate = _frame_rate(args, data)
     cutoff = args.cutoff_hz[0] if len(args.cutoff_hz) == 1 else tuple(args.cutoff_hz)
     try:
@@ -239,7 +264,7 @@ def cmd_filter(args):
 
 def cmd_noise(args):
     from calcium.signal import estimate_noise
-    data = _read_traces(args.input, args.dataset)
+    data = _read_traces(args.input, args.dataset, args)
     rate = _frame_rate(args, data)
     try:
         sd = np.atleast_1d(estimate_noise(data.traces, rate))
@@ -333,7 +358,7 @@ def cmd_predict(args):
 
 def cmd_infer(args):
     from calcium.pipeline import infer_file
-    kernel = _kernel_from_args(args, required=False)
+    kernel = _kernel_from_args(args, required=False, size_needed=False)
     if args.frame_rate is not None and args.frame_rate <= 0:
         raise UsageError(f"--frame-rate must be positive, got {args.frame_rate}")
     calibration = args.calibration
@@ -348,11 +373,11 @@ def cmd_infer(args):
     try:  # infer_file streams the file and checks the frame rate against the one it records
         summary = infer_file(args.input, args.out, frame_rate=args.frame_rate, kernel=kernel, indicator=indicator,
                              dataset=args.dataset, workers=args.workers, overwrite=args.overwrite,
-                             progress=_progress(args), calibration=calibration)
+                             progress=_progress(args), calibration=calibration, allow_raw=args.allow_raw)
     except ExecutorError as exc:  # a worker process died: one line, no traceback
         raise CommandError(str(exc)) from exc
     except (ValueError, OSError) as exc:
-        raise _fail(args.input, exc, also=(args.out,)) from exc
+        raise _fail(args.input, ValueError(_cli_words(str(exc))), also=(args.out,)) from exc
     _say(args, str(summary))
 
 
@@ -385,7 +410,7 @@ def _output_folder(args, *names, inputs=None) -> list[Path]:
 
 def cmd_calibrate(args):
     from calcium.calibrate import calibrate_session
-    data = _read_traces(args.input, args.dataset)
+    data = _read_traces(args.input, args.dataset, args)
     rate = _frame_rate(args, data)
     electrical = None
     if args.electrical_spikes:
@@ -416,7 +441,7 @@ def cmd_calibrate(args):
 def cmd_fit_kernel(args):
     from calcium.fit import check_kinetics, fit_kernel
     from calcium.io import read_spike_times, write_csv
-    data = _read_traces(args.trace, args.dataset)
+    data = _read_traces(args.trace, args.dataset, args)
     rate = _frame_rate(args, data)
     try:
         spikes = read_spike_times(args.spikes)
@@ -579,6 +604,12 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument(name, help="trace file: .npy, .csv (one column per ROI, optional time_s column) or .h5")
         p.add_argument("--dataset", help="dataset name inside an HDF5 file")
         p.add_argument("--frame-rate", type=_positive, help="frames per second (Hz); read from the file when it has it")
+        p.add_argument("--time-column", metavar="NAME|INDEX|none",
+                       help="CSV: the column holding the time in seconds (default: one named time_s or time); "
+                            "'none': every column is a ROI")
+        p.add_argument("--wide", action="store_true",
+                       help="accept a file with many more ROIs than frames (refused by default: such files were "
+                            "usually written one line per ROI)")
 
     def output(p, required=True, help_text="output file"):
         p.add_argument("--out", required=required, help=help_text)
@@ -656,6 +687,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "session's sizes; 'per-roi' estimates each ROI alone (counts often off by 2x, not "
                         "flagged); FILE: a calibration written by 'calcium calibrate' or 'calcium fit-kernel --out' "
                         "(its kinetics and distribution of sizes)")
+    p.add_argument("--allow-raw", action="store_true",
+                   help="infer even on ROIs whose values look like raw fluorescence rather than ΔF/F (their "
+                        "counts are flagged as uncalibrated)")
     p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="parallel processes (default: all cores)")
     output(p, help_text="output HDF5 file; a CSV spike table is written beside it")
 

@@ -117,3 +117,10 @@ def test_a_calibration_of_another_session_is_refused(session):
         infer_session(dff, s.frame_rate, calibration=cal)
     with pytest.raises(ValueError, match="not a calibration file"):
         load_calibration(Path(__file__))
+
+
+def test_raw_fluorescence_is_refused_as_a_session_of_dff():
+    # ΔF/F is 0 at rest by definition (Grienberger & Konnerth 2012): raw counts far above 1 are not ΔF/F
+    rng = np.random.default_rng(1)
+    with pytest.raises(ValueError, match="looks like raw fluorescence"):
+        calibrate_session(1000.0 + rng.normal(0, 10, (3, 3000)), 30.0)

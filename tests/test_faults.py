@@ -5,7 +5,7 @@ the results), that every input file has the same SHA-256 before and after, and t
 that passes for a finished output. The interruption cases (kill -9, Ctrl-C, a full disk under the workers,
 two writers at once) are in tests/test_pipeline_run.py and tests/test_pipeline_store.py.
 
-Cases by outcome (42 test items)
+Cases by outcome (46 test items here; the API's own refusals of bad values are in the tests of each module)
 --------------------------------
 refused before anything is written, exit 1, one line naming the output and the input (18):
     run: output.folder "." with electrical_spikes = "spikes.csv" in it; a traces CSV named spikes.csv in the
@@ -32,6 +32,9 @@ flagged, the run completes, exit 0 (1): an all-zero ROI and a dim ROI (F0 exactl
 one line naming the ROIs, exit 1; with the remedy it names, exit 0 (1): dff of those ROIs.
 works, exit 0 (2): a run with worker processes beside a folder named calcium; --overwrite replacing the
     outputs of an earlier run (the control of the refusals).
+garbage refused, one line naming the flag to change, nothing written (3): raw fluorescence given to infer
+    (--allow-raw); a decay without a spike size (--amplitude); the frame period given as the frame rate.
+garbage analysed when the user insists, every ROI flagged (1): infer --allow-raw on raw fluorescence.
 """
 import hashlib
 import os
@@ -467,3 +470,41 @@ def test_overwrite_still_replaces_the_outputs_of_an_earlier_run(session):
     assert main(["run", str(changed), "--quiet"]) == 1  # another run's results: refused without --overwrite
     assert main(["run", str(changed), "--overwrite", "--quiet"]) == 0
     assert _sha(session / "results.h5") != first and _sha(session / "traces.h5") == inputs
+
+
+# ---------------------------------------------------------------------------
+# garbage in: refused with the flag that lets the user insist, or flagged in the output
+# ---------------------------------------------------------------------------
+GARBAGE = [
+    # raw fluorescence given to infer (the 10th percentile of ΔF/F is near 0 at rest: Grienberger & Konnerth
+    # 2012; raw counts sit far above 1)
+    (["infer", "traces.h5", "--out", "spikes.h5", "--workers", "1"], "looks like raw fluorescence", "--allow-raw"),
+    # a decay without a spike size: refused, not completed with an invented 1.0
+    (["predict", "ephys.csv", "--frame-rate", "20", "--decay-s", "0.5", "--out", "p.npy"], "--amplitude", None),
+    # the frame period given as the frame rate
+    (["noise", "noise.npy", "--frame-rate", "0.0333"], "frame period", None),
+]
+
+
+@pytest.mark.parametrize("argv, fragment, remedy", GARBAGE, ids=["raw to infer", "decay without size",
+                                                                 "period as rate"])
+def test_garbage_is_refused_naming_what_to_change_and_nothing_is_written(session, argv, fragment, remedy, capsys):
+    np.save(session / "noise.npy", np.random.default_rng(0).normal(0.0, 0.05, (3, 400)))
+    before = _files(session)
+    code = main(argv + ["--quiet"])
+    err = capsys.readouterr().err
+    assert code in (1, 2) and fragment in err and len(err.strip().splitlines()) == 1, err
+    if remedy is not None:
+        assert remedy in err and "allow_raw" not in err  # the CLI names its flag, not the API keyword
+    assert _files(session) == before
+
+
+def test_raw_fluorescence_with_allow_raw_is_analysed_and_every_roi_flagged(session):
+    from calcium.io import read_hdf5
+
+    before = _sha(session / "traces.h5")
+    assert main(["infer", "traces.h5", "--out", "spikes.h5", "--workers", "1", "--allow-raw", "--quiet"]) == 0
+    data, _ = read_hdf5(session / "spikes.h5")
+    assert np.all(data["quality_flags"] & 64)  # 64: uncalibrated counts
+    assert all("raw fluorescence" in text for text in data["flags"])
+    assert _sha(session / "traces.h5") == before

@@ -550,7 +550,7 @@ def read_hdf5(path) -> tuple[dict, dict]:
             def collect(name, node):
                 if isinstance(node, h5py.Dataset):
                     if h5py.check_string_dtype(node.dtype) is not None:
-                        datasets[name] = np.asarray(node.asstr()[()], dtype=str)
+                        datasets[name] = np.asarray(node.asstr("utf-8")[()], dtype=str)
                     else:
                         datasets[name] = node[()]
 

@@ -350,6 +350,19 @@ def _with_calibration(source, params, store, *, how, electrical, indicator, kern
     return dataclasses.replace(params, calibration=cal)
 
 
+def _check_dff_sample(source, allow_raw: bool) -> None:
+    """Refuse (unless ``allow_raw``) a ΔF/F file whose ROIs look like raw fluorescence, on a sample of ROIs
+    spread over the file, before anything is written."""
+    from .._checks import check_dff_like
+
+    for roi in stages.calibration_rois(source.n_rois, 200):
+        row = source.read_rows(int(roi), int(roi) + 1)[0]
+        if not np.isfinite(row).any():
+            continue
+        check_dff_like(row, f"ROI {int(roi)} of the ΔF/F file", allow_raw=allow_raw,
+                       remedy="pass allow_raw=True")
+
+
 def _infer_calibration(calibration, kernel, indicator):
     """(how, calibration file or None, size given) of infer_file's ``calibration`` argument."""
     from ..calibrate import SessionCalibration
@@ -786,7 +799,7 @@ def write_spike_table_from_results(results_path, path, *, parts=None) -> Path:
 # ---------------------------------------------------------------------------
 def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, dataset=None, workers=None,
                backend="processes", chunk_rois=0, overwrite=False, progress=True, calibration="session",
-               max_calibration_rois=200) -> RunSummary:
+               max_calibration_rois=200, allow_raw=False) -> RunSummary:
     """Infer spikes for every ROI of a ΔF/F file on all cores; resumable results file and spike table.
 
     The per-ROI stages of :func:`run_pipeline` without ΔF/F (the input
@@ -824,6 +837,12 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     max_calibration_rois : int, default 200
         The session's kinetics and its distribution of sizes are learned on
         at most this many ROIs (see ``[calibration] max_rois``).
+    allow_raw : bool, default False
+        A file whose ROIs look like raw fluorescence rather than ΔF/F
+        (:func:`calcium._checks.check_dff_like`, checked on up to 200 ROIs
+        spread over the file before anything is written) is refused; with
+        True it is analysed, and every ROI that looks raw is flagged
+        "uncalibrated counts".
     dataset : str, optional
         HDF5 dataset (default: ``traces``, else the only 1-D/2-D one).
     workers : int, optional
@@ -879,12 +898,13 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
     sha = file_sha256(path)
     source, found = _trace_source(path, dataset, work, sha, "the ΔF/F file")
     rate = _pick_frame_rate(frame_rate, found, path, "frame_rate")
+    _check_dff_sample(source, allow_raw)
     inference = {}
     if kernel is not None:
         inference["kernel"] = kernel
     elif indicator is not None:
         inference["indicator"] = indicator
-    params = stages.StageParams(frame_rate=rate, dff=None, inference=inference)
+    params = stages.StageParams(frame_rate=rate, dff=None, inference=inference, check_dff=True)
     chunk_rois = min(chunk_rois or stages.auto_chunk_rois(source.n_rois, source.n_frames), source.n_rois)
     bounds = stages.chunk_bounds(source.n_rois, chunk_rois)
     parameters = {"infer_file": {"kernel": repr(kernel), "indicator": indicator, "dataset": source.dataset,

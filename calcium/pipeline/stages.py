@@ -268,6 +268,10 @@ class StageParams:
     uncalibrated : str
         When not "": why no calibration could be made; every ROI's counts
         are flagged as uncalibrated with this reason.
+    check_dff : bool
+        The input is ΔF/F given by the user: a ROI that looks like raw
+        fluorescence (:func:`calcium._checks.check_dff_like`) is flagged
+        "uncalibrated counts".
     """
 
     frame_rate: float
@@ -281,6 +285,7 @@ class StageParams:
     keep_f0: bool = True
     calibration: object = None
     uncalibrated: str = ""
+    check_dff: bool = False
 
 
 @dataclass(frozen=True)
@@ -685,6 +690,12 @@ def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, 
     elif params.uncalibrated:
         flags[i] |= FLAG_UNCALIBRATED
         reasons[i].append("uncalibrated counts: " + params.uncalibrated)
+    if params.check_dff:
+        from .._checks import check_dff_like
+
+        if check_dff_like(trace, "ΔF/F", allow_raw=True).any():
+            flags[i] |= FLAG_UNCALIBRATED
+            reasons[i].append("uncalibrated counts: the values look like raw fluorescence, not ΔF/F")
     counts = np.asarray(result.spike_counts, dtype=np.int64)
     out["activity"][i] = result.activity
     out["denoised"][i] = result.denoised
