@@ -37,6 +37,22 @@ def _check_band(band_hz, frame_rate: float) -> tuple[float, float]:
     return low, high
 
 
+def _check_exclude(exclude_hz) -> tuple[tuple[float, float], ...]:
+    """``exclude_hz`` as a tuple of (low, high) pairs in Hz (empty for None)."""
+    if exclude_hz is None:
+        return ()
+    try:
+        pairs = tuple((float(low), float(high)) for low, high in exclude_hz)
+    except (TypeError, ValueError):
+        raise ValueError(f"exclude_hz must be None or a sequence of (low, high) pairs of frequencies in Hz, such as "
+                         f"[(4.8, 5.2)]; got {exclude_hz!r}") from None
+    for low, high in pairs:
+        if not (math.isfinite(low) and math.isfinite(high) and 0.0 <= low < high):
+            raise ValueError(f"exclude_hz holds ({low:g}, {high:g}); each band must be (low, high) with "
+                             f"0 <= low < high, finite, in Hz")
+    return pairs
+
+
 def _segments(n: int, nperseg: int) -> int:
     """Number of Welch segments scipy uses (half-overlapping, trailing partial dropped)."""
     step = nperseg - nperseg // 2
@@ -86,15 +102,19 @@ def _band_average(psd: np.ndarray, average: str, dof: np.ndarray) -> np.ndarray:
     return np.exp(log_mean - (scipy.special.digamma(dof / 2.0) - np.log(dof / 2.0)))
 
 
-def _band_bins(freq: np.ndarray, band: tuple[float, float], frame_rate: float, nperseg: int) -> np.ndarray:
+def _band_bins(freq: np.ndarray, band: tuple[float, float], frame_rate: float, nperseg: int,
+               exclude: tuple = ()) -> np.ndarray:
     nyquist = frame_rate / 2.0
     # DC and Nyquist are left out: scipy does not double them in a one-sided
     # density, so their expected level is half that of the other bins.
     keep = (freq >= band[0]) & (freq <= band[1]) & (freq > 0) & (freq < nyquist)
+    for low, high in exclude:  # narrow peaks (periodic artefacts) are not flat noise
+        keep &= ~((freq >= low) & (freq <= high))
     if not keep.any():
-        raise ValueError(f"band_hz {band} holds no frequency of the spectrum (resolution "
+        left = f" once exclude_hz {list(exclude)} is left out" if exclude else ""
+        raise ValueError(f"band_hz {band} holds no frequency of the spectrum{left} (resolution "
                          f"{frame_rate / nperseg:.4g} Hz with {nperseg}-frame segments, DC and Nyquist "
-                         f"excluded); widen the band")
+                         f"excluded); widen the band" + (" or exclude less" if exclude else ""))
     return keep
 
 
@@ -181,7 +201,7 @@ def _density_scale(frame_rate: float, nperseg: int) -> float:
     return 2.0 / (frame_rate * np.sum(_hann(nperseg) ** 2))
 
 
-def _noise_with_gaps(row: np.ndarray, frame_rate: float, band, average: str, roi: str) -> float:
+def _noise_with_gaps(row: np.ndarray, frame_rate: float, band, average: str, roi: str, exclude: tuple = ()) -> float:
     """Welch spectrum over the finite stretches of one trace, with segments as long as they allow.
 
     For traces whose gaps leave no whole 256-frame segment.
@@ -204,12 +224,12 @@ def _noise_with_gaps(row: np.ndarray, frame_rate: float, band, average: str, roi
         total = psd * k if total is None else total + psd * k
         count += k
         dof += _welch_dof(k, nperseg)
-    keep = _band_bins(freq, band, frame_rate, nperseg)
+    keep = _band_bins(freq, band, frame_rate, nperseg, exclude)
     level = _band_average((total / count)[keep], average, np.asarray(dof))
     return float(level)
 
 
-def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
+def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean", exclude_hz=None):
     """Standard deviation of the white-noise part of trace(s), from the power spectrum.
 
     Parameters
@@ -226,6 +246,11 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
         arithmetic mean, the median, or exp(mean(log PSD)) (geometric mean).
         'median' and 'logmeanexp' resist narrow peaks in the band; both are
         corrected for their bias (see Notes).
+    exclude_hz : sequence of (float, float), optional
+        Frequency bands (Hz) left out of ``band_hz``: narrow spectral peaks
+        such as the shared rhythms found by
+        :func:`calcium.signal.rhythms.find_rhythms` (a periodic artefact is
+        not flat noise and would inflate the estimate).
 
     Returns
     -------
@@ -268,7 +293,8 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
     understates ν where segments were dropped.
 
     Any signal power in the band (fast transients, coloured noise) adds to
-    the estimate; choose ``band_hz`` above the frequencies of the signal.
+    the estimate; choose ``band_hz`` above the frequencies of the signal,
+    and leave narrow peaks out with ``exclude_hz``.
 
     References
     ----------
@@ -294,6 +320,7 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
     frame_rate = check_frame_rate(frame_rate)
     check_choice(average, "average", AVERAGES)
     band = _check_band(band_hz, frame_rate)
+    exclude = _check_exclude(exclude_hz)
     x = as_traces(trace, "trace")
     n = x.shape[-1]
     if n < MIN_FRAMES:
@@ -304,7 +331,7 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
     holes = missing.mask.reshape(-1, n)
     sd = np.empty(rows.shape[0])
     nperseg = min(_SEGMENT, n)
-    keep = _band_bins(np.fft.rfftfreq(nperseg, 1.0 / frame_rate), band, frame_rate, nperseg)
+    keep = _band_bins(np.fft.rfftfreq(nperseg, 1.0 / frame_rate), band, frame_rate, nperseg, exclude)
     # One vectorised Welch over all segments of a row (a per-segment FFT loop, as a 1-D scipy.signal.welch
     # call makes, costs more than the transform itself). Row by row: a row's estimate is then the same
     # whichever rows share the call (a transform batched over several rows can differ in the last bit), its
@@ -318,12 +345,12 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean"):
         gappy = np.flatnonzero(missing.per_roi)
         for i in gappy[np.isnan(sd[gappy])]:
             roi = "the trace" if x.ndim == 1 else f"ROI {i}"
-            sd[i] = _noise_with_gaps(rows[i], frame_rate, band, average, roi)
+            sd[i] = _noise_with_gaps(rows[i], frame_rate, band, average, roi, exclude)
         sd = np.sqrt(sd * frame_rate / 2.0)
     # Power is the square of the values: beyond about 1e154 it overflows (inf), below about 1e-154 it underflows
     # and loses digits. Such rows are estimated again scaled by a power of two, which is exact, and scaled back.
     for i in np.flatnonzero(~(np.isfinite(sd) & (sd > _SMALLEST_SD))):
-        sd[i] = _rescaled_estimate(rows[i], sd[i], frame_rate, band_hz, average)
+        sd[i] = _rescaled_estimate(rows[i], sd[i], frame_rate, band_hz, average, exclude_hz)
     return float(sd[0]) if x.ndim == 1 else sd
 
 
@@ -334,7 +361,8 @@ _SMALLEST_SD = 1e-150
 _SAFE_EXPONENT = 480
 
 
-def _rescaled_estimate(row: np.ndarray, sd: float, frame_rate: float, band_hz, average: str) -> float:
+def _rescaled_estimate(row: np.ndarray, sd: float, frame_rate: float, band_hz, average: str,
+                       exclude_hz=None) -> float:
     """Noise s.d. of a row of extreme magnitude, computed on the row scaled by a power of two (exact) and scaled
     back; ``sd`` (the plain estimate) is kept for rows of ordinary magnitude (a constant row: no noise)."""
     finite = np.abs(row[np.isfinite(row)])
@@ -344,5 +372,6 @@ def _rescaled_estimate(row: np.ndarray, sd: float, frame_rate: float, band_hz, a
     exponent = int(np.frexp(largest)[1])  # largest = m 2**exponent with m in [0.5, 1)
     if abs(exponent) <= _SAFE_EXPONENT:
         return float(sd)
-    scaled = estimate_noise(np.ldexp(row, -exponent), frame_rate, band_hz=band_hz, average=average)
+    scaled = estimate_noise(np.ldexp(row, -exponent), frame_rate, band_hz=band_hz, average=average,
+                            exclude_hz=exclude_hz)
     return float(np.ldexp(scaled, exponent))
