@@ -92,7 +92,7 @@ MAX_SPIKES_PER_FRAME = 5
 #: the truth with the true single-spike size).
 MIN_REST_FRACTION = 0.1
 _LEVEL = 0.9
-_PRIOR_GRID_POINTS = 24  # grid of a ROI's size within 4 s.d. of the session's prior (steps of a third of an s.d.)
+_PRIOR_GRID_POINTS = 17  # grid of a ROI's size within 4 s.d. of the session's prior (steps of half an s.d.)
 
 
 @dataclass(frozen=True)

@@ -799,7 +799,7 @@ def write_spike_table_from_results(results_path, path, *, parts=None) -> Path:
 # ---------------------------------------------------------------------------
 def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, dataset=None, workers=None,
                backend="processes", chunk_rois=0, overwrite=False, progress=True, calibration="session",
-               max_calibration_rois=200, allow_raw=False) -> RunSummary:
+               max_calibration_rois=64, allow_raw=False) -> RunSummary:
     """Infer spikes for every ROI of a ΔF/F file on all cores; resumable results file and spike table.
 
     The per-ROI stages of :func:`run_pipeline` without ΔF/F (the input
@@ -834,7 +834,7 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
         each ROI alone, without calibration (counts often off by 2x, and
         not flagged); a path: a calibration file (``.json``, written by
         ``calcium calibrate`` or :meth:`SessionCalibration.save`).
-    max_calibration_rois : int, default 200
+    max_calibration_rois : int, default 64
         The session's kinetics and its distribution of sizes are learned on
         at most this many ROIs (see ``[calibration] max_rois``).
     allow_raw : bool, default False

@@ -957,7 +957,7 @@ def calibration_signal(source: TraceSource, params: StageParams, rois: np.ndarra
 
 
 def session_calibration(source: TraceSource, params: StageParams, *, how: str, electrical=None, indicator=None,
-                        kernel=None, size_given=False, calibration_file=None, max_rois: int = 200, fit_options=None,
+                        kernel=None, size_given=False, calibration_file=None, max_rois: int = 64, fit_options=None,
                         progress=False):
     """The session calibration a run counts with (None for ``how = "per-roi"``).
 
