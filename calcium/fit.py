@@ -27,7 +27,7 @@ from .forward import summed_response
 from .indicators import IndicatorKinetics, get_indicator
 from .kernel import DECAY_RANGE_S, Kernel
 from .score import as_spike_times
-from .signal.noise import MIN_FRAMES as _NOISE_MIN_FRAMES, estimate_noise
+from .signal.noise import estimate_noise
 
 __all__ = [
     "KernelFit",

@@ -318,7 +318,7 @@ class ResultStore:
             ``overwrite``).
         """
         path = Path(path)
-        folder = check_output_folder(path.parent if str(path.parent) else Path("."))
+        check_output_folder(path.parent if str(path.parent) else Path("."))
         if path.exists():
             if path.is_dir():
                 raise OutputError(errno.EISDIR, f"cannot write {path}: it is a folder")
