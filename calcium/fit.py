@@ -21,12 +21,11 @@ from scipy.stats import norm, t as student_t
 from scipy.ndimage import maximum_filter1d
 from scipy.signal import correlate, correlation_lags
 
-from ._checks import (as_traces, check_choice, check_frame_rate, check_int, check_positive,
+from ._checks import (as_spike_times, as_traces, check_choice, check_frame_rate, check_int, check_positive,
                       require_some_data)
 from .forward import summed_response
 from .indicators import IndicatorKinetics, get_indicator
 from .kernel import DECAY_RANGE_S, Kernel
-from .score import as_spike_times
 from .signal.noise import estimate_noise
 
 __all__ = [

@@ -42,9 +42,9 @@ import numpy as np
 from numba import njit
 from scipy.signal import lfilter
 
-from ._checks import check_choice, check_frame_rate, check_int, check_memory, check_nonnegative, check_positive
+from ._checks import (check_choice, check_frame_rate, check_int, check_memory, check_nonnegative, check_positive,
+                      json_value)
 from .kernel import Kernel
-from .io.results import json_value
 
 __all__ = ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SPIKE_MODELS"]
 

@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
-from ._checks import check_positive
+from ._checks import as_spike_times, check_positive
 
 __all__ = [
     "SpikeScore",
@@ -38,57 +38,6 @@ DEFAULT_BIN_WIDTHS_S = (0.1, 0.2, 0.5, 1.0)
 # ---------------------------------------------------------------------------
 # input
 # ---------------------------------------------------------------------------
-def as_spike_times(times, name: str = "spike_times", *, warn_unsorted: bool = True,
-                   stacklevel: int = 3, nonnegative: bool = False) -> np.ndarray:
-    """Return spike times (seconds) as a sorted 1-D float64 array.
-
-    Parameters
-    ----------
-    times : array_like
-        Spike times in seconds. A repeated time means several spikes at once.
-    name : str
-        Argument name used in messages.
-    warn_unsorted : bool
-        Warn (``UserWarning``) when the times were not in ascending order; they
-        are sorted either way.
-    stacklevel : int
-        Passed to :func:`warnings.warn`.
-    nonnegative : bool
-        Refuse negative times (times counted from the first frame, as in a
-        spike table; see :func:`calcium.io.read_spike_times`).
-
-    Raises
-    ------
-    ValueError
-        If ``times`` is not one-dimensional, not numeric, or holds NaN or inf
-        (or, with ``nonnegative``, a negative time).
-    """
-    if times is None:
-        raise ValueError(f"{name} must be an array of spike times in seconds, got None")
-    try:
-        arr = np.asarray(times, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise ValueError(f"{name} must be a 1-D array of spike times in seconds: {exc}") from None
-    if arr.ndim == 0:
-        arr = arr.reshape(1)
-    if arr.ndim != 1:
-        raise ValueError(f"{name} must be a 1-D array of spike times in seconds, got shape {arr.shape}")
-    if not np.all(np.isfinite(arr)):
-        bad = np.flatnonzero(~np.isfinite(arr))
-        raise ValueError(f"{name} holds {bad.size} non-finite time(s) (NaN or inf), first at index {bad[0]}")
-    if nonnegative and arr.size and arr.min() < 0:
-        bad = np.flatnonzero(arr < 0)
-        raise ValueError(f"{name} holds {bad.size} negative time(s) (first {float(arr[bad[0]])!r} s at index "
-                         f"{bad[0]}): spike times are seconds from the first frame, as in a spike table; align "
-                         "the clocks first (add the clock lag) and leave out the spikes before the recording")
-    if arr.size > 1 and np.any(np.diff(arr) < 0):
-        if warn_unsorted:
-            warnings.warn(f"{name} were not in ascending order; sorted them", UserWarning,
-                          stacklevel=stacklevel)
-        arr = np.sort(arr, kind="stable")
-    return arr
-
-
 # ---------------------------------------------------------------------------
 # matching
 # ---------------------------------------------------------------------------

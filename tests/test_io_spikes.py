@@ -149,14 +149,14 @@ def test_fixed_decimal_times_read_back_within_half_a_unit(times, decimals):
        st.integers(0, 9))
 def test_compiled_spike_lines_match_the_plain_python_reference(lines, decimals):
     # Reference: the plain-Python formatter beside the compiled one (f-strings), on any whole numbers.
-    from calcium.io._spike_text import fixed_lines, fixed_lines_reference
+    from calcium.io.spike_text import fixed_lines, fixed_lines_reference
 
     rois, units, counts = (np.array([line[i] for line in lines], dtype=np.int64) for i in range(3))
     assert fixed_lines(rois, units, counts, decimals) == fixed_lines_reference(rois, units, counts, decimals)
 
 
 def test_compiled_spike_lines_refuse_bad_arrays():
-    from calcium.io._spike_text import fixed_lines
+    from calcium.io.spike_text import fixed_lines
 
     with pytest.raises(ValueError, match="equally long"):
         fixed_lines([0, 1], [5], [1, 1], 3)

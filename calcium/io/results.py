@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .._checks import CalciumInputError, OutputOverInputError
+from .._checks import CalciumInputError, OutputOverInputError, json_value
 
 __all__ = [
     "file_sha256",
@@ -416,17 +416,6 @@ def _attr_value(name, value):
         return json.dumps(value, default=_json_default), True
     except TypeError as exc:
         raise ValueError(f"attrs[{name!r}] cannot be stored in HDF5: {exc}") from None
-
-
-def json_value(value):
-    """``value`` with numpy scalars/arrays and paths turned into plain JSON types (other values unchanged)."""
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, os.PathLike):
-        return os.fspath(value)
-    return value
 
 
 def _json_default(value):

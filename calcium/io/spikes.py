@@ -193,7 +193,7 @@ def write_spike_table(path, spike_times, *, decimals=None, inputs=()) -> Path:
     """
     mapping = _as_mapping(spike_times)
     if decimals is not None:
-        from ._spike_text import MAX_DECIMALS
+        from .spike_text import MAX_DECIMALS
 
         if isinstance(decimals, bool) or not isinstance(decimals, (int, np.integer)) or \
                 not 0 <= decimals <= MAX_DECIMALS:
@@ -217,7 +217,7 @@ def write_spike_table(path, spike_times, *, decimals=None, inputs=()) -> Path:
             unique, counts = np.unique(times, return_counts=True)
             rows.extend((int(key), float(t), int(n)) for t, n in zip(unique, counts))
             continue
-        from ._spike_text import fixed_time_text, time_units
+        from .spike_text import fixed_time_text, time_units
 
         units, counts = np.unique(time_units(times, int(decimals)), return_counts=True)
         rows.extend((int(key), fixed_time_text(u, int(decimals)), int(n)) for u, n in zip(units.tolist(), counts))

@@ -577,7 +577,7 @@ def spike_table_text(first_roi: int, counts: np.ndarray, offsets_s: np.ndarray, 
     values are in the results file), as :func:`calcium.io.write_spike_table`
     writes them with that many ``decimals``.
     """
-    from ..io._spike_text import fixed_lines, time_units
+    from ..io.spike_text import fixed_lines, time_units
 
     # (np.nonzero on a 2-D uint16 array is ten times slower than on a flat boolean one)
     rows, frames = np.divmod(np.flatnonzero(counts != 0), counts.shape[1])

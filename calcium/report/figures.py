@@ -43,8 +43,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
 
-from .._checks import check_frame_rate, check_int, check_positive
-from ..score import as_spike_times
+from .._checks import as_spike_times, check_frame_rate, check_int, check_positive
 
 __all__ = [
     "PALETTE",
