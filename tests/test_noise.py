@@ -15,7 +15,7 @@ from calcium._checks import MissingDataError
 from calcium.signal import estimate_noise
 
 FRAME_RATE = 30.0
-AVERAGES = ("mean", "median", "logmeanexp")
+AVERAGES = ("arithmetic", "median", "geometric")
 
 
 @pytest.mark.parametrize("average", AVERAGES)
@@ -62,7 +62,7 @@ def test_median_and_log_averages_are_corrected_for_chi_square_bias():
     median = estimate_noise(x, FRAME_RATE, average="median")
     assert median.shape == (400,)
     assert np.mean(median ** 2) == pytest.approx(4.0, rel=0.03)
-    log_average = estimate_noise(x, FRAME_RATE, average="logmeanexp")
+    log_average = estimate_noise(x, FRAME_RATE, average="geometric")
     assert np.mean(np.log(log_average ** 2)) == pytest.approx(np.log(4.0), abs=0.03)
 
 
@@ -71,7 +71,7 @@ def test_median_resists_a_strong_tone_in_the_band_while_the_mean_does_not():
     rng = np.random.default_rng(12)
     t = np.arange(20_000) / FRAME_RATE
     y = rng.normal(0.0, 1.0, t.size) + 3.0 * np.sin(2 * np.pi * 11.0 * t)
-    assert estimate_noise(y, FRAME_RATE, average="mean") > 1.3
+    assert estimate_noise(y, FRAME_RATE, average="arithmetic") > 1.3
     assert estimate_noise(y, FRAME_RATE, average="median") == pytest.approx(1.0, rel=0.05)
 
 
@@ -212,3 +212,11 @@ def test_values_of_extreme_magnitude_give_the_scaled_estimate_not_inf_or_zero(sc
         scaled = estimate_noise(x * scale, FRAME_RATE)
     assert np.isfinite(scaled).all() and (scaled > 0).all()
     np.testing.assert_allclose(scaled / scale, base, rtol=1e-9)
+
+
+@pytest.mark.parametrize("old, new", [("mean", "arithmetic"), ("logmeanexp", "geometric")])
+def test_former_names_of_the_averages_still_work_with_a_deprecation_warning(old, new):
+    x = np.random.default_rng(3).normal(0.0, 1.0, 4000)
+    with pytest.warns(DeprecationWarning, match=new):
+        value = estimate_noise(x, FRAME_RATE, average=old)
+    assert value == estimate_noise(x, FRAME_RATE, average=new)

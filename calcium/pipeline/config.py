@@ -318,8 +318,10 @@ class NoiseConfig:
     band_hz: tuple | None = _key(None, _NumberList(_Number(gt=0), min_len=2, max_len=2, scalar_ok=False),
                                  "Optional: the band [low, high] in Hz taken as flat noise (default: a quarter "
                                  "to half the frame rate).", example=[7.5, 15.0])
-    average: str = _key("mean", _Choice("mean", "median", "logmeanexp"),
-                        "How the spectrum is averaged over the band (median and logmeanexp resist narrow peaks).")
+    average: str = _key("arithmetic", _Choice("arithmetic", "median", "geometric", "mean", "logmeanexp"),
+                        "How the spectrum is averaged over the band: arithmetic, median or geometric mean (median "
+                        "and geometric resist narrow peaks; 'mean' and 'logmeanexp' are their former names, "
+                        "accepted for one release).")
 
 
 @dataclass(frozen=True)

@@ -259,7 +259,9 @@ def _stage_params(config: RunConfig, frame_rate: float, n_frames: int) -> stages
         if n_frames < filt.min_frames():
             raise ConfigError(f"[filter] needs at least {filt.min_frames()} frames, the recording has {n_frames}; "
                               f"lower filter.order or set filter.kind = \"none\"")
-    noise = {"average": config.noise.average}
+    from ..signal.noise import average_name
+
+    noise = {"average": average_name(config.noise.average)}  # (a former name warns once, here)
     if config.noise.band_hz is not None:
         noise["band_hz"] = tuple(config.noise.band_hz)
         if config.noise.band_hz[1] > frame_rate / 2:

@@ -15,11 +15,25 @@ import scipy  # scipy loads its submodules on first use: the per-ROI path needs 
 from .._checks import as_traces, check_choice, check_frame_rate, require_some_data
 from ._missing import finite_runs
 
-__all__ = ["estimate_noise", "MIN_FRAMES"]
+__all__ = ["estimate_noise", "average_name", "MIN_FRAMES", "AVERAGES"]
 
 MIN_FRAMES = 16          # shortest trace (or finite stretch) with a usable spectrum
 _SEGMENT = 256           # Welch segment length (frames), shorter traces use their length
-AVERAGES = ("mean", "median", "logmeanexp")
+AVERAGES = ("arithmetic", "median", "geometric")
+#: Former names of the averages, accepted for one release with a DeprecationWarning.
+_OLD_AVERAGES = {"mean": "arithmetic", "logmeanexp": "geometric"}
+
+
+def average_name(average) -> str:
+    """The average's name, the former names mapped to the current ones (with a DeprecationWarning)."""
+    if isinstance(average, str) and average in _OLD_AVERAGES:
+        import warnings
+
+        new = _OLD_AVERAGES[average]
+        warnings.warn(f"average={average!r} is the former name of average={new!r}; it will be removed in a "
+                      f"later release", DeprecationWarning, stacklevel=3)
+        return new
+    return check_choice(average, "average", AVERAGES)
 
 
 def _check_band(band_hz, frame_rate: float) -> tuple[float, float]:
@@ -90,13 +104,13 @@ def _welch_dof(n_segments: int, nperseg: int) -> float:
 
 def _band_average(psd: np.ndarray, average: str, dof: np.ndarray) -> np.ndarray:
     """Average PSD values over the band (last axis), corrected to estimate their mean."""
-    if average == "mean":
+    if average == "arithmetic":
         return psd.mean(axis=-1)
     if average == "median":
         # Each Welch value is ~ (mean level) · χ²_ν / ν; the median of χ²_ν / ν is below 1.
         # (the median of χ²_ν is 2 P⁻¹(ν/2, 1/2), P the regularised lower incomplete gamma function)
         return np.median(psd, axis=-1) / (2.0 * scipy.special.gammaincinv(dof / 2.0, 0.5) / dof)
-    # logmeanexp: exp(mean(log PSD)); E[log(χ²_ν / ν)] = ψ(ν/2) − log(ν/2).
+    # geometric: exp(mean(log PSD)); E[log(χ²_ν / ν)] = ψ(ν/2) − log(ν/2).
     with np.errstate(divide="ignore"):
         log_mean = np.log(psd).mean(axis=-1)
     return np.exp(log_mean - (scipy.special.digamma(dof / 2.0) - np.log(dof / 2.0)))
@@ -229,7 +243,7 @@ def _noise_with_gaps(row: np.ndarray, frame_rate: float, band, average: str, roi
     return float(level)
 
 
-def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean", exclude_hz=None):
+def estimate_noise(trace, frame_rate, *, band_hz=None, average="arithmetic", exclude_hz=None):
     """Standard deviation of the white-noise part of trace(s), from the power spectrum.
 
     Parameters
@@ -240,12 +254,15 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean", exclude_h
         Frames per second (Hz).
     band_hz : (float, float), optional
         Frequency band (Hz) where the spectrum is taken to be flat noise;
-        default ``(frame_rate / 4, frame_rate / 2)``.
-    average : {'mean', 'median', 'logmeanexp'}, optional
+        default ``(frame_rate / 4, frame_rate / 2)``, the upper half of the
+        spectrum, where calcium transients (slower than a few Hz) leave only
+        the noise (Pnevmatikakis et al. 2016).
+    average : {'arithmetic', 'median', 'geometric'}, optional
         How the power spectral density is averaged over the band: the
-        arithmetic mean, the median, or exp(mean(log PSD)) (geometric mean).
-        'median' and 'logmeanexp' resist narrow peaks in the band; both are
-        corrected for their bias (see Notes).
+        arithmetic mean, the median, or the geometric mean
+        (exp(mean(log PSD))). 'median' and 'geometric' resist narrow peaks
+        in the band; both are corrected for their bias (see Notes). The
+        former names 'mean' and 'logmeanexp' are accepted for one release.
     exclude_hz : sequence of (float, float), optional
         Frequency bands (Hz) left out of ``band_hz``: narrow spectral peaks
         such as the shared rhythms found by
@@ -280,7 +297,7 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean", exclude_h
     doubled). Each Welch value is distributed approximately as
     (mean level)·χ²_ν/ν, with ν the equivalent degrees of freedom of the
     Welch average (Percival & Walden 1993, eq. 292b). The 'median' is
-    divided by median(χ²_ν)/ν, and 'logmeanexp' by exp(ψ(ν/2) − log(ν/2)),
+    divided by median(χ²_ν)/ν, and the 'geometric' mean by exp(ψ(ν/2) − log(ν/2)),
     the bias of the mean of a log χ²_ν/ν variable, so that all three
     averages estimate the same level.
 
@@ -318,7 +335,7 @@ def estimate_noise(trace, frame_rate, *, band_hz=None, average="mean", exclude_h
     2.0
     """
     frame_rate = check_frame_rate(frame_rate)
-    check_choice(average, "average", AVERAGES)
+    average = average_name(average)
     band = _check_band(band_hz, frame_rate)
     exclude = _check_exclude(exclude_hz)
     x = as_traces(trace, "trace")
