@@ -489,3 +489,18 @@ def json_value(value):
     if isinstance(value, os.PathLike):
         return os.fspath(value)
     return value
+
+
+_UNSET = object()
+
+
+def renamed_argument(old_name: str, old_value, new_name: str, new_value, *, stacklevel: int = 3):
+    """The value of an argument that was renamed: ``new_value``, or ``old_value`` (with a DeprecationWarning)
+    when only the former name was given; both given is a ValueError. ``_UNSET`` marks "not given"."""
+    if old_value is _UNSET:
+        return new_value
+    if new_value is not _UNSET:
+        raise ValueError(f"give {new_name}= only ({old_name}= is its former name), not both")
+    warnings.warn(f"{old_name}= is the former name of {new_name}=; it will be removed in a later release",
+                  DeprecationWarning, stacklevel=stacklevel)
+    return old_value

@@ -92,7 +92,7 @@ MAX_SPIKES_PER_FRAME = 5
 #: the truth with the true single-spike size).
 MIN_REST_FRACTION = 0.1
 _LEVEL = 0.9
-_PRIOR_GRID_POINTS = 17  # grid of a ROI's size within 4 s.d. of the session's prior (steps of half an s.d.)
+_PRIOR_GRID_POINTS = 33  # grid of a ROI's size within 4 s.d. of the session's prior (steps of a quarter s.d.)
 
 
 @dataclass(frozen=True)
@@ -800,7 +800,7 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
     if electrical:
         options = {"n_bootstrap": 0}
         if row is not None:
-            options["initial"] = row.name
+            options["kernel"] = row.name
         options.update(fit_options or {})
         paired_fits, fit_notes = _paired_kinetics(rows, frame_rate, electrical, options, progress)
         notes.extend(fit_notes)
@@ -857,7 +857,12 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
     size_z = np.full(n, math.nan)
     for i in range(n):
         if i not in paired:  # (paired sizes come from their own fits, below)
-            size[i], low[i], high[i], size_z[i], reasons[i] = _roi_size(fits[i], prior, indicator_size)
+            # each size as count_roi finds it under the prior (the same grid): a calibration of these ROIs and
+            # a count of any of them with this calibration's prior agree
+            fit = fits[i]
+            if fit is not None and unit_results[i] is not None and np.isfinite(prior[0]):
+                fit = _quantal_fit(unit_results[i], frame_rate, shape, prior)
+            size[i], low[i], high[i], size_z[i], reasons[i] = _roi_size(fit, prior, indicator_size)
             calibrated[i] = reasons[i] == ""
     for roi in paired:
         size[roi], low[roi], high[roi] = _paired_size(rows[roi], frame_rate, electrical[roi], paired_fits[roi], shape)

@@ -84,6 +84,24 @@ _FLAG_OF_KEYWORD = (("pass orientation_check=False to read_traces", "pass --wide
                     ("time_column=", "--time-column "), ("pass allow_raw=True", "pass --allow-raw"))
 
 
+class _FormerFlag(argparse.Action):
+    """A flag's former name: stores the value under the new name and says so on stderr (kept for one release)."""
+
+    def __init__(self, option_strings, dest, new_flag, **kwargs):
+        self.new_flag = new_flag
+        super().__init__(option_strings, dest, **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        print(f"calcium: {option_string} is the former name of {self.new_flag}; it will be removed in a later "
+              f"release", file=sys.stderr)
+        setattr(namespace, self.dest, values)
+
+
+def _former(p, old: str, new: str, dest: str, **kwargs) -> None:
+    """Accept ``old`` as a hidden former name of the flag ``new`` (same destination)."""
+    p.add_argument(old, dest=dest, action=_FormerFlag, new_flag=new, help=argparse.SUPPRESS, **kwargs)
+
+
 def _cli_words(message: str) -> str:
     for keyword, flag in _FLAG_OF_KEYWORD:
         message = message.replace(keyword, flag)
@@ -118,25 +136,25 @@ def _frame_rate(args, data) -> float:
 
 
 def _kernel_from_args(args, *, required: bool = True, size_needed: bool = True):
-    """A Kernel from --indicator or --rise-s/--decay-s/--amplitude (None if neither and not required).
+    """A Kernel from --indicator or --rise-s/--decay-s/--spike-size (None if neither and not required).
 
     ``size_needed``: the command uses the kernel's amplitude as the ΔF/F of one spike, so --decay-s without
-    --amplitude is refused rather than completed with an invented 1.0 (``infer`` estimates the size instead).
+    --spike-size is refused rather than completed with an invented 1.0 (``infer`` estimates the size instead).
     """
     from calcium.kernel import Kernel
     if getattr(args, "indicator", None):
         if args.rise_s is not None or args.decay_s is not None:
             raise UsageError("give either --indicator or --rise-s/--decay-s, not both")
         kernel = Kernel.from_indicator(args.indicator)
-        if args.amplitude is not None:
-            kernel = kernel.scaled(args.amplitude)
+        if args.spike_size is not None:
+            kernel = kernel.scaled(args.spike_size)
         return kernel
     if args.decay_s is not None:
-        if args.amplitude is None and size_needed:
-            raise UsageError("--decay-s was given without --amplitude (the peak ΔF/F of one spike); give "
-                             "--amplitude, or --indicator NAME to take the published kinetics and size")
+        if args.spike_size is None and size_needed:
+            raise UsageError("--decay-s was given without --spike-size (the peak ΔF/F of one spike); give "
+                             "--spike-size, or --indicator NAME to take the published kinetics and size")
         return Kernel(rise_s=args.rise_s or 0.0, decay_s=args.decay_s,
-                      amplitude=args.amplitude if args.amplitude is not None else 1.0)
+                      amplitude=args.spike_size if args.spike_size is not None else 1.0)
     if args.rise_s is not None:
         raise UsageError("--rise-s needs --decay-s")
     if required:
@@ -167,7 +185,8 @@ def _add_kernel_options(p, *, help_suffix=""):
     g.add_argument("--indicator", help="indicator name from `calcium indicators` (e.g. GCaMP6s)")
     g.add_argument("--rise-s", type=_finite, help="rise time constant in seconds (0 = instantaneous)")
     g.add_argument("--decay-s", type=_finite, help="decay time constant in seconds")
-    g.add_argument("--amplitude", type=_finite, help="peak ΔF/F of one spike")
+    g.add_argument("--spike-size", type=_finite, help="ΔF/F (peak) of one spike")
+    _former(g, "--amplitude", "--spike-size", "spike_size", type=_finite)
 
 
 # --------------------------------------------------------------------------- commands
@@ -200,11 +219,11 @@ def cmd_extract(args):
             factor = float(factor)
         except ValueError:
             raise UsageError(f"--neuropil-factor must be a number or 'estimate', got {factor!r}") from None
-    result = extract_traces(movie, masks, neuropil_gap_px=args.gap_px, neuropil_radius_px=args.radius_px,
+    result = extract_traces(movie, masks, neuropil_gap_px=args.neuropil_gap_px, neuropil_radius_px=args.radius_px,
                             neuropil_factor=factor, chunk_frames=args.chunk_frames, progress=_progress(args))
     from calcium.io import write_hdf5, write_traces
     if out.suffix.lower() in (".h5", ".hdf5"):
-        attrs = {"neuropil_gap_px": args.gap_px, "neuropil_radius_px": args.radius_px,
+        attrs = {"neuropil_gap_px": args.neuropil_gap_px, "neuropil_radius_px": args.radius_px,
                  "neuropil_factor_setting": str(args.neuropil_factor)}
         if args.frame_rate:
             attrs["frame_rate"] = args.frame_rate
@@ -362,9 +381,9 @@ def cmd_infer(args):
     if args.frame_rate is not None and args.frame_rate <= 0:
         raise UsageError(f"--frame-rate must be positive, got {args.frame_rate}")
     calibration = args.calibration
-    if args.amplitude is not None:  # a spike size given by hand: counted as it is
+    if args.spike_size is not None:  # a spike size given by hand: counted as it is
         if calibration != "session":
-            raise UsageError("--amplitude fixes the single-spike size: it does not go with --calibration")
+            raise UsageError("--spike-size fixes the single-spike size: it does not go with --calibration")
         calibration = "given"
     indicator = None
     if kernel is not None and args.indicator and calibration != "given":
@@ -459,8 +478,8 @@ def cmd_fit_kernel(args):
         table, figure, calibration = _output_folder(args, "kernel_fit.csv", "kernel_fit.png", "calibration.json",
                                                     inputs={"TRACE": args.trace, "SPIKES": args.spikes})
     try:
-        fit = fit_kernel(data.traces[roi], times, rate, model=args.model, initial=args.indicator,
-                         max_lag_s=args.max_lag_s, n_bootstrap=args.bootstrap, seed=args.seed)
+        fit = fit_kernel(data.traces[roi], times, rate, model=args.model, kernel=args.indicator,
+                         max_lag_s=args.max_lag_s, n_bootstrap=args.n_bootstrap, seed=args.seed)
     except ValueError as exc:
         raise _fail(args.trace, exc) from exc
     print(fit)
@@ -509,14 +528,14 @@ def cmd_score(args):
 def cmd_plan(args):
     from calcium.plan import plan_detectability
     kernel = _kernel_from_args(args, required=False)
-    if args.noise_sd and args.photons:
-        raise UsageError("give either --noise-sd or --photons, not both")
+    if args.noise_sd and args.photons_per_frame:
+        raise UsageError("give either --noise-sd or --photons-per-frame, not both")
     if args.out:
         csv_path, png_path = _output_folder(args, "plan.csv", "plan.png")
     plan = plan_detectability(kernel=kernel, indicator=None if kernel is not None else (args.indicator or None),
                               frame_rates=tuple(args.frame_rates),
                               noise_sd=tuple(args.noise_sd) if args.noise_sd else None,
-                              photons_per_frame=tuple(args.photons) if args.photons else None,
+                              photons_per_frame=tuple(args.photons_per_frame) if args.photons_per_frame else None,
                               n_trials=args.trials, false_positive_rate=args.false_positive_rate, seed=args.seed)
     print(plan)
     if args.out:
@@ -623,7 +642,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("movie", help="TIFF movie (frames, height, width)")
     p.add_argument("masks", help="ROI masks: label image (0 = background) or boolean stack (.tif/.npy)")
     p.add_argument("--frame-rate", type=_positive, help="frames per second (Hz), stored with the traces")
-    p.add_argument("--gap-px", type=_finite, default=2.0, help="gap between ROI and neuropil ring (pixels)")
+    p.add_argument("--neuropil-gap-px", type=_finite, default=2.0,
+                   help="gap between ROI and neuropil ring, pixels (default 2)")
+    _former(p, "--gap-px", "--neuropil-gap-px", "neuropil_gap_px", type=_finite)
     p.add_argument("--radius-px", type=_finite, default=15.0, help="outer radius of the neuropil ring (pixels)")
     p.add_argument("--neuropil-factor", default="0.7", help="r in F - r*F_neuropil, or 'estimate' (per ROI)")
     p.add_argument("--chunk-frames", type=int, default=500, help="frames read at a time")
@@ -679,7 +700,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("infer", cmd_infer, "ΔF/F -> inferred spikes (exact non-negative deconvolution), counts calibrated "
                                 "across the file's ROIs, resumable")
     traces_input(p)
-    _add_kernel_options(p, help_suffix=" (default: learned from the file's ROIs; --amplitude counts with that "
+    _add_kernel_options(p, help_suffix=" (default: learned from the file's ROIs; --spike-size counts with that "
                                        "single-spike size as it is)")
     p.add_argument("--calibration", default="session", metavar="session|per-roi|FILE",
                    help="how the single-spike size of each ROI is found: 'session' (default) pools the kinetics "
@@ -713,7 +734,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--spike-roi", type=int, help="which ROI of the spike file (default: same as --roi)")
     p.add_argument("--indicator", help="indicator to start from and to check against")
     p.add_argument("--model", choices=["double-exponential", "free"], default="double-exponential")
-    p.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples for the intervals")
+    p.add_argument("--n-bootstrap", type=int, default=200,
+                   help="bootstrap refits for the intervals (default 200; 0: no intervals)")
+    _former(p, "--bootstrap", "--n-bootstrap", "n_bootstrap", type=int)
     p.add_argument("--max-lag-s", type=_positive, default=1.0, help="largest clock offset searched, in seconds")
     p.add_argument("--temperature-c", type=_finite, help="recording temperature, for the kinetics check")
     p.add_argument("--seed", type=int, default=0)
@@ -731,7 +754,9 @@ def build_parser() -> argparse.ArgumentParser:
     _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
     p.add_argument("--frame-rates", type=_positive, nargs="+", default=[7.5, 15.0, 30.0, 60.0])
     p.add_argument("--noise-sd", type=_finite, nargs="+", help="ΔF/F noise s.d. levels")
-    p.add_argument("--photons", type=_finite, nargs="+", help="photons per frame at baseline (instead of noise)")
+    p.add_argument("--photons-per-frame", type=_finite, nargs="+",
+                   help="photons per frame at baseline, one or more levels (instead of --noise-sd)")
+    _former(p, "--photons", "--photons-per-frame", "photons_per_frame", type=_finite, nargs="+")
     p.add_argument("--trials", type=int, default=200)
     p.add_argument("--false-positive-rate", type=_finite, default=0.01)
     p.add_argument("--seed", type=int, default=0)

@@ -21,8 +21,8 @@ from scipy.stats import norm, t as student_t
 from scipy.ndimage import maximum_filter1d
 from scipy.signal import correlate, correlation_lags
 
-from ._checks import (as_spike_times, as_traces, check_choice, check_frame_rate, check_int, check_positive,
-                      require_some_data)
+from ._checks import (_UNSET, as_spike_times, as_traces, check_choice, check_frame_rate, check_int, check_positive,
+                      renamed_argument, require_some_data)
 from .forward import summed_response
 from .indicators import IndicatorKinetics, get_indicator
 from .kernel import DECAY_RANGE_S, Kernel
@@ -452,7 +452,7 @@ def _start_kernel(initial):
         return initial, False
     if isinstance(initial, str):
         return Kernel.from_indicator(initial), False
-    raise ValueError(f"initial must be None, a Kernel or an indicator name, got {type(initial).__name__}")
+    raise ValueError(f"kernel must be None, a Kernel or an indicator name, got {type(initial).__name__}")
 
 
 def _check_spikes(spike_times_s, n_frames, frame_rate, max_lag_s):
@@ -541,9 +541,9 @@ def _burst_linearity(problem, kernel, lag, baseline, full_model, isolation_s, bu
     return tuple((n, len(v), float(np.mean(v))) for n, v in sorted(by_size.items()))
 
 
-def fit_kernel(dff, spike_times_s, frame_rate, *, model="double-exponential", initial=None, max_lag_s=1.0,
+def fit_kernel(dff, spike_times_s, frame_rate, *, model="double-exponential", kernel=_UNSET, max_lag_s=1.0,
                n_bootstrap=200, confidence=0.9, seed=0, isolation_s=None, min_isolated_spikes=3,
-               min_spikes=MIN_SPIKES, free_length_s=None, burst_window_s=0.05) -> KernelFit:
+               min_spikes=MIN_SPIKES, free_length_s=None, burst_window_s=0.05, initial=_UNSET) -> KernelFit:
     """Fit the single-spike ΔF/F response and the clock lag from known spike times.
 
     Parameters
@@ -558,7 +558,7 @@ def fit_kernel(dff, spike_times_s, frame_rate, *, model="double-exponential", in
     model : {"double-exponential", "free"}
         ``"free"`` additionally estimates a free-form impulse response; the
         double exponential is fitted beside it either way.
-    initial : None, Kernel or str
+    kernel : None, Kernel or str
         Starting kernel, or an indicator name (``calcium.indicators``). With
         None a broad grid of rise and decay times is searched first.
     max_lag_s : float
@@ -585,6 +585,9 @@ def fit_kernel(dff, spike_times_s, frame_rate, *, model="double-exponential", in
         fitted decay time constants.
     burst_window_s : float
         Spikes closer than this form one group in ``burst_linearity``.
+    initial : None, Kernel or str
+        Former name of ``kernel``, accepted for one release (with a
+        DeprecationWarning).
 
     Returns
     -------
@@ -711,7 +714,8 @@ def fit_kernel(dff, spike_times_s, frame_rate, *, model="double-exponential", in
         y = y[0]
     missing = require_some_data(y, "dff")
     finite = ~missing.mask
-    start, broad = _start_kernel(initial)
+    kernel = renamed_argument("initial", initial, "kernel", kernel, stacklevel=3)
+    start, broad = _start_kernel(None if kernel is _UNSET else kernel)
     if isolation_s is None:
         isolation_s = max(2.0 * start.half_decay_s, 0.2)
     isolation_s = check_positive(isolation_s, "isolation_s")

@@ -184,7 +184,7 @@ def test_fit_kernel_command_recovers_the_simulated_kinetics(tmp_path, capsys):
     trace, spikes = tmp_path / "dff.h5", tmp_path / "spikes.csv"
     write_traces(trace, sim.dff, frame_rate=30.0)
     write_spike_table(spikes, {0: sim.spike_times[0]})
-    assert main(["fit-kernel", str(trace), str(spikes), "--bootstrap", "0", "--out", str(tmp_path / "fit"),
+    assert main(["fit-kernel", str(trace), str(spikes), "--n-bootstrap", "0", "--out", str(tmp_path / "fit"),
                  "--quiet"]) == 0
     rows = {line.split(",")[0]: line.split(",")[1] for line in
             (tmp_path / "fit" / "kernel_fit.csv").read_text().splitlines()[1:]}
@@ -200,7 +200,7 @@ def test_fit_kernel_command_names_a_roi_without_spikes(tmp_path, capsys):
 
 
 def test_plan_command_refuses_two_noise_specifications(capsys):
-    assert main(["plan", "--noise-sd", "0.1", "--photons", "100"]) == 2  # a usage error
+    assert main(["plan", "--noise-sd", "0.1", "--photons-per-frame", "100"]) == 2  # a usage error
     assert "either --noise-sd or --photons" in capsys.readouterr().err
 
 
@@ -336,3 +336,16 @@ def test_infer_counts_with_a_session_calibration_and_reuses_a_saved_one(tmp_path
     assert all(np.array_equal(again[r], counts[r]) for r in counts)
     # a calibration file that is not one: one line naming the file, exit 1
     assert main(["infer", str(dff), "--out", str(tmp_path / "c.h5"), "--calibration", str(dff), "--quiet"]) == 1
+
+
+@pytest.mark.parametrize("old, new", [("--amplitude", "--spike-size"), ("--bootstrap", "--n-bootstrap"),
+                                      ("--gap-px", "--neuropil-gap-px"), ("--photons", "--photons-per-frame")])
+def test_former_flag_names_are_accepted_for_one_release_and_say_so(old, new, capsys):
+    # (one vocabulary: the flags carry the names of the API and the configuration)
+    parser = build_parser()
+    command = {"--amplitude": ["predict", "s.csv", "--frame-rate", "30", "--out", "p.h5"], "--bootstrap": ["fit-kernel", "t", "s"],
+               "--gap-px": ["extract", "m", "k", "--out", "o.h5"], "--photons": ["plan"]}[old]
+    args = parser.parse_args(command + [old, "3"])
+    dest = new.lstrip("-").replace("-", "_")
+    assert getattr(args, dest) in (3, 3.0, [3.0])
+    assert f"{old} is the former name of {new}" in capsys.readouterr().err

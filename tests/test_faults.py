@@ -33,7 +33,7 @@ one line naming the ROIs, exit 1; with the remedy it names, exit 0 (1): dff of t
 works, exit 0 (2): a run with worker processes beside a folder named calcium; --overwrite replacing the
     outputs of an earlier run (the control of the refusals).
 garbage refused, one line naming the flag to change, nothing written (3): raw fluorescence given to infer
-    (--allow-raw); a decay without a spike size (--amplitude); the frame period given as the frame rate.
+    (--allow-raw); a decay without a spike size (--spike-size); the frame period given as the frame rate.
 garbage analysed when the user insists, every ROI flagged (1): infer --allow-raw on raw fluorescence.
 """
 import hashlib
@@ -480,7 +480,7 @@ GARBAGE = [
     # 2012; raw counts sit far above 1)
     (["infer", "traces.h5", "--out", "spikes.h5", "--workers", "1"], "looks like raw fluorescence", "--allow-raw"),
     # a decay without a spike size: refused, not completed with an invented 1.0
-    (["predict", "ephys.csv", "--frame-rate", "20", "--decay-s", "0.5", "--out", "p.npy"], "--amplitude", None),
+    (["predict", "ephys.csv", "--frame-rate", "20", "--decay-s", "0.5", "--out", "p.npy"], "--spike-size", None),
     # the frame period given as the frame rate
     (["noise", "noise.npy", "--frame-rate", "0.0333"], "frame period", None),
 ]

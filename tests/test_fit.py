@@ -28,7 +28,7 @@ def test_kinetics_amplitude_and_clock_offset_are_recovered_at_single_spike_snr_3
     # Reference: the forward model's own parameters (known truth). Single-spike SNR 3 = amplitude / noise s.d.
     dff, true_times, kernel = _recording(indicator, frame_rate=frame_rate, duration_s=120.0, seed=11)
     given = true_times - lag_s  # the spike clock runs `lag_s` behind the frames
-    fit = fit_kernel(dff, given, frame_rate, initial=indicator, n_bootstrap=0)
+    fit = fit_kernel(dff, given, frame_rate, kernel=indicator, n_bootstrap=0)
     assert isinstance(fit, KernelFit)
     assert fit.kernel.decay_s == pytest.approx(kernel.decay_s, rel=0.10)
     assert fit.kernel.rise_s == pytest.approx(kernel.rise_s, rel=0.35)
@@ -59,7 +59,7 @@ def test_bootstrap_intervals_cover_the_truth_in_most_seeded_repeats():
     covered = dict.fromkeys(truth, 0)
     for repeat in range(30):
         dff, times, _ = _recording("GCaMP6s", frame_rate=30.0, duration_s=120.0, seed=100 + repeat)
-        fit = fit_kernel(dff, times - lag_s, 30.0, initial="GCaMP6s", n_bootstrap=40, confidence=0.9, seed=repeat)
+        fit = fit_kernel(dff, times - lag_s, 30.0, kernel="GCaMP6s", n_bootstrap=40, confidence=0.9, seed=repeat)
         assert fit.confidence.level == 0.9 and fit.confidence.n_bootstrap >= 35
         for name, value in truth.items():
             covered[name] += fit.confidence.covers(name, value)
@@ -71,7 +71,7 @@ def test_isolated_spike_amplitudes_scatter_as_least_squares_theory_predicts():
     # s.d. sigma / ||u||. The per-spike amplitudes must centre on the true amplitude with that spread.
     kernel = Kernel.from_indicator("GCaMP6s")
     dff, times, _ = _recording("GCaMP6s", frame_rate=30.0, duration_s=240.0, seed=3, rate_hz=0.3)
-    fit = fit_kernel(dff, times, 30.0, initial="GCaMP6s", n_bootstrap=0)
+    fit = fit_kernel(dff, times, 30.0, kernel="GCaMP6s", n_bootstrap=0)
     amps = fit.per_spike_amplitude
     assert amps.size == fit.n_isolated >= 20
     unit = kernel.impulse_response(30.0, 200) / kernel.amplitude
@@ -85,7 +85,7 @@ def test_free_form_response_matches_the_kernel_averaged_over_sub_frame_delays():
     # sample j of the free-form response estimates the mean over spikes of h(j / rate + delay_i).
     fr = 30.0
     dff, times, kernel = _recording("GCaMP6f", frame_rate=fr, duration_s=120.0, seed=2, snr=10.0, rate_hz=1.0)
-    fit = fit_kernel(dff, times, fr, model="free", initial="GCaMP6f", n_bootstrap=0, free_length_s=0.8)
+    fit = fit_kernel(dff, times, fr, model="free", kernel="GCaMP6f", n_bootstrap=0, free_length_s=0.8)
     assert fit.model == "free" and isinstance(fit.kernel, Kernel)
     aligned = times + fit.lag_s  # the fitted lag is ~0 here but enters the binning
     delays = np.ceil(aligned * fr - 1e-9) / fr - aligned
@@ -101,7 +101,7 @@ def test_a_linear_indicator_responds_to_groups_of_spikes_in_proportion():
     kernel = Kernel.from_indicator("GCaMP6f")
     rec = simulate_recording(1, 200.0, 30.0, kernel=kernel, rate_hz=0.6, spike_model="bursts", burst_size_mean=2.0,
                              burst_isi_s=0.02, noise_sd=0.02, seed=8)
-    fit = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, initial="GCaMP6f", n_bootstrap=0, isolation_s=0.4,
+    fit = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, kernel="GCaMP6f", n_bootstrap=0, isolation_s=0.4,
                      burst_window_s=0.05)
     ratios = {n: ratio for n, count, ratio in fit.burst_linearity if count >= 3}
     assert 1 in ratios and 2 in ratios
@@ -117,11 +117,11 @@ def test_missing_frames_are_left_out_of_the_fit():
     missing = rng.random(dff.size) < 0.1
     a = np.where(missing, np.nan, dff)
     b = np.where(missing, np.nan, dff + 5.0 * missing)  # different values, then hidden again
-    fit_a = fit_kernel(a, times, 30.0, initial="GCaMP6f", n_bootstrap=0)
-    fit_b = fit_kernel(b, times, 30.0, initial="GCaMP6f", n_bootstrap=0)
+    fit_a = fit_kernel(a, times, 30.0, kernel="GCaMP6f", n_bootstrap=0)
+    fit_b = fit_kernel(b, times, 30.0, kernel="GCaMP6f", n_bootstrap=0)
     assert fit_a.n_missing_frames == int(missing.sum())
     assert fit_a.kernel == fit_b.kernel and fit_a.lag_s == fit_b.lag_s
-    full = fit_kernel(dff, times, 30.0, initial="GCaMP6f", n_bootstrap=0)
+    full = fit_kernel(dff, times, 30.0, kernel="GCaMP6f", n_bootstrap=0)
     assert fit_a.kernel.decay_s == pytest.approx(full.kernel.decay_s, rel=0.1)
 
 
@@ -129,8 +129,8 @@ def test_unsorted_spike_times_are_sorted_with_a_warning():
     dff, times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=40.0, seed=6)
     shuffled = np.random.default_rng(1).permutation(times)
     with pytest.warns(UserWarning, match="ascending"):
-        fit = fit_kernel(dff, shuffled, 30.0, initial="GCaMP6f", n_bootstrap=0)
-    ref = fit_kernel(dff, times, 30.0, initial="GCaMP6f", n_bootstrap=0)
+        fit = fit_kernel(dff, shuffled, 30.0, kernel="GCaMP6f", n_bootstrap=0)
+    ref = fit_kernel(dff, times, 30.0, kernel="GCaMP6f", n_bootstrap=0)
     assert fit.kernel == ref.kernel
 
 
@@ -138,7 +138,7 @@ def test_spikes_slightly_outside_the_trace_are_counted_and_ignored():
     dff, times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=40.0, seed=6)
     extra = np.sort(np.concatenate([times, [-5.0, 41.5, 42.0]]))
     with pytest.warns(UserWarning, match="3 spike time"):
-        fit = fit_kernel(dff, extra, 30.0, initial="GCaMP6f", n_bootstrap=0)
+        fit = fit_kernel(dff, extra, 30.0, kernel="GCaMP6f", n_bootstrap=0)
     assert fit.n_ignored_spikes == 3 and fit.n_spikes == times.size
 
 
@@ -164,8 +164,8 @@ def test_no_spikes_or_too_few_isolated_spikes_raise_with_the_counts():
     (dict(confidence=1.5), "confidence"),
     (dict(max_lag_s=0.0), "max_lag_s"),
     (dict(n_bootstrap=-1), "n_bootstrap"),
-    (dict(initial=3.0), "initial"),
-    (dict(initial="no-such-indicator"), "unknown indicator"),
+    (dict(kernel=3.0), "kernel"),
+    (dict(kernel="no-such-indicator"), "unknown indicator"),
 ])
 def test_bad_arguments_are_named(kwargs, match):
     dff, times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=20.0, seed=6)
@@ -221,7 +221,7 @@ def test_saturating_indicator_with_bursts_is_flagged_as_saturation():
     k = dataclasses.replace(Kernel.from_indicator("GCaMP6f"), dff_max=0.6)
     rec = simulate_recording(1, 120.0, 30.0, kernel=k, rate_hz=1.5, spike_model="bursts", burst_size_mean=3,
                              burst_isi_s=0.02, noise_sd=0.03, seed=4)
-    fit = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, initial="GCaMP6f", n_bootstrap=0, isolation_s=0.3,
+    fit = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, kernel="GCaMP6f", n_bootstrap=0, isolation_s=0.3,
                      burst_window_s=0.1)
     ratios = [ratio for n, count, ratio in fit.burst_linearity if n >= 3 and count >= 2]
     assert ratios and max(ratios) < 0.8
@@ -293,9 +293,9 @@ def test_pure_noise_gives_an_unusable_fit_that_says_why():
 
 def test_another_cells_spikes_give_an_unusable_fit():
     rec = simulate_recording(2, 180.0, 30.0, indicator="GCaMP6f", rate_hz=0.8, noise_sd=0.05, seed=12)
-    fit = fit_kernel(rec.dff[0], rec.spike_times[1], 30.0, initial="GCaMP6f", n_bootstrap=0)
+    fit = fit_kernel(rec.dff[0], rec.spike_times[1], 30.0, kernel="GCaMP6f", n_bootstrap=0)
     assert not fit.usable and fit.signal_explained < 0.3
-    own = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, initial="GCaMP6f", n_bootstrap=0)
+    own = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, kernel="GCaMP6f", n_bootstrap=0)
     assert own.usable and own.signal_explained > 0.6
 
 
@@ -309,7 +309,7 @@ def test_shifted_spike_p_values_are_not_small_for_unrelated_trains_more_often_th
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                fit = fit_kernel(rec.dff[0], other.spike_times[0], 15.0, initial="GCaMP6s", n_bootstrap=0)
+                fit = fit_kernel(rec.dff[0], other.spike_times[0], 15.0, kernel="GCaMP6s", n_bootstrap=0)
         except ValueError:  # nothing rises after the spikes: certainly no response
             continue
         small += fit.response_p_value <= 0.05
@@ -323,8 +323,8 @@ def test_a_clock_offset_beyond_the_search_range_is_reported_at_the_edge():
     given = true_times - 1.5
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        fit = fit_kernel(dff, given, 30.0, initial="GCaMP6s", n_bootstrap=0, max_lag_s=1.0)
-        wider = fit_kernel(dff, given, 30.0, initial="GCaMP6s", n_bootstrap=0, max_lag_s=2.0)
+        fit = fit_kernel(dff, given, 30.0, kernel="GCaMP6s", n_bootstrap=0, max_lag_s=1.0)
+        wider = fit_kernel(dff, given, 30.0, kernel="GCaMP6s", n_bootstrap=0, max_lag_s=2.0)
     assert fit.lag_at_edge and not fit.usable
     assert "sits at the edge of the search range (max_lag_s=1 s)" in fit.verdict
     assert "refit with a wider max_lag_s (e.g. 2)" in fit.verdict and "AT THE EDGE" in str(fit)
@@ -334,4 +334,14 @@ def test_a_clock_offset_beyond_the_search_range_is_reported_at_the_edge():
     with pytest.raises(ValueError, match=r"at any lag within max_lag_s=1 s.*widen max_lag_s"):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            fit_kernel(dff, true_times - 1.5, 30.0, initial="GCaMP6f", n_bootstrap=0, max_lag_s=1.0)
+            fit_kernel(dff, true_times - 1.5, 30.0, kernel="GCaMP6f", n_bootstrap=0, max_lag_s=1.0)
+
+
+def test_the_former_name_of_the_starting_kernel_still_works_with_a_deprecation_warning():
+    dff, times, _ = _recording("GCaMP6f", frame_rate=30.0, duration_s=20.0, seed=6)
+    with pytest.warns(DeprecationWarning, match="kernel="):
+        old = fit_kernel(dff, times, 30.0, initial="GCaMP6f", n_bootstrap=0)
+    new = fit_kernel(dff, times, 30.0, kernel="GCaMP6f", n_bootstrap=0)
+    assert old.kernel == new.kernel and old.lag_s == new.lag_s
+    with pytest.raises(ValueError, match="not both"):
+        fit_kernel(dff, times, 30.0, initial="GCaMP6f", kernel="GCaMP6f")

@@ -413,11 +413,11 @@ def _fit_options(config: RunConfig) -> dict:
     options = {"model": fit.model, "max_lag_s": fit.max_lag_s, "n_bootstrap": fit.n_bootstrap,
                "confidence": fit.confidence, "seed": fit.seed, "min_isolated_spikes": fit.min_isolated_spikes}
     if config.inference.indicator is not None:
-        options["initial"] = config.inference.indicator
+        options["kernel"] = config.inference.indicator
     elif config.inference.decay_s is not None:
         from ..kernel import Kernel
 
-        options["initial"] = Kernel(config.inference.rise_s, config.inference.decay_s)
+        options["kernel"] = Kernel(config.inference.rise_s, config.inference.decay_s)
     return options
 
 
