@@ -3,9 +3,15 @@
 :data:`INDICATORS` is a tuple of :class:`IndicatorKinetics` records, one per
 indicator: the published (or recalled) peak ΔF/F for one action potential,
 the half-decay time, the half-rise time or time to peak, the conditions of
-the measurement and where the numbers come from.  ``kernel()`` turns a record
-into a :class:`~calcium.kernel.Kernel` whose difference of exponentials has
-exactly those times (see :func:`calcium.kernel.time_constants_from_half_times`).
+the measurement and where the numbers come from.
+:meth:`Kernel.from_indicator <calcium.kernel.Kernel.from_indicator>` turns a
+record (or its name) into a :class:`~calcium.kernel.Kernel` whose difference of
+exponentials has exactly those times (see
+:func:`calcium.kernel.time_constants_from_half_times`).
+
+This module is data and times only: it imports the shape mathematics from
+:mod:`calcium._double_exponential` and nothing above it, and
+:mod:`calcium.kernel` imports it.
 
 Read before use
 ---------------
@@ -37,10 +43,11 @@ References
 """
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 from ._checks import check_positive
-from .kernel import Kernel, time_constants_from_half_times
+from ._double_exponential import time_constants_from_half_times
 
 __all__ = ["IndicatorKinetics", "INDICATORS", "get_indicator", "indicator_names"]
 
@@ -120,10 +127,19 @@ class IndicatorKinetics:
         return time_constants_from_half_times(self.half_decay_s, half_rise_s=self.half_rise_s,
                                               time_to_peak_s=self.time_to_peak_s)
 
-    def kernel(self) -> Kernel:
-        """The :class:`~calcium.kernel.Kernel` with this row's times and peak ΔF/F (linear)."""
-        rise_s, decay_s = self.time_constants()
-        return Kernel(rise_s, decay_s, self.dff_single_spike)
+    def kernel(self):
+        """Deprecated: use ``Kernel.from_indicator(row.name)`` (or ``Kernel.from_indicator(row)``).
+
+        The :class:`~calcium.kernel.Kernel` with this row's times and peak ΔF/F (linear).  Kept for one
+        release: the table sits below :mod:`calcium.kernel`, which imports it, so building a kernel here is
+        the one import upwards left in this module, and it goes with this method.
+        """
+        warnings.warn(f"IndicatorKinetics.kernel() is deprecated and will be removed in the next release; use "
+                      f"calcium.kernel.Kernel.from_indicator({self.name!r}) (or Kernel.from_indicator(row))",
+                      DeprecationWarning, stacklevel=2)
+        from .kernel import Kernel  # deprecated shim: the only upward import of this module, removed with it
+
+        return Kernel.from_indicator(self)
 
 
 _TIME_TO_PEAK_NOTE = ("The rise figure is recalled as a single-spike rise time and stored as a time to peak: read "

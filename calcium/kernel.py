@@ -12,6 +12,12 @@ exact second-order autoregressive recursion, AR(2), and a single exponential
 an AR(1) recursion; :meth:`Kernel.ar_coefficients` and
 :meth:`Kernel.from_ar_coefficients` convert between the two descriptions.
 
+The shape mathematics (peak, half-rise and half-decay times, and
+:func:`time_constants_from_half_times`, re-exported here) lives below this
+module in :mod:`calcium._double_exponential`, which the indicator table
+(:mod:`calcium.indicators`) uses too; this module imports the table for
+:meth:`Kernel.from_indicator`, and the table never imports it.
+
 References
 ----------
 .. [1] Hill, A. V. (1910). The possible effects of the aggregation of the
@@ -34,6 +40,8 @@ from dataclasses import KW_ONLY, dataclass
 import numpy as np
 
 from ._checks import check_frame_rate, check_int, check_nonnegative, check_positive
+from ._double_exponential import ExponentialShape, time_constants_from_half_times
+from .indicators import IndicatorKinetics, get_indicator
 
 __all__ = ["Kernel", "time_constants_from_half_times", "DECAY_RANGE_S"]
 
@@ -45,18 +53,6 @@ __all__ = ["Kernel", "time_constants_from_half_times", "DECAY_RANGE_S"]
 # Nature 499:295, from memory) and stay within seconds after bursts or in cold slices; a response slower than a
 # minute cannot be told from baseline drift, which ΔF/F baselines follow over windows of about a minute.
 DECAY_RANGE_S = (1e-3, 60.0)
-
-# Root-finding tolerances for the derived times: absolute tolerance relative
-# to the kernel's time scale, and the smallest relative tolerance brentq takes.
-_XTOL_FRACTION = 1e-14
-_RTOL = 4 * np.finfo(float).eps
-
-
-def _brentq(func, lo: float, hi: float, scale: float) -> float:
-    from scipy.optimize import brentq  # (scipy.optimize takes a third of a second to import: only when needed)
-
-    return float(brentq(func, lo, hi, xtol=_XTOL_FRACTION * scale, rtol=_RTOL, maxiter=500))
-
 
 def _check_decay(value, name: str) -> float:
     """A decay time constant in seconds, inside DECAY_RANGE_S; the message suggests a unit slip."""
@@ -190,47 +186,11 @@ class Kernel:
                             ("hill_n", check_positive(self.hill_n, "hill_n")),
                             ("hill_k", check_positive(self.hill_k, "hill_k"))):
             object.__setattr__(self, name, value)
-        t_peak = self._peak_time_unnormalised()  # solved once: the derived times all start from it
-        object.__setattr__(self, "_t_peak", t_peak)
-        object.__setattr__(self, "_terms", self._compute_terms(t_peak))
+        # the shape and its peak time, solved once (calcium._double_exponential: shared with the indicator table)
+        object.__setattr__(self, "_shape", ExponentialShape.build(rise, decay, amplitude, slow_decay_s=slow,
+                                                                  slow_fraction=fraction))
 
     # ------------------------------------------------------------------ shape
-    def _unnormalised_terms(self) -> list[tuple[float, float]]:
-        """(weight, tau) of the bracket in the class docstring (peak not yet 1)."""
-        terms = [(1.0 - self.slow_fraction, self.decay_s)]
-        if self.slow_decay_s is not None:
-            terms.append((self.slow_fraction, self.slow_decay_s))
-        if self.rise_s > 0:
-            terms.append((-1.0, self.rise_s))
-        return terms
-
-    def _peak_time_unnormalised(self) -> float:
-        if self.rise_s == 0:
-            return 0.0
-        # h'(t) = 0  <=>  sum_decays w/tau * exp(t (1/rise - 1/tau)) = 1/rise.  The left side
-        # increases strictly from below 1/rise (every tau > rise), so the root is unique.
-        rise = self.rise_s
-        decays = [(w, tau) for w, tau in self._unnormalised_terms() if w > 0]
-
-        def slope_sign(t):
-            return sum(w / tau * math.exp(t * (1.0 / rise - 1.0 / tau)) for w, tau in decays) - 1.0 / rise
-
-        w0, tau0 = decays[0]
-        # The first decay term alone reaches 1/rise here, so the bracket is closed.
-        hi = math.log(tau0 / (w0 * rise)) / (1.0 / rise - 1.0 / tau0)
-        if len(decays) == 1:
-            # one decay: that end is the root itself, t = ln(w tau / rise) rise tau / (tau - rise) (set the
-            # derivative of w exp(-t/tau) - exp(-t/rise) to zero)
-            return hi
-        while slope_sign(hi) <= 0:  # rounding at the bracket end (the root can sit exactly there)
-            hi *= 1.0 + 1e-9
-        return _brentq(slope_sign, 0.0, hi, rise)
-
-    def _compute_terms(self, t_peak: float) -> tuple[tuple[float, float], ...]:
-        terms = self._unnormalised_terms()
-        peak = sum(w * math.exp(-t_peak / tau) for w, tau in terms)
-        return tuple((self.amplitude * w / peak, tau) for w, tau in terms)
-
     def exponential_terms(self) -> tuple[tuple[float, float], ...]:
         r"""The kernel as a sum of exponentials.
 
@@ -240,7 +200,7 @@ class Kernel:
             :math:`h(t) = \sum_i w_i\, e^{-t/\tau_i}` for :math:`t \ge 0`; the
             rise term has a negative weight.  Weights include ``amplitude``.
         """
-        return self._terms
+        return self._shape.terms
 
     def evaluate(self, time_s) -> np.ndarray:
         """Linear ΔF/F response at ``time_s`` seconds after one spike (0 before it).
@@ -254,13 +214,7 @@ class Kernel:
         -------
         ndarray of float64, same shape as ``time_s``
         """
-        t = np.asarray(time_s, dtype=np.float64)
-        after = t >= 0
-        tt = np.where(after, t, 0.0)
-        out = np.zeros(t.shape)
-        for w, tau in self._terms:
-            out += w * np.exp(-tt / tau)
-        return np.where(after, out, 0.0)
+        return self._shape.evaluate(time_s)
 
     # ---------------------------------------------------------- derived times
     @property
@@ -271,29 +225,17 @@ class Kernel:
     @property
     def time_to_peak_s(self) -> float:
         """Time from the spike to the peak of the response (0 for an instantaneous rise)."""
-        return self._t_peak
-
-    def _time_scale(self) -> float:
-        return max(tau for _, tau in self._terms)
+        return self._shape.time_to_peak_s
 
     @property
     def half_rise_s(self) -> float:
         """Time from the spike until the response first reaches half its peak."""
-        if self.rise_s == 0:
-            return 0.0
-        half = 0.5 * self.amplitude
-        return _brentq(lambda t: float(self.evaluate(t)) - half, 0.0, self.time_to_peak_s, self.rise_s)
+        return self._shape.half_rise_s
 
     @property
     def half_decay_s(self) -> float:
         """t½: time from the peak until the response has fallen to half its peak."""
-        t_peak = self.time_to_peak_s
-        half = 0.5 * self.amplitude
-        scale = self._time_scale()
-        hi = t_peak + scale
-        while float(self.evaluate(hi)) > half:
-            hi += 2 * (hi - t_peak)
-        return _brentq(lambda t: float(self.evaluate(t)) - half, t_peak, hi, scale) - t_peak
+        return self._shape.half_decay_s
 
     # ------------------------------------------------------------ sampling
     def impulse_response(self, frame_rate, n_frames) -> np.ndarray:
@@ -397,20 +339,33 @@ class Kernel:
 
     # -------------------------------------------------------- constructors
     @classmethod
-    def from_indicator(cls, name: str, **overrides) -> "Kernel":
+    def from_indicator(cls, name: "str | IndicatorKinetics", **overrides) -> "Kernel":
         """Kernel of a tabulated indicator (see :mod:`calcium.indicators`).
+
+        The linear difference of exponentials whose half-decay time and
+        half-rise time (or time to peak) are the row's
+        (:meth:`~calcium.indicators.IndicatorKinetics.time_constants`), with
+        the row's single-spike peak ΔF/F as ``amplitude``.
 
         Parameters
         ----------
-        name : str
-            Indicator name, case-insensitive (e.g. ``"GCaMP6s"``).
+        name : str or IndicatorKinetics
+            Indicator name, case-insensitive (e.g. ``"GCaMP6s"``), or a row
+            of the table (:func:`calcium.indicators.get_indicator`), which
+            may be one of your own.
         **overrides
             Field values replacing the tabulated ones (e.g. ``amplitude=0.1``,
             ``dff_max=5.0``).
-        """
-        from .indicators import get_indicator
 
-        kernel = get_indicator(name).kernel()
+        Examples
+        --------
+        >>> k = Kernel.from_indicator("GCaMP6f")
+        >>> round(k.half_decay_s, 6), k.amplitude
+        (0.142, 0.19)
+        """
+        row = name if isinstance(name, IndicatorKinetics) else get_indicator(name)
+        rise_s, decay_s = row.time_constants()
+        kernel = cls(rise_s, decay_s, row.dff_single_spike)
         return dataclasses.replace(kernel, **overrides) if overrides else kernel
 
     def scaled(self, amplitude) -> "Kernel":
@@ -520,71 +475,3 @@ class Kernel:
             text += f"; saturating at ΔF/F {self.dff_max:.4g} (Hill n={self.hill_n:.3g}, K={self.hill_k:.3g})"
         return text
 
-
-def time_constants_from_half_times(half_decay_s, *, half_rise_s=None, time_to_peak_s=None) -> tuple[float, float]:
-    """Rise and decay time constants of the difference of exponentials with given times.
-
-    Solves exactly (root finding to ~1e-14 relative) for the
-    double-exponential kernel whose half-decay time (peak to half peak) is
-    ``half_decay_s`` and whose half-rise time (spike to half peak) is
-    ``half_rise_s`` -- or, instead, whose time to peak is ``time_to_peak_s``.
-
-    Parameters
-    ----------
-    half_decay_s : float
-        Half-decay time t½ in seconds (> 0).
-    half_rise_s : float, optional
-        Half-rise time in seconds; 0 means an instantaneous rise.
-    time_to_peak_s : float, optional
-        Time to peak in seconds; give exactly one of the two.
-
-    Returns
-    -------
-    (rise_s, decay_s) : tuple of float
-
-    Raises
-    ------
-    ValueError
-        When no difference of exponentials has these times.  The shape of the
-        kernel depends only on ``rise_s / decay_s`` in (0, 1); as it goes to
-        1 (the alpha function) half-rise / half-decay grows to 0.13821 and
-        time-to-peak / half-decay to 0.59582, the largest values possible.
-
-    Notes
-    -----
-    Both ratios increase monotonically with ``rise_s / decay_s``; the ratio is
-    found with :func:`scipy.optimize.brentq` on its logarithm, and the time
-    scale then follows from the half-decay time.
-    """
-    half_decay_s = check_positive(half_decay_s, "half_decay_s")
-    if (half_rise_s is None) == (time_to_peak_s is None):
-        raise ValueError("give exactly one of half_rise_s and time_to_peak_s")
-    if half_rise_s is not None:
-        target, name = check_nonnegative(half_rise_s, "half_rise_s"), "half_rise_s"
-
-        def measure(k):
-            return k.half_rise_s
-    else:
-        target, name = check_nonnegative(time_to_peak_s, "time_to_peak_s"), "time_to_peak_s"
-
-        def measure(k):
-            return k.time_to_peak_s
-    if target == 0.0:
-        return 0.0, half_decay_s / math.log(2.0)
-
-    def ratio(log_rho):
-        k = Kernel(math.exp(log_rho), 1.0)
-        return measure(k) / k.half_decay_s
-
-    lo, hi = math.log(1e-12), math.log(1.0 - 1e-7)
-    wanted = target / half_decay_s
-    r_lo, r_hi = ratio(lo), ratio(hi)
-    if not (r_lo < wanted < r_hi):
-        raise ValueError(f"{name}={target!r} s with half_decay_s={half_decay_s!r} s: the ratio {wanted:.4g} is "
-                         f"outside ({r_lo:.3g}, {r_hi:.5f}), the range a difference of exponentials can have")
-    from scipy.optimize import brentq
-
-    log_rho = brentq(lambda v: ratio(v) - wanted, lo, hi, xtol=1e-14, rtol=_RTOL, maxiter=500)
-    shape = Kernel(math.exp(log_rho), 1.0)
-    decay = half_decay_s / shape.half_decay_s
-    return math.exp(log_rho) * decay, decay

@@ -1,5 +1,6 @@
 """Tests of calcium.indicators: the table carries sources, names resolve, kernels match the table."""
 import dataclasses
+import re
 
 import pytest
 
@@ -47,7 +48,7 @@ def test_requested_indicators_are_tabulated():
 
 @pytest.mark.parametrize("row", INDICATORS, ids=lambda r: r.name)
 def test_kernel_of_each_row_reproduces_its_tabulated_times_and_amplitude(row):
-    kernel = row.kernel()
+    kernel = Kernel.from_indicator(row)
     assert kernel.half_decay_s == pytest.approx(row.half_decay_s, rel=1e-9)
     if row.half_rise_s is not None:
         assert kernel.half_rise_s == pytest.approx(row.half_rise_s, rel=1e-9)
@@ -77,7 +78,9 @@ def test_unknown_indicator_lists_the_known_names():
 
 def test_kernel_from_indicator_with_overrides():
     base = Kernel.from_indicator("GCaMP6f")
-    assert base == ROWS["GCaMP6f"].kernel()
+    assert base == Kernel.from_indicator(ROWS["GCaMP6f"])
+    rise_s, decay_s = ROWS["GCaMP6f"].time_constants()
+    assert base == Kernel(rise_s, decay_s, ROWS["GCaMP6f"].dff_single_spike)
     changed = Kernel.from_indicator("gcamp6f", amplitude=0.5, dff_max=3.0)
     assert changed.amplitude == 0.5 and changed.dff_max == 3.0 and changed.decay_s == base.decay_s
 
@@ -91,3 +94,22 @@ def test_fast_medium_slow_variants_are_ordered_as_their_papers_name_them():
     # Zhang et al. 2023 abstract (looked up): jGCaMP8 rises much faster than earlier GCaMPs.
     assert max(ROWS[n].half_rise_s for n in ("jGCaMP8f", "jGCaMP8m", "jGCaMP8s")) < min(
         ROWS[n].half_rise_s for n in ("jGCaMP7f", "jGCaMP7s"))
+
+
+def test_kernel_from_a_row_of_ones_own_is_built_from_its_times():
+    # a row that is not in the table: Kernel.from_indicator takes the record itself
+    own = dataclasses.replace(ROWS["jGCaMP8m"], name="my sensor", aliases=(), dff_single_spike=0.42, half_decay_s=0.2)
+    kernel = Kernel.from_indicator(own)
+    assert kernel.amplitude == 0.42
+    assert kernel.half_decay_s == pytest.approx(0.2, rel=1e-9)
+    assert kernel.half_rise_s == pytest.approx(own.half_rise_s, rel=1e-9)
+    with pytest.raises(ValueError, match="my sensor"):
+        Kernel.from_indicator("my sensor")  # not in the table by name
+
+
+@pytest.mark.parametrize("row", INDICATORS, ids=lambda r: r.name)
+def test_deprecated_row_kernel_warns_and_gives_the_same_kernel(row):
+    with pytest.warns(DeprecationWarning, match=re.escape(f"Kernel.from_indicator({row.name!r})")):
+        kernel = row.kernel()
+    assert kernel == Kernel.from_indicator(row.name)
+    assert kernel.exponential_terms() == Kernel.from_indicator(row.name).exponential_terms()
