@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
-from ._checks import as_spike_times, check_positive
+from ._checks import _UNSET, as_spike_times, check_positive, renamed_argument
 
 __all__ = [
     "SpikeScore",
@@ -163,15 +163,19 @@ def _sum_exp_across(a: np.ndarray, b: np.ndarray, tau_s: float) -> float:
     return total
 
 
-def van_rossum_distance(times_a, times_b, *, tau_s) -> float:
+def van_rossum_distance(times_a, times_b, *, van_rossum_tau_s=_UNSET, tau_s=_UNSET) -> float:
     """Exact van Rossum distance between two spike trains.
 
     Parameters
     ----------
     times_a, times_b : array_like
         Spike times in seconds.
+    van_rossum_tau_s : float
+        Time constant of the causal exponential filter, seconds (the name
+        :func:`score_spikes` gives it too).
     tau_s : float
-        Time constant of the causal exponential filter, seconds.
+        Former name of ``van_rossum_tau_s``, accepted for one release (with
+        a DeprecationWarning).
 
     Returns
     -------
@@ -198,10 +202,13 @@ def van_rossum_distance(times_a, times_b, *, tau_s) -> float:
 
     Examples
     --------
-    >>> round(van_rossum_distance([1.0], [], tau_s=0.1) ** 2, 12)
+    >>> round(van_rossum_distance([1.0], [], van_rossum_tau_s=0.1) ** 2, 12)
     0.5
     """
-    tau_s = check_positive(tau_s, "tau_s")
+    tau_s = renamed_argument("tau_s", tau_s, "van_rossum_tau_s", van_rossum_tau_s)
+    if tau_s is _UNSET:
+        raise ValueError("van_rossum_distance needs van_rossum_tau_s, the time constant of its filter (s)")
+    tau_s = check_positive(tau_s, "van_rossum_tau_s")
     a = as_spike_times(times_a, "times_a")
     b = as_spike_times(times_b, "times_b")
     return _van_rossum_sorted(a, b, tau_s)

@@ -28,7 +28,7 @@ from calcium.report import (
     kernel_fit_figure,
     noise_figure,
     plan_figure,
-    planner_figure,
+    detection_figure,
     prediction_figure,
     raster_figure,
     save_figure,
@@ -86,7 +86,7 @@ def _every_figure():
                                             tolerance_s=0.1), {"bin width (s)", "score (0 to 1)"}),
         ("score-strip", lambda: score_figure(rng.uniform(size=60), rng.uniform(size=60), rng.uniform(size=60)),
          {"score (0 to 1)"}),
-        ("planner", lambda: planner_figure(rates, rng.uniform(size=(3, 6)), noise_sd=[0.01, 0.03, 0.1],
+        ("planner", lambda: detection_figure(rates, rng.uniform(size=(3, 6)), noise_sd=[0.01, 0.03, 0.1],
                                            probability_error=np.full((3, 6), 0.05),
                                            shortest_interval_s=np.outer([1, 2, 3], 1 / rates),
                                            target_probability=0.9),
@@ -324,7 +324,7 @@ def test_planner_draws_one_line_per_noise_level_with_error_bars():
     prob = np.array([[0.9, 0.95, 0.99], [0.5, 0.7, 0.8]])
     lower = np.full((2, 3), 0.05)
     upper = np.full((2, 3), 0.01)
-    fig = planner_figure(rates, prob, noise_sd=[0.01, 0.05], probability_error=np.stack([lower, upper]))
+    fig = detection_figure(rates, prob, noise_sd=[0.01, 0.05], probability_error=np.stack([lower, upper]))
     ax = fig.axes[0]
     assert [c.get_label() for c in ax.containers] == ["0.01", "0.05"]
     np.testing.assert_allclose([c.lines[0].get_ydata() for c in ax.containers], prob)
@@ -386,8 +386,8 @@ def test_plan_figure_draws_the_plan_with_its_intervals_as_error_bars():
     (lambda: score_figure([0.5], [1.5], [0.5]), "recall"),
     (lambda: score_figure([0.5], [0.5], [0.5], correlation=[0.1]), "bin_widths_s"),
     (lambda: score_figure([0.5], [0.5], [0.5], tolerance_s=-0.1), "tolerance_s"),
-    (lambda: planner_figure([10.0, 20.0], [[0.5, 0.6]], noise_sd=[0.1, 0.2]), "noise_sd"),
-    (lambda: planner_figure([10.0, 20.0], [0.5, 0.6], noise_sd=0.1, probability_error=[0.1]),
+    (lambda: detection_figure([10.0, 20.0], [[0.5, 0.6]], noise_sd=[0.1, 0.2]), "noise_sd"),
+    (lambda: detection_figure([10.0, 20.0], [0.5, 0.6], noise_sd=0.1, probability_error=[0.1]),
      "probability_error"),
 ])
 def test_bad_arguments_raise_value_error_naming_them(call, argument):
@@ -592,3 +592,11 @@ def test_browser_page_reports_images_that_cannot_be_shown(tmp_path, browse):
     (page.parent / "figures" / "noise.png").unlink()
     seen = browse(_probe_copy(page), tmp_path / "profile")
     assert (seen["images-loaded"], seen["images-total"]) == ("2", "3")
+
+
+def test_the_former_name_of_the_detection_figure_still_works_with_a_deprecation_warning():
+    from calcium.report import planner_figure
+
+    with pytest.warns(DeprecationWarning, match="detection_figure"):
+        fig = planner_figure([10.0, 20.0], [[0.5, 0.6]], noise_sd=[0.1])
+    assert fig.axes

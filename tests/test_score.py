@@ -178,24 +178,24 @@ def test_van_rossum_distance_equals_numerical_integral_of_filtered_trains():
     total, _ = integrate.quad(integrand, breaks[0] - 1.0, breaks[-1] + 40 * tau, points=breaks,
                               limit=500, epsabs=1e-12, epsrel=1e-10)
     expected = math.sqrt(total / tau)
-    assert van_rossum_distance(a, b, tau_s=tau) == pytest.approx(expected, rel=1e-6)
+    assert van_rossum_distance(a, b, van_rossum_tau_s=tau) == pytest.approx(expected, rel=1e-6)
 
 
 def test_van_rossum_distance_of_simple_cases_matches_closed_form():
     # van Rossum (2001): one unmatched spike gives D^2 = 1/2; a pair delta apart gives
     # D^2 = 1 - exp(-delta/tau) (worked out from the integral by hand).
-    assert van_rossum_distance([2.0], [], tau_s=0.3) ** 2 == pytest.approx(0.5)
-    assert van_rossum_distance([1.0], [1.1], tau_s=0.2) ** 2 == pytest.approx(1 - math.exp(-0.5))
+    assert van_rossum_distance([2.0], [], van_rossum_tau_s=0.3) ** 2 == pytest.approx(0.5)
+    assert van_rossum_distance([1.0], [1.1], van_rossum_tau_s=0.2) ** 2 == pytest.approx(1 - math.exp(-0.5))
     # symmetric, and coincident spikes (a doublet) count twice
-    assert van_rossum_distance([1.0, 1.0], [1.0], tau_s=0.2) ** 2 == pytest.approx(0.5)
-    assert van_rossum_distance([0.3, 2.0], [1.0], tau_s=0.5) == pytest.approx(
-        van_rossum_distance([1.0], [0.3, 2.0], tau_s=0.5))
+    assert van_rossum_distance([1.0, 1.0], [1.0], van_rossum_tau_s=0.2) ** 2 == pytest.approx(0.5)
+    assert van_rossum_distance([0.3, 2.0], [1.0], van_rossum_tau_s=0.5) == pytest.approx(
+        van_rossum_distance([1.0], [0.3, 2.0], van_rossum_tau_s=0.5))
 
 
 def test_van_rossum_default_time_constant_is_the_tolerance():
     s = score_spikes([1.0], [1.05], tolerance_s=0.1)
     assert s.van_rossum_tau_s == 0.1
-    assert s.van_rossum == pytest.approx(van_rossum_distance([1.0], [1.05], tau_s=0.1))
+    assert s.van_rossum == pytest.approx(van_rossum_distance([1.0], [1.05], van_rossum_tau_s=0.1))
 
 
 # --------------------------------------------------------------------------- many ROIs
@@ -273,3 +273,9 @@ def test_negative_times_are_refused_as_the_spike_table_reader_refuses_them(tmp_p
     np.testing.assert_array_equal(true, [-0.5, 1.0])  # the input is left as it was
     with pytest.raises(ValueError, match=r"inferred\[3\] holds 1 negative time"):
         score_many({3: [-0.01]}, {3: [0.5]}, tolerance_s=0.1)
+
+
+def test_the_former_name_of_the_van_rossum_time_constant_still_works_with_a_deprecation_warning():
+    with pytest.warns(DeprecationWarning, match="van_rossum_tau_s"):
+        old = van_rossum_distance([1.0], [1.1], tau_s=0.2)
+    assert old == van_rossum_distance([1.0], [1.1], van_rossum_tau_s=0.2)

@@ -58,6 +58,7 @@ __all__ = [
     "calibration_figure",
     "raster_figure",
     "score_figure",
+    "detection_figure",
     "planner_figure",
     "plan_figure",
     "save_figure",
@@ -1048,7 +1049,7 @@ def score_figure(precision, recall, f1, *, bin_widths_s=None, correlation=None, 
     return fig
 
 
-def planner_figure(frame_rates, detection_probability, *, noise_sd, probability_error=None,
+def detection_figure(frame_rates, detection_probability, *, noise_sd, probability_error=None,
                    shortest_interval_s=None, target_probability=None, noise_unit="ΔF/F",
                    title="spike detection against frame rate") -> Figure:
     """Probability of detecting a spike against frame rate, one line per noise level.
@@ -1158,7 +1159,7 @@ def plan_figure(plan, *, target_probability=None) -> Figure:
     Reads the plan's documented ``frame_rates``, ``noise_sd``, ``detection``
     and ``detection_ci`` (indexed [frame rate, noise level]; the 95 % Wilson
     intervals become asymmetric error bars), ``shortest_resolved_interval_s``
-    and ``false_positive_rate``, and draws them with :func:`planner_figure`.
+    and ``false_positive_rate``, and draws them with :func:`detection_figure`.
 
     Parameters
     ----------
@@ -1183,7 +1184,7 @@ def plan_figure(plan, *, target_probability=None) -> Figure:
     error = np.stack([detection - ci[..., 0], ci[..., 1] - detection]).transpose(0, 2, 1)
     shortest = getattr(plan, "shortest_resolved_interval_s", None)
     shortest = None if shortest is None or np.size(shortest) == 0 else np.asarray(shortest, dtype=np.float64).T
-    return planner_figure(rates, detection.T, noise_sd=np.asarray(plan.noise_sd, dtype=np.float64),
+    return detection_figure(rates, detection.T, noise_sd=np.asarray(plan.noise_sd, dtype=np.float64),
                           probability_error=np.clip(error, 0.0, None), shortest_interval_s=shortest,
                           target_probability=target_probability,
                           title=f"spike detection against frame rate (false-positive rate "
@@ -1271,3 +1272,10 @@ def save_figure(fig, path, *, dpi=100) -> Path:
     with atomic_output(path) as tmp:
         tmp.write_bytes(data)
     return path
+
+
+def planner_figure(*args, **kwargs) -> Figure:
+    """Former name of :func:`detection_figure` (kept for one release; it warns)."""
+    warnings.warn("planner_figure is the former name of detection_figure; it will be removed in a later release",
+                  DeprecationWarning, stacklevel=2)
+    return detection_figure(*args, **kwargs)
