@@ -122,6 +122,15 @@ def _read_traces(path, dataset=None, args=None):
         raise _fail(path, ValueError(_cli_words(str(exc)))) from exc
 
 
+def _read_spikes(path) -> dict:
+    """A spike file's times by ROI; a bad file is one line naming it."""
+    from calcium.io import read_spike_times
+    try:
+        return read_spike_times(path)
+    except (ValueError, OSError) as exc:
+        raise _fail(path, exc) from exc
+
+
 def _frame_rate(args, data) -> float:
     """Frame rate from --frame-rate or from the file; they must agree when both are given."""
     given = getattr(args, "frame_rate", None)
@@ -338,14 +347,11 @@ def cmd_simulate(args):
 
 def cmd_predict(args):
     from calcium.forward import predict_fluorescence
-    from calcium.io import read_spike_times, write_csv
+    from calcium.io import write_csv
     out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"SPIKES": args.spikes})
     plot = (_check_new_output(args.plot, overwrite=args.overwrite, inputs={"SPIKES": args.spikes}, flag="--plot")
             if args.plot else None)
-    try:
-        spikes = read_spike_times(args.spikes)
-    except (ValueError, OSError) as exc:
-        raise _fail(args.spikes, exc) from exc
+    spikes = _read_spikes(args.spikes)
     if not spikes:
         raise CommandError(f"{args.spikes}: holds no spike times")
     kernel = _kernel_from_args(args)
@@ -431,13 +437,7 @@ def cmd_calibrate(args):
     from calcium.calibrate import calibrate_session
     data = _read_traces(args.input, args.dataset, args)
     rate = _frame_rate(args, data)
-    electrical = None
-    if args.electrical_spikes:
-        from calcium.io import read_spike_times
-        try:
-            electrical = read_spike_times(args.electrical_spikes)
-        except (ValueError, OSError) as exc:
-            raise _fail(args.electrical_spikes, exc) from exc
+    electrical = _read_spikes(args.electrical_spikes) if args.electrical_spikes else None
     out = _check_new_output(args.out, overwrite=args.overwrite,
                             inputs={"INPUT": args.input, "--electrical-spikes": args.electrical_spikes}) \
         if args.out else None
@@ -459,13 +459,10 @@ def cmd_calibrate(args):
 
 def cmd_fit_kernel(args):
     from calcium.fit import check_kinetics, fit_kernel
-    from calcium.io import read_spike_times, write_csv
+    from calcium.io import write_csv
     data = _read_traces(args.trace, args.dataset, args)
     rate = _frame_rate(args, data)
-    try:
-        spikes = read_spike_times(args.spikes)
-    except (ValueError, OSError) as exc:
-        raise _fail(args.spikes, exc) from exc
+    spikes = _read_spikes(args.spikes)
     roi = args.roi
     if not 0 <= roi < data.traces.shape[0]:
         raise CommandError(f"{args.trace}: has {data.traces.shape[0]} ROI(s); --roi {roi} is out of range")
@@ -501,14 +498,9 @@ def cmd_fit_kernel(args):
 
 
 def cmd_score(args):
-    from calcium.io import read_spike_times, write_csv
+    from calcium.io import write_csv
     from calcium.score import score_many
-    trains = []
-    for path in (args.inferred, args.true):
-        try:
-            trains.append(read_spike_times(path))
-        except (ValueError, OSError) as exc:
-            raise _fail(path, exc) from exc
+    trains = [_read_spikes(path) for path in (args.inferred, args.true)]
     if args.out:
         csv_path, png_path = _output_folder(args, "scores.csv", "scores.png",
                                             inputs={"INFERRED": args.inferred, "TRUE": args.true})
@@ -568,19 +560,13 @@ def cmd_run(args):
 
 
 def cmd_report(args):
-    from calcium.io import read_spike_times
     from calcium.pipeline import write_session_report
     out = Path(args.out)
     _protect({"RESULTS": args.results, "--electrical-spikes": args.electrical_spikes},
              files=[out / "index.html"], folders=[out / "figures"])
     if (out / "index.html").exists() and not args.overwrite:
         raise CommandError(f"{out}: already holds a report; pass --overwrite to replace it")
-    spikes = None
-    if args.electrical_spikes:
-        try:
-            spikes = read_spike_times(args.electrical_spikes)
-        except (ValueError, OSError) as exc:
-            raise _fail(args.electrical_spikes, exc) from exc
+    spikes = _read_spikes(args.electrical_spikes) if args.electrical_spikes else None
     try:
         index = write_session_report(args.results, out, electrical_spikes=spikes, indicator=args.indicator,
                                      progress=_progress(args))
