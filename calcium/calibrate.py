@@ -483,7 +483,7 @@ def _blind_kinetics(rows, frame_rate, max_rois, progress):
     from .infer.api import infer_spikes
     from .infer.estimate import estimate_noise_sd, signal_detected
 
-    order = _clearest_rois(rows, frame_rate)
+    order = _clearest_rois(rows)
     rises, decays = [], []
     for i in _bar(order, progress, "kinetics"):
         if len(decays) >= max_rois:
@@ -507,11 +507,10 @@ def _blind_kinetics(rows, frame_rate, max_rois, progress):
         decays.append(shape.decay_s)
     if not decays:
         return None
-    return (float(np.exp(np.median(np.log(np.maximum(rises, 1e-6))))) if np.any(np.asarray(rises) > 0)
-            else 0.0, float(np.exp(np.median(np.log(decays)))), rises, decays)
+    return float(np.median(rises)), float(np.median(decays)), rises, decays
 
 
-def _clearest_rois(rows, frame_rate):
+def _clearest_rois(rows):
     """ROI indices, clearest signal first: the 99th percentile of the ΔF/F over a robust noise scale
     (median absolute frame-to-frame difference, which white noise sets and slow transients barely touch)."""
     scores = np.empty(rows.shape[0])
@@ -540,8 +539,8 @@ def _paired_kinetics(rows, frame_rate, electrical, fit_options, progress):
         except ValueError as exc:
             notes.append(f"ROI {roi}: kernel fit failed ({str(exc).splitlines()[0]})")
             continue
-        if not getattr(fit, "usable", True):
-            notes.append(f"ROI {roi}: kernel fit not used ({getattr(fit, 'verdict', 'poor fit')})")
+        if not fit.usable:
+            notes.append(f"ROI {roi}: kernel fit not used ({fit.verdict})")
             continue
         fits[roi] = fit
     return fits, notes
