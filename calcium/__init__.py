@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING
 from importlib.metadata import PackageNotFoundError, version as _version
 
 try:
-    __version__ = _version("calcium")
+    __version__ = _version("calcium-counts")  # (the distribution's name; the package is `calcium`)
 except PackageNotFoundError:  # running from a source tree that is not installed
     __version__ = "0.0.0+unknown"
 
