@@ -589,12 +589,18 @@ def cmd_export_nwb(args):
 # --------------------------------------------------------------------------- parser
 
 def build_parser() -> argparse.ArgumentParser:
-    common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--quiet", action="store_true", help="no progress bars or chatter")
-    common.add_argument("--debug", action="store_true", help="show the full traceback on errors")
+    def common_options(default):
+        # before the command (`calcium --quiet infer ...`) or after it (`calcium infer ... --quiet`): the
+        # command's copy of an option has no default of its own, so it never resets what was given before it
+        common = argparse.ArgumentParser(add_help=False)
+        common.add_argument("--quiet", action="store_true", default=default, help="no progress bars or chatter")
+        common.add_argument("--debug", action="store_true", default=default,
+                            help="show the full traceback on errors")
+        return common
 
+    common = common_options(argparse.SUPPRESS)
     parser = argparse.ArgumentParser(
-        prog="calcium", parents=[common],
+        prog="calcium", parents=[common_options(False)],
         description="From calcium-imaging fluorescence to spikes: ΔF/F, zero-phase filters, indicator kernels, "
                     "forward model, exact non-negative deconvolution, kernel fitting, scoring, planning.")
     parser.add_argument("--version", action="version", version=f"calcium {_version()}")

@@ -349,3 +349,18 @@ def test_former_flag_names_are_accepted_for_one_release_and_say_so(old, new, cap
     dest = new.lstrip("-").replace("-", "_")
     assert getattr(args, dest) in (3, 3.0, [3.0])
     assert f"{old} is the former name of {new}" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("argv", [["--quiet", "indicators"], ["indicators", "--quiet"]])
+def test_common_options_work_before_and_after_the_command(argv):
+    args = build_parser().parse_args(argv)
+    assert args.quiet is True and args.debug is False
+
+
+def test_debug_before_the_command_shows_the_traceback(tmp_path):
+    from calcium.cli import CommandError
+
+    # without --debug: one line and exit code 1; with it, before the command too: the exception itself
+    assert main(["calibrate", str(tmp_path / "missing.npy"), "--frame-rate", "30"]) == 1
+    with pytest.raises(CommandError):
+        main(["--debug", "calibrate", str(tmp_path / "missing.npy"), "--frame-rate", "30"])
