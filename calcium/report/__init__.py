@@ -20,9 +20,12 @@ from .figures import (
     planner_figure,
     prediction_figure,
     raster_figure,
+    rhythm_removal_figure,
+    rhythm_spectrum_figure,
     save_figure,
     score_figure,
     stages_figure,
+    time_frequency_figure,
 )
 from .html import HtmlReport
 
@@ -42,7 +45,10 @@ __all__ = [
     "planner_figure",
     "prediction_figure",
     "raster_figure",
+    "rhythm_removal_figure",
+    "rhythm_spectrum_figure",
     "save_figure",
     "score_figure",
     "stages_figure",
+    "time_frequency_figure",
 ]

@@ -61,6 +61,9 @@ __all__ = [
     "detection_figure",
     "planner_figure",
     "plan_figure",
+    "rhythm_spectrum_figure",
+    "time_frequency_figure",
+    "rhythm_removal_figure",
     "save_figure",
     "figure_png_bytes",
 ]
@@ -1189,6 +1192,239 @@ def plan_figure(plan, *, target_probability=None) -> Figure:
                           target_probability=target_probability,
                           title=f"spike detection against frame rate (false-positive rate "
                                 f"{plan.false_positive_rate:.2g}, bars: 95 % intervals)")
+
+
+# ---------------------------------------------------------------------------
+# periodic artefacts (calcium.signal.rhythms)
+# ---------------------------------------------------------------------------
+def rhythm_spectrum_figure(freq_hz, median_power, *, background=None, low_power=None, high_power=None,
+                           after=None, coherence=None, coherence_null=None, peaks_hz=(), peak_labels=None,
+                           resolution_hz=None, title="power spectrum of the session") -> Figure:
+    """Power spectrum of a session (median over ROIs) with its background, shared peaks and coherence.
+
+    Parameters
+    ----------
+    freq_hz : array_like, shape (bins,)
+        Frequencies (Hz); 0 Hz is not drawn (logarithmic power axis).
+    median_power : array_like, shape (bins,)
+        Median over ROIs of the power spectral density (ΔF/F² / Hz).
+    background : array_like, shape (bins,), optional
+        The aperiodic background (median over ROIs), dashed.
+    low_power, high_power : array_like, shape (bins,), optional
+        A range over ROIs (e.g. the 10th and 90th percentiles), shaded.
+    after : array_like, shape (bins,), optional
+        The median spectrum after the rhythms were removed.
+    coherence : array_like, shape (bins,), optional
+        Median coherence of the ROIs with their reference; adds a panel.
+    coherence_null : float, optional
+        The coherence independent traces exceed with probability 0.01, drawn
+        as a guide in the coherence panel.
+    peaks_hz : sequence of float
+        Frequencies of the shared rhythms found, marked on both panels.
+    peak_labels : sequence of str, optional
+        One label per peak (default: its frequency).
+    resolution_hz : float, optional
+        Frequency resolution, quoted in the title.
+    title : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    freq = _vector(freq_hz, "freq_hz", finite=True, allow_empty=False)
+    n = freq.size
+    median = _vector(median_power, "median_power", length=n)
+    extra = {key: None if value is None else _vector(value, key, length=n) for key, value in
+             (("background", background), ("low_power", low_power), ("high_power", high_power), ("after", after),
+              ("coherence", coherence))}
+    peaks = list(_vector(np.atleast_1d(np.asarray(peaks_hz, dtype=np.float64)), "peaks_hz", finite=True))
+    labels = [f"{p:.3g} Hz" for p in peaks] if peak_labels is None else [str(x) for x in peak_labels]
+    if len(labels) != len(peaks):
+        raise ValueError(f"peak_labels must have one entry per peak ({len(peaks)}), got {len(labels)}")
+    title = _label(title, "title")
+    if resolution_hz is not None:
+        title += f" (resolution {check_positive(resolution_hz, 'resolution_hz'):.3g} Hz)"
+    has_coherence = extra["coherence"] is not None
+    fig = _figure(5.4 if has_coherence else 3.8)
+    axes = fig.subplots(2 if has_coherence else 1, 1, sharex=True, squeeze=False,
+                        gridspec_kw={"height_ratios": [2.2, 1.0] if has_coherence else [1.0]})[:, 0]
+    _title(fig, title)
+    keep = freq > 0
+    ax = axes[0]
+    _style(ax)
+    if extra["low_power"] is not None and extra["high_power"] is not None:
+        ax.fill_between(freq[keep], extra["low_power"][keep], extra["high_power"][keep], color=PALETTE["sand"],
+                        alpha=0.5, linewidth=0, label="ROIs, 10-90 %")
+    ax.plot(freq[keep], median[keep], color=PALETTE["ink"], linewidth=1.2, label="median over ROIs")
+    if extra["background"] is not None:
+        ax.plot(freq[keep], extra["background"][keep], color=PALETTE["orange"], linewidth=1.4, linestyle="--",
+                label="aperiodic background")
+    if extra["after"] is not None:
+        ax.plot(freq[keep], extra["after"][keep], color=PALETTE["blue"], linewidth=1.1, label="after removal")
+    ax.set_yscale("log")
+    ax.set_ylabel("power (ΔF/F² / Hz)")
+    for axis in axes:
+        for k, peak in enumerate(peaks):
+            axis.axvline(peak, color=PALETTE["plum"], linewidth=0.9, linestyle=":",
+                         label="shared rhythm" if (k == 0 and axis is ax) else None)
+    for peak, text in zip(peaks, labels):
+        ax.annotate(text, (peak, 1.0), xycoords=("data", "axes fraction"), xytext=(3, -10), textcoords="offset points",
+                    fontsize=_LEGEND_SIZE, color=PALETTE["plum"])
+    _legend(ax, ncol=2)
+    if has_coherence:
+        cax = axes[1]
+        _style(cax)
+        cax.plot(freq[keep], extra["coherence"][keep], color=PALETTE["ink"], linewidth=1.1,
+                 label="median coherence with the reference")
+        if coherence_null is not None:
+            cax.axhline(float(coherence_null), color=PALETTE["grey"], linewidth=1.0, linestyle="--",
+                        label="chance level (p = 0.01)")
+        cax.set_ylim(0.0, 1.0)
+        cax.set_ylabel("coherence")
+        _legend(cax, loc="upper right")
+    axes[-1].set_xlabel("frequency (Hz)")
+    axes[-1].set_xlim(float(freq[keep].min()) if keep.any() else 0.0, float(freq.max()))
+    return fig
+
+
+def _time_bins(n: int, most: int) -> np.ndarray:
+    """Edges of at most ``most`` equal groups of ``n`` columns (the drawing needs no more)."""
+    return np.linspace(0, n, min(n, most) + 1).round().astype(np.int64)
+
+
+def time_frequency_figure(time_s, freq_hz, values, *, reliable=None, value_label="amplitude (ΔF/F)",
+                          resolution="", log_frequency=False, title="time-frequency map", max_columns=1500) -> Figure:
+    """A spectrogram or a scalogram: values over time (x) and frequency (y), on the cividis colour map.
+
+    Parameters
+    ----------
+    time_s : array_like, shape (times,)
+        Times of the columns (s).
+    freq_hz : array_like, shape (freqs,)
+        Frequencies of the rows (Hz), increasing.
+    values : array_like, shape (freqs, times)
+        Power or amplitude; NaN is drawn blank.
+    reliable : array_like of bool, shape (freqs, times), optional
+        False where the values are disturbed by an edge (a wavelet's cone of
+        influence): drawn paler, with the boundary outlined.
+    value_label : str
+        Colour-bar label.
+    resolution : str
+        The time and frequency resolution in words, put under the title.
+    log_frequency : bool
+        Logarithmic frequency axis (for wavelets).
+    title : str
+    max_columns : int
+        Columns drawn at most; longer series are averaged in groups of
+        consecutive columns.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    time = _vector(time_s, "time_s", finite=True, allow_empty=False)
+    freq = _vector(freq_hz, "freq_hz", finite=True, allow_empty=False)
+    grid = np.asarray(values, dtype=np.float64)
+    if grid.shape != (freq.size, time.size):
+        raise ValueError(f"values must have shape (freqs, times) = ({freq.size}, {time.size}), got {grid.shape}")
+    if np.any(np.diff(freq) <= 0):
+        raise ValueError("freq_hz must increase")
+    mask = None
+    if reliable is not None:
+        mask = np.asarray(reliable, dtype=bool)
+        if mask.shape != grid.shape:
+            raise ValueError(f"reliable must have the shape of values {grid.shape}, got {mask.shape}")
+    max_columns = check_int(max_columns, "max_columns", minimum=2)
+    edges = _time_bins(time.size, max_columns)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # (a group of NaN only stays NaN)
+        shown = np.stack([np.nanmean(grid[:, a:b], axis=1) for a, b in zip(edges[:-1], edges[1:])], axis=1)
+        shown_time = np.array([time[a:b].mean() for a, b in zip(edges[:-1], edges[1:])])
+        shown_mask = None if mask is None else np.stack([mask[:, a:b].all(axis=1)
+                                                         for a, b in zip(edges[:-1], edges[1:])], axis=1)
+    fig = _figure(3.8)
+    ax = fig.add_subplot()
+    _style(ax, grid_axis="")
+    _title(fig, _label(title, "title"))
+    if resolution:
+        _panel_title(ax, _label(resolution, "resolution"))
+    finite = shown[np.isfinite(shown)]
+    top = float(np.quantile(finite, 0.995)) if finite.size else 1.0
+    image = ax.pcolormesh(shown_time, freq, shown, cmap=_SEQUENTIAL, shading="nearest", vmin=0.0,
+                          vmax=top if top > 0 else None, rasterized=True)
+    if shown_mask is not None and not shown_mask.all():
+        ax.pcolormesh(shown_time, freq, np.where(shown_mask, np.nan, 1.0), cmap="Greys", vmin=0.0, vmax=4.0,
+                      alpha=0.45, shading="nearest", rasterized=True)
+        ax.contour(shown_time, freq, shown_mask.astype(float), levels=[0.5], colors="white", linewidths=0.8)
+    if log_frequency:
+        ax.set_yscale("log")
+    colorbar = fig.colorbar(image, ax=ax, pad=0.01)
+    colorbar.set_label(_label(value_label, "value_label"), color=_TEXT, fontsize=_LABEL_SIZE)
+    colorbar.ax.tick_params(labelsize=_TICK_SIZE, colors=_FRAME, labelcolor=_TEXT)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("frequency (Hz)")
+    return fig
+
+
+def rhythm_removal_figure(frame_rate, before, after, *, spikes_before=None, spikes_after=None, start_s=0.0,
+                          duration_s=30.0, roi_label="", band_label="") -> Figure:
+    """One ROI before and after a rhythm was removed: its ΔF/F and the spikes inferred from each.
+
+    Parameters
+    ----------
+    frame_rate : float
+        Frames per second (Hz).
+    before, after : array_like, shape (frames,)
+        ΔF/F with and without the rhythm (NaN at missing frames).
+    spikes_before, spikes_after : array_like, optional
+        Spike times (s) inferred from each; a row of ticks each.
+    start_s, duration_s : float
+        The stretch of the recording drawn.
+    roi_label : str
+        Name of the ROI, put in the title.
+    band_label : str
+        What was removed ("10.0 Hz"), put in the title.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    frame_rate = check_frame_rate(frame_rate)
+    first = _trace(before, "before")
+    second = _trace(after, "after", first.size)
+    duration_s = check_positive(duration_s, "duration_s")
+    if not (isinstance(start_s, numbers.Real) and 0.0 <= start_s < first.size / frame_rate):
+        raise ValueError(f"start_s must be a time within the recording (0 to {first.size / frame_rate:g} s), got "
+                         f"{start_s!r}")
+    trains = [(name, None if times is None else _spike_times(times, name))
+              for name, times in (("spikes_before", spikes_before), ("spikes_after", spikes_after))]
+    a = int(start_s * frame_rate)
+    b = min(first.size, a + max(2, int(round(duration_s * frame_rate))))
+    time_s = np.arange(a, b) / frame_rate
+    rows = [("trace", 2.4)] + [(name, 0.55) for name, times in trains if times is not None]
+    fig = _figure(1.2 + 1.25 * sum(h for _, h in rows))
+    axes = fig.subplots(len(rows), 1, sharex=True, squeeze=False,
+                        gridspec_kw={"height_ratios": [h for _, h in rows]})[:, 0]
+    what = f" ({_label(band_label, 'band_label')})" if band_label else ""
+    _title(fig, _prefix(_label(roi_label, "roi_label"), f"before and after removing the rhythm{what}"))
+    ax = axes[0]
+    _style(ax)
+    ax.plot(time_s, first[a:b], color=PALETTE["grey"], linewidth=0.9, label="ΔF/F with the rhythm")
+    ax.plot(time_s, second[a:b], color=PALETTE["ink"], linewidth=1.0, label="after removal")
+    ax.set_ylabel("ΔF/F")
+    _legend(ax, ncol=2)
+    colours = {"spikes_before": PALETTE["orange"], "spikes_after": PALETTE["plum"]}
+    names = {"spikes_before": "inferred before", "spikes_after": "inferred after"}
+    for axis, (name, _) in zip(axes[1:], [r for r in rows[1:]]):
+        times = dict(trains)[name]
+        inside = times[(times >= time_s[0]) & (times <= time_s[-1])]
+        _style(axis, grid_axis="")
+        _ticks(axis, inside, colour=colours[name])
+        axis.set_ylabel(names[name], rotation=0, ha="right", va="center")
+        _panel_title(axis, f"{names[name]}: {times.size} spike(s) in the recording, {inside.size} shown")
+    axes[-1].set_xlabel("time (s)")
+    axes[-1].set_xlim(time_s[0], time_s[-1])
+    return fig
 
 
 # ---------------------------------------------------------------------------
