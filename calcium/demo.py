@@ -59,7 +59,7 @@ def make_demo_data(folder, *, seed: int | None = None) -> Path:
     """
     import tifffile
 
-    from calcium.forward import simulate_recording
+    from calcium.forward import BaselineModel, NoiseModel, SpikeModel, simulate_recording
     from calcium.io import atomic_output, write_spike_table
 
     sc = dict(DEMO_SCENARIO)
@@ -82,9 +82,12 @@ def make_demo_data(folder, *, seed: int | None = None) -> Path:
 
     rates = rng.uniform(0.2, 0.6, n)
     rates[sc["patched_rois"]] = 0.4  # the patched cells were chosen for being active
-    sim = simulate_recording(n, sc["duration_s"], fr, indicator=sc["indicator"], rate_hz=rates, spike_model="bursts", burst_size_mean=1.6,
-                             burst_isi_s=0.04, f0=rng.uniform(25, 70, n), bleach_fraction=0.25,
-                             bleach_tau_s=40.0, noise_sd=0.0, seed=sc["seed"])
+    sim = simulate_recording(n, sc["duration_s"], fr, indicator=sc["indicator"],
+                             spikes=SpikeModel(rate_hz=rates, spike_model="bursts", burst_size_mean=1.6,
+                                               burst_isi_s=0.04),
+                             baseline=BaselineModel(f0=rng.uniform(25, 70, n), bleach_fraction=0.25,
+                                                    bleach_tau_s=40.0),
+                             noise=NoiseModel(noise_sd=0.0), seed=sc["seed"])
     n_frames = sim.n_frames
     cell_f = sim.f0 * (1.0 + sim.dff_clean)                       # noise-free cell fluorescence
 

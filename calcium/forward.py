@@ -3,9 +3,10 @@
 :func:`predict_fluorescence` turns continuous spike times into the ΔF/F of
 each frame exactly (sub-frame spike times, point samples or exposure
 averages, optional saturation).  :func:`simulate_recording` draws spike
-trains for many ROIs, passes them through the forward model and adds the
-things a real recording has: a baseline with bleaching and drift, photon
-shot noise and detector read noise.
+trains for many ROIs (:class:`SpikeModel`), passes them through the forward
+model and adds the things a real recording has: a baseline with bleaching
+and drift (:class:`BaselineModel`), photon shot noise and detector read
+noise (:class:`NoiseModel`).
 
 Algorithm
 ---------
@@ -31,6 +32,7 @@ spike :math:`s` inside it.
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import numbers
@@ -46,7 +48,8 @@ from ._checks import (check_choice, check_frame_rate, check_int, check_memory, c
                       json_value)
 from .kernel import Kernel
 
-__all__ = ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SPIKE_MODELS"]
+__all__ = ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SpikeModel", "BaselineModel",
+           "NoiseModel", "SPIKE_MODELS"]
 
 SPIKE_MODELS = ("poisson", "renewal", "bursts")
 _RATE_MODULATIONS = (None, "sinusoid", "random")
@@ -324,7 +327,7 @@ def _predict_direct(spike_times_s, kernel: Kernel, frame_rate, n_frames, *, scan
     return kernel.saturate(linear)
 
 
-# ------------------------------------------------------------ spike trains
+# ------------------------------------------------------------ slow drift and spike trains
 def _per_roi(value, name: str, n_rois: int, check) -> np.ndarray:
     """A scalar or one value per ROI, validated by ``check(value, name)``."""
     if isinstance(value, numbers.Real) and not isinstance(value, bool):
@@ -333,6 +336,20 @@ def _per_roi(value, name: str, n_rois: int, check) -> np.ndarray:
     if arr.shape != (n_rois,):
         raise ValueError(f"{name} must be a number or one number per ROI (shape ({n_rois},)), got shape {arr.shape}")
     return np.array([check(float(v), f"{name}[{i}]") for i, v in enumerate(arr)])
+
+
+def _slow_drift(rng, n_steps: int, decay_per_step: float) -> np.ndarray:
+    """A unit-variance Ornstein-Uhlenbeck process sampled at ``n_steps`` equal steps, started at equilibrium.
+
+    Sampled exactly, the process is the AR(1) recursion ``z[k] = a z[k-1] + sqrt(1 - a**2) e[k]`` with ``a =
+    decay_per_step = exp(-step / tau)`` and ``e`` standard normal (Uhlenbeck & Ornstein 1930); the first value is
+    drawn from the stationary distribution (unit variance). The slow rate modulation and the baseline drift of
+    :func:`simulate_recording` both use it, each computing ``a`` for its own step.
+    """
+    scale = math.sqrt(1.0 - decay_per_step * decay_per_step)
+    shocks = rng.standard_normal(n_steps)
+    shocks[0] /= scale  # start in the stationary distribution
+    return lfilter([scale], [1.0, -decay_per_step], shocks)
 
 
 def _rate_profile(rng, rate, duration_s, frame_rate, modulation, depth, period_s):
@@ -347,10 +364,7 @@ def _rate_profile(rng, rate, duration_s, frame_rate, modulation, depth, period_s
         phase = rng.uniform(0.0, 2 * math.pi)
         lam = rate * (1.0 + depth * np.sin(2 * math.pi * centres / period_s + phase))
     else:  # "random": log-normal rate driven by a unit-variance Ornstein-Uhlenbeck process
-        a = math.exp(-dt / period_s)
-        noise = rng.standard_normal(n_bins)
-        noise[0] /= math.sqrt(1.0 - a * a)  # start in the stationary distribution
-        z = lfilter([math.sqrt(1.0 - a * a)], [1.0, -a], noise)
+        z = _slow_drift(rng, n_bins, math.exp(-dt / period_s))
         lam = rate * np.exp(depth * z - 0.5 * depth * depth)
     cumulative = np.concatenate(([0.0], np.cumsum(lam * np.diff(edges))))
     return edges, cumulative
@@ -386,26 +400,309 @@ def _renewal_events(rng, span, refractory, shape):
     return times[(times >= 0) & (times < span)]
 
 
-def _spike_train(rng, *, rate, duration_s, frame_rate, model, refractory_s, isi_shape, burst_size_mean,
-                 burst_isi_s, modulation, depth, period_s) -> np.ndarray:
+def _spike_train(rng, spikes: "SpikeModel", rate: float, duration_s: float, frame_rate: float) -> np.ndarray:
+    """One ROI's spike times in [0, duration_s) under ``spikes``, at mean rate ``rate``."""
     if rate == 0:
         return np.empty(0)
-    profile = _rate_profile(rng, rate, duration_s, frame_rate, modulation, depth, period_s)
+    profile = _rate_profile(rng, rate, duration_s, frame_rate, spikes.rate_modulation, spikes.rate_modulation_depth,
+                            spikes.rate_modulation_period_s)
     span = _operational_span(rate, duration_s, profile)
-    if model == "poisson":
+    if spikes.spike_model == "poisson":
         operational = np.sort(rng.uniform(0.0, span, size=rng.poisson(span)))
         times = _to_real_time(operational, rate, profile)
-    elif model == "renewal":
-        operational = _renewal_events(rng, span, refractory_s * rate, isi_shape)
+    elif spikes.spike_model == "renewal":
+        operational = _renewal_events(rng, span, spikes.refractory_s * rate, spikes.isi_shape)
         times = _to_real_time(operational, rate, profile)
     else:  # bursts: burst onsets are Poisson at rate / burst_size_mean; spikes every burst_isi_s within a burst
-        operational = np.sort(rng.uniform(0.0, span, size=rng.poisson(span / burst_size_mean)))
+        operational = np.sort(rng.uniform(0.0, span, size=rng.poisson(span / spikes.burst_size_mean)))
         onsets = _to_real_time(operational, rate, profile)
-        sizes = 1 + rng.poisson(burst_size_mean - 1.0, size=onsets.size)
+        sizes = 1 + rng.poisson(spikes.burst_size_mean - 1.0, size=onsets.size)
         which = np.repeat(np.arange(onsets.size), sizes)
         position = np.arange(which.size) - np.repeat(np.cumsum(sizes) - sizes, sizes)
-        times = np.sort(onsets[which] + position * burst_isi_s)
+        times = np.sort(onsets[which] + position * spikes.burst_isi_s)
     return times[times < duration_s]
+
+
+# ------------------------------------------------------------ parameter objects
+def _short_repr(value, limit: int = 60) -> str:
+    """``repr(value)``, cut to ``limit`` characters (a per-ROI array in a message)."""
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
+def _checked(check, value, owner: str, name: str, remedy: str):
+    """``check(value, "owner.name")``, its ValueError completed with a remedy."""
+    try:
+        return check(value, f"{owner}.{name}")
+    except ValueError as error:
+        raise ValueError(f"{error}; {remedy}") from None
+
+
+def _one_or_per_roi(value, owner: str, name: str, check, remedy: str):
+    """A number (returned as float) or one number per ROI (returned as a tuple of floats), each checked."""
+    if isinstance(value, numbers.Real) and not isinstance(value, bool):
+        return _checked(check, value, owner, name, remedy)
+    try:
+        values = np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError):
+        values = None
+    if values is None or values.ndim != 1 or values.size == 0:
+        shape = "" if values is None else f" of shape {values.shape}"
+        raise ValueError(f"{owner}.{name} must be a number or a 1-D sequence with one number per ROI, got "
+                         f"{_short_repr(value)}{shape}; {remedy}")
+    return tuple(_checked(check, float(v), owner, f"{name}[{i}]", remedy) for i, v in enumerate(values))
+
+
+def _check_fields(instance, rules: dict) -> None:
+    """Check and normalise, in place, the fields of a frozen parameter object named in ``rules``.
+
+    ``rules`` maps a field name to ``(check, remedy, kind)``: ``check(value, name)`` from :mod:`calcium._checks`,
+    the remedy its error message ends with, and ``kind`` ``"number"``, ``"optional"`` (None or a number) or
+    ``"per_roi"`` (a number or one per ROI, see :func:`_one_or_per_roi`).
+    """
+    owner = type(instance).__name__
+    for name, (check, remedy, kind) in rules.items():
+        value = getattr(instance, name)
+        if kind == "per_roi":
+            value = _one_or_per_roi(value, owner, name, check, remedy)
+        elif value is not None or kind != "optional":
+            value = _checked(check, value, owner, name, remedy)
+        object.__setattr__(instance, name, value)
+
+
+def _for_each_roi(value, name: str, n_rois: int) -> np.ndarray:
+    """A validated number or per-ROI tuple of a parameter object as one float64 value per ROI."""
+    if isinstance(value, float):
+        return np.full(n_rois, value)
+    if len(value) != n_rois:
+        raise ValueError(f"{name} has {len(value)} values but n_rois={n_rois}: give one number for every ROI or "
+                         f"exactly {n_rois} numbers, one per ROI")
+    return np.array(value)
+
+
+_SPIKE_FIELDS = {
+    "rate_hz": (check_nonnegative, "give a mean firing rate in spikes per second (0 for a silent ROI)", "per_roi"),
+    "refractory_s": (check_nonnegative, "give the renewal model's dead time in seconds, e.g. 0.002", "number"),
+    "isi_shape": (check_positive, "give the gamma shape of the intervals (1: dead-time Poisson; larger: more "
+                                  "regular)", "number"),
+    "burst_size_mean": (check_positive, "give the mean number of spikes per burst, >= 1", "number"),
+    "burst_isi_s": (check_positive, "give the interval between spikes of a burst in seconds, e.g. 0.01", "number"),
+    "rate_modulation_depth": (check_nonnegative, "give the relative depth of the modulation (0: none)", "number"),
+    "rate_modulation_period_s": (check_positive, "give the period (sinusoid) or time constant (random) of the "
+                                                 "modulation in seconds", "number"),
+}
+
+
+@dataclass(frozen=True)
+class SpikeModel:
+    """How :func:`simulate_recording` draws each ROI's spike train.
+
+    Validated when made: a bad field raises ValueError naming it, its value and what to give instead.
+
+    Attributes
+    ----------
+    rate_hz : float or tuple of float, default 1.0
+        Mean firing rate in spikes per second (>= 0): one number for every
+        ROI, or one per ROI (any 1-D sequence; stored as a tuple).
+    spike_model : {"poisson", "renewal", "bursts"}, default "poisson"
+        ``"poisson"``: Poisson process.  ``"renewal"``: intervals are a dead
+        time ``refractory_s`` plus a gamma variable of shape ``isi_shape``
+        (``isi_shape=1``: dead-time Poisson), mean interval ``1/rate_hz``.
+        ``"bursts"``: burst onsets form a Poisson process of rate ``rate_hz
+        / burst_size_mean``; a burst has ``1 + Poisson(burst_size_mean - 1)``
+        spikes ``burst_isi_s`` apart.
+    refractory_s : float, default 0.002
+        Dead time of the renewal model (>= 0, ``refractory_s * rate_hz < 1``).
+    isi_shape : float, default 1.0
+        Gamma shape of the renewal model (> 0); the interval CV is
+        ``(1 - refractory_s rate_hz) / sqrt(isi_shape)``.
+    burst_size_mean : float, default 3.0
+        Mean spikes per burst (>= 1 for ``"bursts"``, > 0 otherwise).
+    burst_isi_s : float, default 0.01
+        Interval between spikes within a burst (> 0).
+    rate_modulation : {None, "sinusoid", "random"}, default None
+        Slow modulation of the rate: ``"sinusoid"``: ``rate (1 + depth sin(2
+        pi t / period + phase))`` with a random phase per ROI (depth in
+        [0, 1]); ``"random"``: ``rate exp(depth z(t) - depth**2 / 2)``, z a
+        unit-variance Ornstein-Uhlenbeck process [2]_ with time constant
+        ``period`` (depth = s.d. of the log rate).  Applied by
+        time-rescaling [1]_: the renewal dead time and the burst onsets
+        follow the local rate.
+    rate_modulation_depth : float, default 0.5
+        ``depth`` above (>= 0; <= 1 for ``"sinusoid"``).
+    rate_modulation_period_s : float, default 10.0
+        ``period`` above, in seconds (> 0).
+
+    References
+    ----------
+    .. [1] Brown, E. N., Barbieri, R., Ventura, V., Kass, R. E. & Frank, L. M.
+       (2002). The time-rescaling theorem and its application to neural
+       spike train data analysis. Neural Comput. 14, 325-346.
+    .. [2] Uhlenbeck, G. E. & Ornstein, L. S. (1930). On the theory of the
+       Brownian motion. Phys. Rev. 36, 823-841.
+
+    Examples
+    --------
+    >>> SpikeModel(rate_hz=[0.5, 2.0], spike_model="bursts").rate_hz
+    (0.5, 2.0)
+    """
+
+    rate_hz: float | tuple[float, ...] = 1.0
+    spike_model: str = "poisson"
+    refractory_s: float = 0.002
+    isi_shape: float = 1.0
+    burst_size_mean: float = 3.0
+    burst_isi_s: float = 0.01
+    rate_modulation: str | None = None
+    rate_modulation_depth: float = 0.5
+    rate_modulation_period_s: float = 10.0
+
+    def __post_init__(self):
+        owner = type(self).__name__
+        check_choice(self.spike_model, f"{owner}.spike_model", SPIKE_MODELS)
+        check_choice(self.rate_modulation, f"{owner}.rate_modulation", _RATE_MODULATIONS)
+        _check_fields(self, _SPIKE_FIELDS)
+        top_rate = max(self.rate_hz) if isinstance(self.rate_hz, tuple) else self.rate_hz
+        if self.spike_model == "renewal" and self.refractory_s * top_rate >= 1.0:
+            raise ValueError(f"{owner}: refractory_s * rate_hz must be < 1 for the renewal model, got refractory_s="
+                             f"{self.refractory_s!r} with rate_hz up to {top_rate!r}; give a shorter refractory_s "
+                             f"or a lower rate_hz (the dead time alone would fill every interval)")
+        if self.spike_model == "bursts" and self.burst_size_mean < 1.0:
+            raise ValueError(f"{owner}.burst_size_mean must be >= 1 for the bursts model (a burst has at least one "
+                             f"spike), got {self.burst_size_mean!r}")
+        if self.rate_modulation == "sinusoid" and self.rate_modulation_depth > 1.0:
+            raise ValueError(f"{owner}.rate_modulation_depth must be in [0, 1] for a sinusoid (the rate would go "
+                             f"below 0), got {self.rate_modulation_depth!r}; use rate_modulation='random' for "
+                             f"deeper, log-normal changes")
+
+
+_BASELINE_FIELDS = {
+    "f0": (check_positive, "give the resting fluorescence in raw units (> 0), e.g. 100", "per_roi"),
+    "bleach_fraction": (check_nonnegative, "give the fraction of the baseline lost in the long run, in [0, 1)",
+                        "number"),
+    "bleach_tau_s": (check_positive, "give the bleaching time constant in seconds, e.g. 600", "number"),
+    "drift_sd": (check_nonnegative, "give the s.d. of the multiplicative drift (0: none)", "number"),
+    "drift_tau_s": (check_positive, "give the drift's time constant in seconds, e.g. 60", "number"),
+}
+
+
+@dataclass(frozen=True)
+class BaselineModel:
+    """The baseline fluorescence F0 of each simulated ROI: a start, bleaching and a slow drift.
+
+    ``F0(t) = f0 (1 - b + b exp(-t / bleach_tau_s)) exp(drift_sd z(t))``, b = ``bleach_fraction``, z a
+    unit-variance Ornstein-Uhlenbeck process [1]_ with time constant ``drift_tau_s``. Validated when made.
+
+    Attributes
+    ----------
+    f0 : float or tuple of float, default 100.0
+        Baseline fluorescence at the start (raw units, > 0): one number, or
+        one per ROI (any 1-D sequence; stored as a tuple).
+    bleach_fraction : float, default 0.0
+        Fraction of the baseline lost to bleaching in the long run, in
+        [0, 1).
+    bleach_tau_s : float, default 600.0
+        Time constant of the bleaching in seconds (> 0).
+    drift_sd : float, default 0.0
+        S.d. of the slow multiplicative drift (>= 0; 0: none).
+    drift_tau_s : float, default 60.0
+        Time constant of the drift in seconds (> 0).
+
+    References
+    ----------
+    .. [1] Uhlenbeck, G. E. & Ornstein, L. S. (1930). On the theory of the
+       Brownian motion. Phys. Rev. 36, 823-841.
+    """
+
+    f0: float | tuple[float, ...] = 100.0
+    bleach_fraction: float = 0.0
+    bleach_tau_s: float = 600.0
+    drift_sd: float = 0.0
+    drift_tau_s: float = 60.0
+
+    def __post_init__(self):
+        _check_fields(self, _BASELINE_FIELDS)
+        if self.bleach_fraction >= 1.0:
+            raise ValueError(f"{type(self).__name__}.bleach_fraction must be in [0, 1), got {self.bleach_fraction!r};"
+                             f" a fraction of 1 would bleach the baseline to zero (ΔF/F undefined): give less, "
+                             f"e.g. 0.5")
+
+
+_NOISE_FIELDS = {
+    "photons_per_frame": (check_positive, "give the photons detected per frame at the starting baseline, or None "
+                                          "for no shot noise", "optional"),
+    "read_noise_sd": (check_nonnegative, "give the detector noise s.d. in raw units (0: none)", "number"),
+    "noise_sd": (check_nonnegative, "give the Gaussian noise s.d. in ΔF/F units, or None", "optional"),
+}
+
+
+@dataclass(frozen=True)
+class NoiseModel:
+    """The measurement noise added to the noise-free fluorescence: shot noise or Gaussian ΔF/F noise, read noise.
+
+    Validated when made. With every field at its default the recording has no noise.
+
+    Attributes
+    ----------
+    photons_per_frame : float or None, default None
+        Detected photons per frame at the starting baseline (> 0).  Photon
+        counts are Poisson with mean ``photons_per_frame F / f0`` (F the
+        noise-free fluorescence) and are scaled by ``f0 /
+        photons_per_frame`` into raw units.  Excludes ``noise_sd``.
+    read_noise_sd : float, default 0.0
+        S.d. of additive Gaussian detector noise, in raw units (>= 0).
+    noise_sd : float or None, default None
+        Alternative to a photon budget: Gaussian noise with this s.d. in
+        ΔF/F units (``F0 noise_sd`` in raw units; >= 0).
+    """
+
+    photons_per_frame: float | None = None
+    read_noise_sd: float = 0.0
+    noise_sd: float | None = None
+
+    def __post_init__(self):
+        owner = type(self).__name__
+        if self.photons_per_frame is not None and self.noise_sd is not None:
+            raise ValueError(f"{owner}: give either photons_per_frame={self.photons_per_frame!r} (shot noise) or "
+                             f"noise_sd={self.noise_sd!r} (Gaussian ΔF/F noise), not both; leave the other as None")
+        _check_fields(self, _NOISE_FIELDS)
+
+
+# The keywords simulate_recording took before the parameter objects, kept for one release: each is now the
+# field of the same name of one object.
+_MODEL_OF_ARGUMENT = {"spikes": SpikeModel, "baseline": BaselineModel, "noise": NoiseModel}
+_FORMER_KEYWORDS = {field.name: argument for argument, model in _MODEL_OF_ARGUMENT.items()
+                    for field in dataclasses.fields(model)}
+
+
+def _models_from_former_keywords(former: dict, given: dict) -> dict:
+    """The parameter objects, those missing from ``given`` built from the former keywords (with a warning)."""
+    unknown = [name for name in former if name not in _FORMER_KEYWORDS]
+    if unknown:
+        raise TypeError(f"simulate_recording() got an unexpected keyword argument {unknown[0]!r}")
+    models = dict(given)
+    for argument, model in _MODEL_OF_ARGUMENT.items():
+        names = [name for name in former if _FORMER_KEYWORDS[name] == argument]
+        if not names:
+            continue
+        fields = ", ".join(f"{name}={_short_repr(former[name])}" for name in names)
+        if models[argument] is not None:
+            raise ValueError(f"simulate_recording got {argument}={_short_repr(models[argument])} and also {fields}: "
+                             f"give these inside {argument}={model.__name__}(...) only")
+        which = f"the keyword {names[0]} of simulate_recording is" if len(names) == 1 else \
+            f"the keywords {', '.join(names)} of simulate_recording are"
+        warnings.warn(f"{which} deprecated and will be removed in the next release; pass {argument}={model.__name__}({fields}) instead "
+                      f"(calcium.forward.{model.__name__})", DeprecationWarning, stacklevel=3)
+        models[argument] = model(**{name: former[name] for name in names})
+    return {argument: (model() if models[argument] is None else models[argument])
+            for argument, model in _MODEL_OF_ARGUMENT.items()}
+
+
+def _check_model(value, argument: str, model):
+    if not isinstance(value, model):
+        raise ValueError(f"{argument} must be a calcium.forward.{model.__name__}, got {type(value).__name__}: "
+                         f"pass {argument}={model.__name__}(...)")
+    return value
 
 
 # ------------------------------------------------------------ simulation
@@ -416,12 +713,7 @@ _BYTES_PER_ROI = 2048
 
 def _check_simulation_memory(n_rois: int, n_frames: int, duration_s: float, rate_hz) -> None:
     """Refuse, before anything is allocated, a simulation whose arrays exceed the available memory."""
-    try:
-        mean_rate = float(np.mean(rate_hz)) if np.size(rate_hz) else 0.0
-    except (TypeError, ValueError):
-        mean_rate = 0.0  # (a bad rate_hz is named by its own check later)
-    if not math.isfinite(mean_rate) or mean_rate < 0:
-        mean_rate = 0.0
+    mean_rate = float(np.mean(rate_hz))  # (validated by SpikeModel: finite, >= 0)
     n_bytes = (4 * 8.0 * n_rois * n_frames + _BYTES_PER_ROI * n_rois + 8.0 * mean_rate * duration_s * n_rois
                + 8.0 * _CHUNK_SAMPLES)
     check_memory(n_bytes, f"simulate_recording with n_rois={n_rois} x {n_frames} frames",
@@ -451,7 +743,10 @@ class SimulatedRecording:
     kernel : Kernel
         Single-spike response used.
     params : dict
-        Every parameter of :func:`simulate_recording` (JSON-serialisable).
+        Every parameter of :func:`simulate_recording`, the fields of its
+        ``spikes``, ``baseline`` and ``noise`` objects under their own names
+        (JSON-serialisable; tuples as lists), and ``n_frames``, ``kernel``
+        (:meth:`Kernel.to_dict`) and ``kernel_description``.
     """
 
     raw: np.ndarray
@@ -504,12 +799,9 @@ class SimulatedRecording:
         return written
 
 
-def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator=None, rate_hz=1.0,
-                       spike_model="poisson", refractory_s=0.002, isi_shape=1.0, burst_size_mean=3.0,
-                       burst_isi_s=0.01, rate_modulation=None, rate_modulation_depth=0.5,
-                       rate_modulation_period_s=10.0, f0=100.0, bleach_fraction=0.0, bleach_tau_s=600.0,
-                       drift_sd=0.0, drift_tau_s=60.0, photons_per_frame=None, read_noise_sd=0.0, noise_sd=None,
-                       scan_offsets=0.0, exposure_s=None, seed=0) -> SimulatedRecording:
+def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator=None, spikes=None, baseline=None,
+                       noise=None, scan_offsets=0.0, exposure_s=None, seed=0,
+                       **former_keywords) -> SimulatedRecording:
     """Simulate fluorescence traces of many ROIs with known spike times.
 
     Parameters
@@ -526,55 +818,15 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
         ``indicator``; with neither, the tabulated GCaMP6s kernel is used.
     indicator : str, optional
         Indicator name for :meth:`Kernel.from_indicator`.
-    rate_hz : float or array_like (n_rois,), default 1.0
-        Mean firing rate of each ROI (>= 0).
-    spike_model : {"poisson", "renewal", "bursts"}, default "poisson"
-        ``"poisson"``: Poisson process.  ``"renewal"``: intervals are a dead
-        time ``refractory_s`` plus a gamma variable of shape ``isi_shape``
-        (``isi_shape=1``: dead-time Poisson), mean interval ``1/rate_hz``.
-        ``"bursts"``: burst onsets form a Poisson process of rate ``rate_hz
-        / burst_size_mean``; a burst has ``1 + Poisson(burst_size_mean - 1)``
-        spikes ``burst_isi_s`` apart.
-    refractory_s : float, default 0.002
-        Dead time of the renewal model (``refractory_s * rate_hz < 1``).
-    isi_shape : float, default 1.0
-        Gamma shape of the renewal model (> 0); the interval CV is
-        ``(1 - refractory_s rate_hz) / sqrt(isi_shape)``.
-    burst_size_mean : float, default 3.0
-        Mean spikes per burst (>= 1).
-    burst_isi_s : float, default 0.01
-        Interval between spikes within a burst (> 0).
-    rate_modulation : {None, "sinusoid", "random"}, default None
-        Slow modulation of the rate: ``"sinusoid"``: ``rate (1 + depth sin(2
-        pi t / period + phase))`` with a random phase per ROI (depth in
-        [0, 1]); ``"random"``: ``rate exp(depth z(t) - depth**2 / 2)``, z a
-        unit-variance Ornstein-Uhlenbeck process with time constant
-        ``period`` (depth = s.d. of the log rate).  Applied by
-        time-rescaling (Brown et al. 2002): the renewal dead time and the
-        burst onsets follow the local rate.
-    rate_modulation_depth : float, default 0.5
-    rate_modulation_period_s : float, default 10.0
-    f0 : float or array_like (n_rois,), default 100.0
-        Baseline fluorescence at the start (raw units, > 0).
-    bleach_fraction : float, default 0.0
-        Fraction of the baseline lost to bleaching in the long run, in
-        [0, 1): baseline factor ``1 - b + b exp(-t / bleach_tau_s)``.
-    bleach_tau_s : float, default 600.0
-    drift_sd : float, default 0.0
-        S.d. of slow multiplicative baseline drift: factor ``exp(drift_sd
-        z(t))``, z a unit-variance Ornstein-Uhlenbeck process with time
-        constant ``drift_tau_s``.
-    drift_tau_s : float, default 60.0
-    photons_per_frame : float, optional
-        Detected photons per frame at the starting baseline.  Photon counts
-        are Poisson with mean ``photons_per_frame F / f0`` (F the noise-free
-        fluorescence) and are scaled by ``f0 / photons_per_frame`` into raw
-        units.  Excludes ``noise_sd``.
-    read_noise_sd : float, default 0.0
-        S.d. of additive Gaussian detector noise, in raw units.
-    noise_sd : float, optional
-        Alternative to a photon budget: Gaussian noise with this s.d. in
-        ΔF/F units (``f0 noise_sd`` in raw units).
+    spikes : SpikeModel, optional
+        How each ROI's spikes are drawn (rate, point process, bursts, slow
+        rate modulation); default ``SpikeModel()``: Poisson at 1 Hz.
+    baseline : BaselineModel, optional
+        Baseline fluorescence, bleaching and slow drift; default
+        ``BaselineModel()``: a constant F0 of 100.
+    noise : NoiseModel, optional
+        Shot noise or Gaussian ΔF/F noise, and read noise; default
+        ``NoiseModel()``: none.
     scan_offsets : float or array_like (n_rois,), default 0.0
         Sample time of frame k for each ROI is ``k / frame_rate + offset``,
         with ``0 <= offset < 1 / frame_rate`` (a delay within the frame).
@@ -582,9 +834,16 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
         Exposure of each frame (see :func:`predict_fluorescence`).
     seed : int, default 0
         Seed of :class:`numpy.random.SeedSequence`; each ROI gets its own
-        child streams (one for spikes, one for noise), so ROI i does not
-        depend on ``n_rois`` and the spikes do not depend on the noise
-        settings.
+        child streams (one for spikes, one for baseline drift and noise), so
+        ROI i does not depend on ``n_rois`` and the spikes do not depend on
+        the baseline or noise settings.
+    **former_keywords
+        Deprecated, kept for one release: the fields of :class:`SpikeModel`,
+        :class:`BaselineModel` and :class:`NoiseModel` given as keywords,
+        as before (``rate_hz=``, ``spike_model=``, ``f0=``, ``noise_sd=``,
+        ...).  They build the object they belong to, with a
+        DeprecationWarning naming it, and give the same recording; they
+        cannot be combined with that object.
 
     Returns
     -------
@@ -593,67 +852,59 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     Raises
     ------
     ValueError
-        Bad arguments, naming them; and a request whose arrays would not fit
-        in the memory available (estimated before anything is allocated:
-        four float64 arrays of ``n_rois x n_frames``, the expected spike
-        times and about 2 kB per ROI of bookkeeping, measured).
+        Bad arguments, naming them; a per-ROI field of ``spikes`` or
+        ``baseline`` whose length is not ``n_rois``; and a request whose
+        arrays would not fit in the memory available (estimated before
+        anything is allocated: four float64 arrays of ``n_rois x n_frames``,
+        the expected spike times and about 2 kB per ROI of bookkeeping,
+        measured).
+
+    Notes
+    -----
+    The noise-free fluorescence of a ROI is ``F0(t) (1 + dff_clean(t))``,
+    ``dff_clean`` the forward model of its spikes
+    (:func:`predict_fluorescence`, with saturation), F0 from ``baseline``;
+    ``noise`` is then added to it.  The slow rate modulation and the
+    baseline drift are the same unit-variance Ornstein-Uhlenbeck process
+    [1]_, sampled exactly (each with its own time constant and step).
 
     References
     ----------
-    .. [1] Brown, E. N., Barbieri, R., Ventura, V., Kass, R. E. & Frank, L. M.
-       (2002). The time-rescaling theorem and its application to neural
-       spike train data analysis. Neural Comput. 14, 325-346.
-    .. [2] Uhlenbeck, G. E. & Ornstein, L. S. (1930). On the theory of the
+    .. [1] Uhlenbeck, G. E. & Ornstein, L. S. (1930). On the theory of the
        Brownian motion. Phys. Rev. 36, 823-841.
 
     Examples
     --------
-    >>> rec = simulate_recording(2, 10.0, 30.0, indicator="GCaMP6f", rate_hz=2.0, noise_sd=0.05, seed=1)
+    >>> rec = simulate_recording(2, 10.0, 30.0, indicator="GCaMP6f", spikes=SpikeModel(rate_hz=2.0),
+    ...                          noise=NoiseModel(noise_sd=0.05), seed=1)
     >>> rec.raw.shape
     (2, 300)
     """
-    arguments = dict(locals())  # every parameter, before any is normalised
-    params = {key: json_value(value) for key, value in arguments.items() if key != "kernel"}
+    models = _models_from_former_keywords(former_keywords, {"spikes": spikes, "baseline": baseline, "noise": noise})
+    spikes = _check_model(models["spikes"], "spikes", SpikeModel)
+    baseline = _check_model(models["baseline"], "baseline", BaselineModel)
+    noise = _check_model(models["noise"], "noise", NoiseModel)
+    params = {"n_rois": n_rois, "duration_s": duration_s, "frame_rate": frame_rate, "indicator": indicator}
+    for model in (spikes, baseline, noise):
+        params.update({field.name: getattr(model, field.name) for field in dataclasses.fields(model)})
+    params.update(former_keywords)  # (a deprecated keyword is recorded as given, as it was before the objects)
+    params.update(scan_offsets=scan_offsets, exposure_s=exposure_s, seed=seed)
+    params = {key: json_value(list(value) if isinstance(value, tuple) else value) for key, value in params.items()}
+
     n_rois = check_int(n_rois, "n_rois", minimum=1)
     duration_s = check_positive(duration_s, "duration_s")
     frame_rate = check_frame_rate(frame_rate)
     n_frames = int(round(duration_s * frame_rate))
     if n_frames < 1:
         raise ValueError(f"duration_s * frame_rate must give at least one frame, got {duration_s * frame_rate!r}")
-    _check_simulation_memory(n_rois, n_frames, duration_s, rate_hz)
+    _check_simulation_memory(n_rois, n_frames, duration_s, spikes.rate_hz)
     if kernel is not None and indicator is not None:
         raise ValueError("give either kernel or indicator, not both")
     if kernel is None:
         kernel = Kernel.from_indicator(indicator if indicator is not None else "GCaMP6s")
     kernel = _check_kernel(kernel)
-    rates = _per_roi(rate_hz, "rate_hz", n_rois, check_nonnegative)
-    check_choice(spike_model, "spike_model", SPIKE_MODELS)
-    refractory_s = check_nonnegative(refractory_s, "refractory_s")
-    isi_shape = check_positive(isi_shape, "isi_shape")
-    burst_size_mean = check_positive(burst_size_mean, "burst_size_mean")
-    burst_isi_s = check_positive(burst_isi_s, "burst_isi_s")
-    if spike_model == "renewal" and np.any(refractory_s * rates >= 1.0):
-        raise ValueError(f"refractory_s * rate_hz must be < 1 for the renewal model, got refractory_s="
-                         f"{refractory_s!r} with rate_hz up to {rates.max()!r}")
-    if spike_model == "bursts" and burst_size_mean < 1.0:
-        raise ValueError(f"burst_size_mean must be >= 1, got {burst_size_mean!r}")
-    check_choice(rate_modulation, "rate_modulation", _RATE_MODULATIONS)
-    depth = check_nonnegative(rate_modulation_depth, "rate_modulation_depth")
-    if rate_modulation == "sinusoid" and depth > 1.0:
-        raise ValueError(f"rate_modulation_depth must be in [0, 1] for a sinusoid, got {depth!r}")
-    period_s = check_positive(rate_modulation_period_s, "rate_modulation_period_s")
-    f0_start = _per_roi(f0, "f0", n_rois, check_positive)
-    bleach_fraction = check_nonnegative(bleach_fraction, "bleach_fraction")
-    if bleach_fraction >= 1.0:
-        raise ValueError(f"bleach_fraction must be in [0, 1), got {bleach_fraction!r}")
-    bleach_tau_s = check_positive(bleach_tau_s, "bleach_tau_s")
-    drift_sd = check_nonnegative(drift_sd, "drift_sd")
-    drift_tau_s = check_positive(drift_tau_s, "drift_tau_s")
-    if photons_per_frame is not None and noise_sd is not None:
-        raise ValueError("give either photons_per_frame (shot noise) or noise_sd (Gaussian ΔF/F noise), not both")
-    photons = None if photons_per_frame is None else check_positive(photons_per_frame, "photons_per_frame")
-    noise_sd = None if noise_sd is None else check_nonnegative(noise_sd, "noise_sd")
-    read_noise_sd = check_nonnegative(read_noise_sd, "read_noise_sd")
+    rates = _for_each_roi(spikes.rate_hz, "spikes.rate_hz", n_rois)
+    f0_start = _for_each_roi(baseline.f0, "baseline.f0", n_rois)
     offsets = _per_roi(scan_offsets, "scan_offsets", n_rois,
                        lambda value, name: _check_scan_offset(value, frame_rate, name))
     exposure_s = _check_exposure(exposure_s, frame_rate)
@@ -665,18 +916,12 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     spike_times = []
     for roi in range(n_rois):
         rng = np.random.default_rng(streams[roi][0])
-        spike_times.append(_spike_train(
-            rng, rate=float(rates[roi]), duration_s=recording_s, frame_rate=frame_rate, model=spike_model,
-            refractory_s=refractory_s, isi_shape=isi_shape, burst_size_mean=burst_size_mean,
-            burst_isi_s=burst_isi_s, modulation=rate_modulation, depth=depth, period_s=period_s))
+        spike_times.append(_spike_train(rng, spikes, float(rates[roi]), recording_s, frame_rate))
 
     raw = np.empty((n_rois, n_frames))
     dff = np.empty((n_rois, n_frames))
     dff_clean = np.empty((n_rois, n_frames))
     f0_true = np.empty((n_rois, n_frames))
-    frame_times = np.arange(n_frames) / frame_rate
-    bleach = 1.0 - bleach_fraction + bleach_fraction * np.exp(-frame_times / bleach_tau_s)
-    drift_a = math.exp(-1.0 / (drift_tau_s * frame_rate))
     chunk = max(1, _CHUNK_SAMPLES // n_frames)
     for start in range(0, n_rois, chunk):
         stop = min(n_rois, start + chunk)
@@ -687,27 +932,29 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
                               offsets[start:stop][rows], exposure_s)
         dff_clean[start:stop] = kernel.saturate(linear)
     del linear
+    frame_times = np.arange(n_frames) / frame_rate
+    bleach = (1.0 - baseline.bleach_fraction
+              + baseline.bleach_fraction * np.exp(-frame_times / baseline.bleach_tau_s))
+    drift_a = math.exp(-1.0 / (baseline.drift_tau_s * frame_rate))
+    photons, noise_sd = noise.photons_per_frame, noise.noise_sd
     for roi in range(n_rois):
         rng = np.random.default_rng(streams[roi][1])
-        baseline = f0_start[roi] * bleach
-        if drift_sd > 0:
-            shocks = rng.standard_normal(n_frames)
-            shocks[0] /= math.sqrt(1.0 - drift_a * drift_a)  # stationary start
-            z = lfilter([math.sqrt(1.0 - drift_a * drift_a)], [1.0, -drift_a], shocks)
-            baseline = baseline * np.exp(drift_sd * z)
-        f0_true[roi] = baseline
-        clean = baseline * (1.0 + dff_clean[roi])
+        f0_row = f0_start[roi] * bleach
+        if baseline.drift_sd > 0:
+            f0_row = f0_row * np.exp(baseline.drift_sd * _slow_drift(rng, n_frames, drift_a))
+        f0_true[roi] = f0_row
+        clean = f0_row * (1.0 + dff_clean[roi])
         if photons is not None:
             counts = rng.poisson(photons / f0_start[roi] * clean)
             row = counts * (f0_start[roi] / photons)
         elif noise_sd is not None:
-            row = clean + (noise_sd * baseline) * rng.standard_normal(n_frames)
+            row = clean + (noise_sd * f0_row) * rng.standard_normal(n_frames)
         else:
             row = clean
-        if read_noise_sd > 0:
-            row = row + read_noise_sd * rng.standard_normal(n_frames)
+        if noise.read_noise_sd > 0:
+            row = row + noise.read_noise_sd * rng.standard_normal(n_frames)
         raw[roi] = row
-        np.divide(row, baseline, out=dff[roi])
+        np.divide(row, f0_row, out=dff[roi])
         dff[roi] -= 1.0
     return SimulatedRecording(raw=raw, dff=dff, dff_clean=dff_clean, f0=f0_true, spike_times=spike_times,
                               frame_rate=frame_rate, kernel=kernel, params=params)

@@ -1,4 +1,5 @@
 """Tests of calcium.forward: exact forward model and the simulated recordings."""
+import dataclasses
 import inspect
 import json
 import math
@@ -9,8 +10,9 @@ import pytest
 from scipy.integrate import quad
 from scipy.optimize import minimize_scalar
 
-from calcium.forward import (_linear_rows, _linear_rows_lfilter, _predict_direct, _run_recursions,
-                             predict_fluorescence, simulate_recording, summed_response)
+from calcium.forward import (BaselineModel, NoiseModel, SpikeModel, _linear_rows, _linear_rows_lfilter,
+                             _predict_direct, _run_recursions, _slow_drift, predict_fluorescence, simulate_recording,
+                             summed_response)
 from calcium.kernel import Kernel
 
 
@@ -218,8 +220,10 @@ def test_no_spikes_give_a_flat_zero_trace():
 
 # ------------------------------------------------------------ simulation
 def test_simulated_recording_has_the_documented_fields_and_is_reproducible():
-    kwargs = dict(indicator="GCaMP6f", rate_hz=2.0, photons_per_frame=50.0, read_noise_sd=0.5,
-                  bleach_fraction=0.3, drift_sd=0.05, scan_offsets=np.linspace(0, 0.03, 5), seed=11)
+    kwargs = dict(indicator="GCaMP6f", spikes=SpikeModel(rate_hz=2.0),
+                  noise=NoiseModel(photons_per_frame=50.0, read_noise_sd=0.5),
+                  baseline=BaselineModel(bleach_fraction=0.3, drift_sd=0.05), scan_offsets=np.linspace(0, 0.03, 5),
+                  seed=11)
     a = simulate_recording(5, 30.0, 30.0, **kwargs)
     b = simulate_recording(5, 30.0, 30.0, **kwargs)
     for name in ("raw", "dff", "dff_clean", "f0"):
@@ -229,7 +233,7 @@ def test_simulated_recording_has_the_documented_fields_and_is_reproducible():
     c = simulate_recording(5, 30.0, 30.0, **{**kwargs, "seed": 12})
     assert not np.array_equal(a.raw, c.raw)
     # spikes come from their own random stream: changing the noise leaves them unchanged
-    d = simulate_recording(5, 30.0, 30.0, **{**kwargs, "photons_per_frame": None, "noise_sd": 0.1})
+    d = simulate_recording(5, 30.0, 30.0, **{**kwargs, "noise": NoiseModel(noise_sd=0.1)})
     for x, y in zip(a.spike_times, d.spike_times):
         np.testing.assert_array_equal(x, y)
     # ROI i does not depend on how many ROIs are simulated
@@ -237,19 +241,26 @@ def test_simulated_recording_has_the_documented_fields_and_is_reproducible():
     np.testing.assert_array_equal(e.raw, a.raw[:2])
 
 
-def test_params_record_every_argument_and_are_json_serialisable():
-    rec = simulate_recording(2, 5.0, 20.0, rate_hz=[1.0, 2.0], noise_sd=0.1, seed=1)
-    for name in inspect.signature(simulate_recording).parameters:
-        assert name in rec.params
-    assert rec.params["rate_hz"] == [1.0, 2.0] and rec.params["n_frames"] == 100
+def test_params_record_every_argument_and_every_field_of_the_parameter_objects_and_are_json_serialisable():
+    rec = simulate_recording(2, 5.0, 20.0, spikes=SpikeModel(rate_hz=[1.0, 2.0]), noise=NoiseModel(noise_sd=0.1),
+                             seed=1)
+    objects = {"spikes": SpikeModel, "baseline": BaselineModel, "noise": NoiseModel}
+    for name, parameter in inspect.signature(simulate_recording).parameters.items():
+        if name in objects:
+            for field in dataclasses.fields(objects[name]):
+                assert field.name in rec.params
+        elif parameter.kind is not parameter.VAR_KEYWORD:
+            assert name in rec.params
+    assert rec.params["rate_hz"] == [1.0, 2.0] and rec.params["noise_sd"] == 0.1 and rec.params["n_frames"] == 100
+    assert rec.params["spike_model"] == "poisson" and rec.params["f0"] == 100.0
     json.dumps(rec.params)
 
 
 def test_clean_dff_is_the_forward_model_of_the_returned_spikes():
     offsets = np.array([0.0, 0.01, 0.02])
     kernel = Kernel(0.03, 0.3, 0.2, dff_max=3.0, hill_n=2.0, hill_k=2.0)
-    rec = simulate_recording(3, 20.0, 30.0, kernel=kernel, rate_hz=3.0, scan_offsets=offsets, exposure_s=0.02,
-                             seed=5)
+    rec = simulate_recording(3, 20.0, 30.0, kernel=kernel, spikes=SpikeModel(rate_hz=3.0), scan_offsets=offsets,
+                             exposure_s=0.02, seed=5)
     for roi in range(3):
         expected = predict_fluorescence(rec.spike_times[roi], kernel, 30.0, 600, scan_offset_s=offsets[roi],
                                         exposure_s=0.02)
@@ -257,8 +268,8 @@ def test_clean_dff_is_the_forward_model_of_the_returned_spikes():
 
 
 def test_noise_free_recording_is_baseline_times_one_plus_dff_with_exact_bleaching():
-    rec = simulate_recording(2, 60.0, 10.0, rate_hz=1.0, f0=[50.0, 80.0], bleach_fraction=0.4, bleach_tau_s=20.0,
-                             seed=2)
+    rec = simulate_recording(2, 60.0, 10.0, spikes=SpikeModel(rate_hz=1.0),
+                             baseline=BaselineModel(f0=[50.0, 80.0], bleach_fraction=0.4, bleach_tau_s=20.0), seed=2)
     t = np.arange(600) / 10.0
     bleach = 0.6 + 0.4 * np.exp(-t / 20.0)  # documented bleaching curve
     np.testing.assert_allclose(rec.f0, np.array([50.0, 80.0])[:, None] * bleach, rtol=1e-14)
@@ -268,7 +279,8 @@ def test_noise_free_recording_is_baseline_times_one_plus_dff_with_exact_bleachin
 
 def test_shot_noise_variance_equals_its_mean():
     photons, n_frames = 20.0, 100_000
-    rec = simulate_recording(2, n_frames / 100.0, 100.0, rate_hz=0.0, f0=[100.0, 7.0], photons_per_frame=photons,
+    rec = simulate_recording(2, n_frames / 100.0, 100.0, spikes=SpikeModel(rate_hz=0.0),
+                             baseline=BaselineModel(f0=[100.0, 7.0]), noise=NoiseModel(photons_per_frame=photons),
                              seed=8)
     for roi, f0 in enumerate((100.0, 7.0)):
         counts = rec.raw[roi] * photons / f0
@@ -283,7 +295,8 @@ def test_shot_noise_variance_equals_its_mean():
 
 def test_gaussian_dff_noise_has_the_requested_sd():
     n_frames, sd = 40_000, 0.07
-    rec = simulate_recording(1, n_frames / 50.0, 50.0, rate_hz=0.5, noise_sd=sd, bleach_fraction=0.5, seed=9)
+    rec = simulate_recording(1, n_frames / 50.0, 50.0, spikes=SpikeModel(rate_hz=0.5), noise=NoiseModel(noise_sd=sd),
+                             baseline=BaselineModel(bleach_fraction=0.5), seed=9)
     residual = rec.dff[0] - rec.dff_clean[0]
     # Sampling s.d. of a Gaussian sample s.d. is sigma / sqrt(2 (n - 1)) (handbook); allow 5 s.d.
     assert abs(residual.std(ddof=1) - sd) < 5 * sd / math.sqrt(2 * (n_frames - 1))
@@ -291,7 +304,7 @@ def test_gaussian_dff_noise_has_the_requested_sd():
 
 def test_poisson_spike_counts_match_the_rate():
     n_rois, duration, rate = 40, 200.0, 2.5
-    rec = simulate_recording(n_rois, duration, 10.0, rate_hz=rate, seed=13)
+    rec = simulate_recording(n_rois, duration, 10.0, spikes=SpikeModel(rate_hz=rate), seed=13)
     total = sum(t.size for t in rec.spike_times)
     expected = n_rois * duration * rate
     assert abs(total - expected) < 5 * math.sqrt(expected)  # Poisson: variance = mean
@@ -301,8 +314,8 @@ def test_poisson_spike_counts_match_the_rate():
 
 def test_renewal_intervals_respect_the_dead_time_and_have_gamma_moments():
     rate, refractory, shape = 5.0, 0.05, 4.0
-    rec = simulate_recording(20, 300.0, 10.0, rate_hz=rate, spike_model="renewal", refractory_s=refractory,
-                             isi_shape=shape, seed=14)
+    rec = simulate_recording(20, 300.0, 10.0, spikes=SpikeModel(rate_hz=rate, spike_model="renewal",
+                                                              refractory_s=refractory, isi_shape=shape), seed=14)
     intervals = np.concatenate([np.diff(t) for t in rec.spike_times])
     assert intervals.min() >= refractory * (1 - 1e-9)
     # Interval = dead time + Gamma(shape, mean 1/rate - dead time): mean 1/rate, s.d. (1/rate - dead time)/sqrt(shape)
@@ -313,8 +326,8 @@ def test_renewal_intervals_respect_the_dead_time_and_have_gamma_moments():
 
 def test_bursts_have_the_requested_intra_burst_interval_and_mean_rate():
     rate, size, isi = 2.0, 4.0, 0.008
-    rec = simulate_recording(20, 300.0, 10.0, rate_hz=rate, spike_model="bursts", burst_size_mean=size,
-                             burst_isi_s=isi, seed=15)
+    rec = simulate_recording(20, 300.0, 10.0, spikes=SpikeModel(rate_hz=rate, spike_model="bursts",
+                                                              burst_size_mean=size, burst_isi_s=isi), seed=15)
     intervals = np.concatenate([np.diff(t) for t in rec.spike_times])
     at_isi = np.mean(np.abs(intervals - isi) < 1e-9)
     assert at_isi > 0.7  # (size - 1) / size = 0.75 of intervals lie within bursts, minus a few overlaps
@@ -327,8 +340,9 @@ def test_bursts_have_the_requested_intra_burst_interval_and_mean_rate():
 
 def test_sinusoidal_rate_modulation_has_the_requested_depth():
     rate, depth, period, duration, n_rois = 5.0, 0.8, 4.0, 2000.0, 6
-    rec = simulate_recording(n_rois, duration, 10.0, rate_hz=rate, rate_modulation="sinusoid",
-                             rate_modulation_depth=depth, rate_modulation_period_s=period, seed=16)
+    rec = simulate_recording(n_rois, duration, 10.0, spikes=SpikeModel(
+        rate_hz=rate, rate_modulation="sinusoid", rate_modulation_depth=depth, rate_modulation_period_s=period),
+        seed=16)
     # Campbell's theorem: E[sum exp(2 pi i s / P)] = integral of rate(t) exp(2 pi i t / P) dt, of modulus
     # rate depth T / 2 (whatever the phase); the component along it has variance N / 2 (N = expected count).
     moduli = [abs(np.exp(2j * np.pi * train / period).sum()) for train in rec.spike_times]
@@ -338,9 +352,9 @@ def test_sinusoidal_rate_modulation_has_the_requested_depth():
 
 def test_random_rate_modulation_keeps_the_mean_rate_and_overdisperses_counts():
     rate = 4.0
-    flat = simulate_recording(10, 400.0, 10.0, rate_hz=rate, seed=17)
-    modulated = simulate_recording(10, 400.0, 10.0, rate_hz=rate, rate_modulation="random",
-                                   rate_modulation_depth=1.0, rate_modulation_period_s=5.0, seed=17)
+    flat = simulate_recording(10, 400.0, 10.0, spikes=SpikeModel(rate_hz=rate), seed=17)
+    modulated = simulate_recording(10, 400.0, 10.0, spikes=SpikeModel(
+        rate_hz=rate, rate_modulation="random", rate_modulation_depth=1.0, rate_modulation_period_s=5.0), seed=17)
 
     def fano(rec):
         counts = np.array([np.histogram(t, bins=np.arange(0, 401, 2.0))[0] for t in rec.spike_times])
@@ -353,22 +367,136 @@ def test_random_rate_modulation_keeps_the_mean_rate_and_overdisperses_counts():
 
 
 @pytest.mark.parametrize("kwargs, name", [
-    ({"photons_per_frame": 10.0, "noise_sd": 0.1}, "photons_per_frame"),
     ({"kernel": Kernel(0.05, 0.5), "indicator": "GCaMP6s"}, "kernel"),
-    ({"spike_model": "gamma"}, "spike_model"),
-    ({"spike_model": "renewal", "refractory_s": 0.5, "rate_hz": 3.0}, "refractory_s"),
-    ({"rate_hz": -1.0}, "rate_hz"),
-    ({"rate_hz": [1.0, 2.0, 3.0]}, "rate_hz"),
-    ({"bleach_fraction": 1.0}, "bleach_fraction"),
-    ({"rate_modulation": "square"}, "rate_modulation"),
-    ({"rate_modulation": "sinusoid", "rate_modulation_depth": 1.5}, "rate_modulation_depth"),
-    ({"spike_model": "bursts", "burst_size_mean": 0.5}, "burst_size_mean"),
+    ({"spikes": SpikeModel(rate_hz=[1.0, 2.0, 3.0])}, r"spikes\.rate_hz has 3 values but n_rois=2"),
+    ({"baseline": BaselineModel(f0=[10.0])}, r"baseline\.f0 has 1 values but n_rois=2"),
+    ({"spikes": {"rate_hz": 2.0}}, r"spikes must be a calcium\.forward\.SpikeModel, got dict"),
+    ({"noise": 0.1}, r"noise must be a calcium\.forward\.NoiseModel"),
     ({"seed": -1}, "seed"),
     ({"indicator": "GCaMP99"}, "GCaMP99"),
 ])
 def test_bad_simulation_arguments_raise_value_error_naming_them(kwargs, name):
     with pytest.raises(ValueError, match=name):
         simulate_recording(2, 10.0, 10.0, **kwargs)
+
+
+@pytest.mark.parametrize("model, fields, pattern", [
+    (NoiseModel, {"photons_per_frame": 10.0, "noise_sd": 0.1}, r"either photons_per_frame=10\.0 .* or noise_sd=0\.1"),
+    (NoiseModel, {"photons_per_frame": 0.0}, r"NoiseModel\.photons_per_frame .* got 0\.0; give the photons"),
+    (NoiseModel, {"read_noise_sd": -1.0}, r"NoiseModel\.read_noise_sd .* got -1\.0; give"),
+    (NoiseModel, {"noise_sd": float("nan")}, r"NoiseModel\.noise_sd .* got nan; give"),
+    (SpikeModel, {"spike_model": "gamma"}, r"SpikeModel\.spike_model must be one of 'poisson', 'renewal', 'bursts'; "
+                                          r"got 'gamma'"),
+    (SpikeModel, {"spike_model": "renewal", "refractory_s": 0.5, "rate_hz": 3.0},
+     r"refractory_s \* rate_hz must be < 1 .* refractory_s=0\.5 with rate_hz up to 3\.0; give a shorter"),
+    (SpikeModel, {"rate_hz": -1.0}, r"SpikeModel\.rate_hz must be .* got -1\.0; give a mean firing rate"),
+    (SpikeModel, {"rate_hz": [1.0, -2.0]}, r"SpikeModel\.rate_hz\[1\] must be .* got -2\.0; give"),
+    (SpikeModel, {"rate_hz": [[1.0, 2.0]]},
+     r"SpikeModel\.rate_hz must be a number or a 1-D sequence .* shape \(1, 2\)"),
+    (SpikeModel, {"rate_hz": "fast"}, r"SpikeModel\.rate_hz must be a number or a 1-D sequence .* 'fast'"),
+    (SpikeModel, {"rate_modulation": "square"}, r"SpikeModel\.rate_modulation must be one of None, 'sinusoid'"),
+    (SpikeModel, {"rate_modulation": "sinusoid", "rate_modulation_depth": 1.5},
+     r"SpikeModel\.rate_modulation_depth must be in \[0, 1\] for a sinusoid .* got 1\.5; use"),
+    (SpikeModel, {"spike_model": "bursts", "burst_size_mean": 0.5}, r"SpikeModel\.burst_size_mean must be >= 1 .*0\.5"),
+    (SpikeModel, {"burst_isi_s": 0.0}, r"SpikeModel\.burst_isi_s .* got 0\.0; give"),
+    (SpikeModel, {"isi_shape": -1}, r"SpikeModel\.isi_shape .* got -1; give"),
+    (SpikeModel, {"rate_modulation_period_s": 0.0}, r"SpikeModel\.rate_modulation_period_s .* got 0\.0; give"),
+    (BaselineModel, {"bleach_fraction": 1.0}, r"BaselineModel\.bleach_fraction must be in \[0, 1\), got 1\.0; "),
+    (BaselineModel, {"f0": [100.0, 0.0]}, r"BaselineModel\.f0\[1\] must be a positive .* got 0\.0; give"),
+    (BaselineModel, {"drift_sd": -0.1}, r"BaselineModel\.drift_sd .* got -0\.1; give"),
+    (BaselineModel, {"drift_tau_s": float("inf")}, r"BaselineModel\.drift_tau_s .* got inf; give"),
+    (BaselineModel, {"bleach_tau_s": True}, r"BaselineModel\.bleach_tau_s .* got True; give"),
+])
+def test_a_parameter_object_refuses_a_bad_field_naming_it_its_value_and_a_remedy(model, fields, pattern):
+    with pytest.raises(ValueError, match=pattern):
+        model(**fields)
+
+
+def test_parameter_objects_are_frozen_normalised_and_hashable():
+    spikes = SpikeModel(rate_hz=np.array([1, 2.5]), refractory_s=np.float32(0.25))
+    assert spikes.rate_hz == (1.0, 2.5) and all(type(v) is float for v in spikes.rate_hz)
+    assert type(spikes.refractory_s) is float and spikes.refractory_s == 0.25
+    assert BaselineModel(f0=50).f0 == 50.0 and type(BaselineModel(f0=50).f0) is float
+    assert spikes == SpikeModel(rate_hz=[1.0, 2.5], refractory_s=0.25) and hash(spikes) == hash(
+        SpikeModel(rate_hz=[1.0, 2.5], refractory_s=0.25))
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        spikes.rate_hz = 3.0
+    assert NoiseModel() == NoiseModel(photons_per_frame=None, read_noise_sd=0.0, noise_sd=None)
+
+
+# The call of the old interface and its translation into the parameter objects, field by field.
+_FORMER_CALL = dict(rate_hz=[0.5, 2, 1.5], spike_model="renewal", refractory_s=0.01, isi_shape=2.0,
+                    rate_modulation="random", rate_modulation_depth=0.4, rate_modulation_period_s=6.0,
+                    f0=np.array([40.0, 60.0, 90.0]), bleach_fraction=0.2, bleach_tau_s=50.0, drift_sd=0.1,
+                    drift_tau_s=8.0, photons_per_frame=80.0, read_noise_sd=0.3)
+
+
+def test_former_keywords_still_work_for_one_release_with_a_warning_and_give_the_same_recording():
+    new = simulate_recording(3, 20.0, 15.0, indicator="jGCaMP8m", seed=4, spikes=SpikeModel(
+        rate_hz=[0.5, 2, 1.5], spike_model="renewal", refractory_s=0.01, isi_shape=2.0, rate_modulation="random",
+        rate_modulation_depth=0.4, rate_modulation_period_s=6.0), baseline=BaselineModel(
+        f0=np.array([40.0, 60.0, 90.0]), bleach_fraction=0.2, bleach_tau_s=50.0, drift_sd=0.1, drift_tau_s=8.0),
+        noise=NoiseModel(photons_per_frame=80.0, read_noise_sd=0.3))
+    with pytest.warns(DeprecationWarning) as caught:
+        old = simulate_recording(3, 20.0, 15.0, indicator="jGCaMP8m", seed=4, **_FORMER_CALL)
+    messages = [str(w.message) for w in caught if w.category is DeprecationWarning]
+    assert len(messages) == 3  # one per parameter object
+    assert any("pass spikes=SpikeModel(rate_hz=[0.5, 2, 1.5], spike_model='renewal'" in m for m in messages)
+    assert any("pass baseline=BaselineModel(f0=array(" in m for m in messages)
+    assert any("pass noise=NoiseModel(photons_per_frame=80.0, read_noise_sd=0.3)" in m for m in messages)
+    assert all("removed in the next release" in m for m in messages)
+    for name in ("raw", "dff", "dff_clean", "f0"):
+        assert np.array_equal(getattr(old, name), getattr(new, name))
+    assert all(np.array_equal(a, b) for a, b in zip(old.spike_times, new.spike_times))
+    # the parameters are those of the old interface, value for value (recorded as given, as they were)
+    assert old.params == new.params and json.dumps(old.params["rate_hz"]) == "[0.5, 2, 1.5]"
+    # the warning points at the caller, not at the package
+    assert all(w.filename == __file__ for w in caught)
+
+
+def test_a_former_keyword_cannot_be_mixed_with_its_parameter_object_and_an_unknown_keyword_is_a_type_error():
+    with pytest.raises(ValueError, match=r"also rate_hz=2\.0: give these inside spikes=SpikeModel\(\.\.\.\) only"):
+        simulate_recording(2, 10.0, 10.0, spikes=SpikeModel(), rate_hz=2.0)
+    with pytest.raises(TypeError, match="unexpected keyword argument 'rate'"):
+        simulate_recording(2, 10.0, 10.0, rate=2.0)
+    # another object's keywords may still be given the old way (with their warning)
+    with pytest.warns(DeprecationWarning, match=r"noise=NoiseModel\(noise_sd=0\.1\)"):
+        mixed = simulate_recording(2, 10.0, 10.0, spikes=SpikeModel(rate_hz=2.0), noise_sd=0.1, seed=3)
+    new = simulate_recording(2, 10.0, 10.0, spikes=SpikeModel(rate_hz=2.0), noise=NoiseModel(noise_sd=0.1), seed=3)
+    assert np.array_equal(mixed.raw, new.raw)
+
+
+def test_the_new_interface_emits_no_deprecation_warning():
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        simulate_recording(2, 10.0, 10.0, spikes=SpikeModel(rate_hz=2.0), baseline=BaselineModel(drift_sd=0.1),
+                           noise=NoiseModel(noise_sd=0.1), seed=3)
+
+
+def test_slow_drift_is_a_stationary_unit_variance_first_order_autoregression():
+    # Sampled exactly, a unit-variance Ornstein-Uhlenbeck process is AR(1) with coefficient a = exp(-step/tau):
+    # variance 1 from the first sample on and autocorrelation a**k at lag k (Uhlenbeck & Ornstein 1930; Box &
+    # Jenkins 1976 for the AR(1) moments).  20,000 independent paths of 50 steps.
+    a, n_paths, n_steps = math.exp(-0.1), 20_000, 50
+    rng = np.random.default_rng(0)
+    paths = np.array([_slow_drift(rng, n_steps, a) for _ in range(n_paths)])
+    tolerance = 5 / math.sqrt(n_paths)  # ~5 sampling s.d. of a variance or correlation near 1 (Gaussian)
+    for step in (0, 1, 25, 49):
+        assert paths[:, step].mean() == pytest.approx(0.0, abs=tolerance)
+        assert paths[:, step].var() == pytest.approx(1.0, abs=3 * tolerance)
+    for lag in (1, 5, 20):
+        correlation = np.mean(paths[:, 10] * paths[:, 10 + lag])
+        assert correlation == pytest.approx(a ** lag, abs=3 * tolerance)
+
+
+def test_baseline_drift_is_the_slow_drift_of_the_rois_noise_stream():
+    # The drift and the rate modulation share one generator: rebuild a ROI's drift from its documented stream
+    # (child 1 of the ROI's seed sequence) and the step coefficient exp(-1 / (drift_tau_s frame_rate)).
+    rec = simulate_recording(2, 30.0, 20.0, spikes=SpikeModel(rate_hz=0.0),
+                             baseline=BaselineModel(f0=70.0, drift_sd=0.2, drift_tau_s=4.0), seed=12)
+    stream = np.random.SeedSequence(12).spawn(2)[1].spawn(2)[1]
+    drift = _slow_drift(np.random.default_rng(stream), 600, math.exp(-1.0 / (4.0 * 20.0)))
+    assert np.array_equal(rec.f0[1], 70.0 * np.exp(0.2 * drift))
 
 
 def test_a_simulation_too_large_for_the_machine_is_refused_before_anything_is_allocated():
@@ -388,7 +516,7 @@ def test_a_simulation_too_large_for_the_machine_is_refused_before_anything_is_al
 def test_save_writes_traces_spikes_and_parameters(tmp_path):
     from calcium.io import read_spike_times, read_traces
 
-    rec = simulate_recording(3, 10.0, 20.0, rate_hz=2.0, noise_sd=0.05, seed=21)
+    rec = simulate_recording(3, 10.0, 20.0, spikes=SpikeModel(rate_hz=2.0), noise=NoiseModel(noise_sd=0.05), seed=21)
     written = rec.save(tmp_path / "sim")
     folder = tmp_path / "sim"
     assert set(written) == {"raw", "dff", "dff_clean", "f0", "spikes", "parameters"}
