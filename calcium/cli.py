@@ -369,7 +369,8 @@ def cmd_predict(args):
         raise _fail(args.spikes, exc) from exc
     if out.suffix.lower() == ".csv":
         t = np.arange(n_frames) / args.frame_rate
-        write_csv(out, ["time_s"] + [f"roi{r}" for r in rois], np.column_stack([t, pred.T]).tolist())
+        # (columns named as every trace CSV the tool writes: time_s, roi_<index>)
+        write_csv(out, ["time_s"] + [f"roi_{r}" for r in rois], np.column_stack([t, pred.T]).tolist())
     else:
         _write_traces(out, pred, frame_rate=args.frame_rate, inputs=(args.spikes,),
                       attrs={"kernel": json.dumps(kernel.to_dict()), "rois": json.dumps(rois)})
@@ -379,6 +380,7 @@ def cmd_predict(args):
         save_figure(prediction_figure(args.frame_rate, None, pred[0], spikes[rois[0]],
                                       roi_label=f"ROI {rois[0]}"), plot)
         _say(args, f"plot -> {plot}")
+
 
 
 def cmd_infer(args):

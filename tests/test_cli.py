@@ -364,3 +364,13 @@ def test_debug_before_the_command_shows_the_traceback(tmp_path):
     assert main(["calibrate", str(tmp_path / "missing.npy"), "--frame-rate", "30"]) == 1
     with pytest.raises(CommandError):
         main(["--debug", "calibrate", str(tmp_path / "missing.npy"), "--frame-rate", "30"])
+
+
+def test_predict_with_a_plot_writes_both_and_names_columns_as_the_other_commands(tmp_path):
+    # (the plot used to fail after the output was written; columns were roi0 here and roi_0 elsewhere)
+    spikes = write_spike_table(tmp_path / "s.csv", {0: np.array([1.0, 2.5]), 3: np.array([0.5])})
+    out, plot = tmp_path / "p.csv", tmp_path / "p.png"
+    assert main(["predict", str(spikes), "--frame-rate", "30", "--indicator", "GCaMP6f", "--out", str(out),
+                 "--plot", str(plot), "--quiet"]) == 0
+    assert plot.stat().st_size > 0
+    assert out.read_text().splitlines()[0] == "time_s,roi_0,roi_3"

@@ -619,9 +619,12 @@ def prediction_figure(frame_rate, recorded_dff, predicted_dff, spike_times, *, r
     ----------
     frame_rate : float
         Frames per second (Hz).
-    recorded_dff, predicted_dff : array_like, shape (frames,)
-        Recorded and predicted ΔF/F. NaN in the recording marks missing frames
-        (shaded, and left out of the correlation in the title).
+    recorded_dff : array_like, shape (frames,), or None
+        Recorded ΔF/F (NaN marks missing frames: shaded, and left out of the
+        correlation in the title); None draws the prediction alone (no
+        residual panel).
+    predicted_dff : array_like, shape (frames,)
+        Predicted ΔF/F.
     spike_times : array_like
         Spike times (s) the prediction was made from.
     roi_label : str
@@ -633,37 +636,45 @@ def prediction_figure(frame_rate, recorded_dff, predicted_dff, spike_times, *, r
     """
     frame_rate = check_frame_rate(frame_rate)
     roi_label = _label(roi_label, "roi_label")
-    recorded = _trace(recorded_dff, "recorded_dff")
-    n = recorded.size
-    predicted = _trace(predicted_dff, "predicted_dff", n)
+    predicted = _trace(predicted_dff, "predicted_dff")
+    n = predicted.size
+    recorded = None if recorded_dff is None else _trace(recorded_dff, "recorded_dff")
+    if recorded is not None and recorded.size != n:
+        raise ValueError(f"recorded_dff and predicted_dff must have the same number of frames, got {recorded.size} "
+                         f"and {n}")
     spikes = _spike_times(spike_times, "spike_times")
     time_s = np.arange(n) / frame_rate
-    mask = ~np.isfinite(recorded)
-    r = _pearson(recorded, predicted)
-    fig = _figure(5.4)
-    axes = fig.subplots(3, 1, sharex=True, gridspec_kw={"height_ratios": [2.6, 1.2, 0.6]})
-    _title(fig, _prefix(roi_label, "recorded and predicted ΔF/F" + ("" if math.isnan(r) else f" (r = {r:.3f})")))
-    ax = axes[0]
-    _style(ax)
+    fig = _figure(5.4 if recorded is not None else 4.0)
+    if recorded is None:  # a prediction alone: ΔF/F and the spikes it was made from
+        axes = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [2.6, 0.6]})
+        _title(fig, _prefix(roi_label, "ΔF/F predicted from spikes"))
+        top, spike_ax = axes
+    else:
+        axes = fig.subplots(3, 1, sharex=True, gridspec_kw={"height_ratios": [2.6, 1.2, 0.6]})
+        mask = ~np.isfinite(recorded)
+        r = _pearson(recorded, predicted)
+        _title(fig, _prefix(roi_label, "recorded and predicted ΔF/F" + ("" if math.isnan(r) else
+                                                                        f" (r = {r:.3f})")))
+        top, residual_ax, spike_ax = axes
+    _style(top)
     # the thin recording is drawn over the thick prediction so both stay visible
-    ax.plot(time_s, predicted, color=PALETTE["orange"], linewidth=1.8, label="predicted from spikes")
-    ax.plot(time_s, recorded, color=PALETTE["ink"], linewidth=0.7, label="recorded")
-    _shade_missing(ax, frame_rate, mask, label=True)
-    ax.set_ylabel("ΔF/F")
-    _legend(ax, ncol=3)
-    ax = axes[1]
-    _style(ax)
-    ax.axhline(0.0, color=_FRAME, linewidth=0.6)
-    ax.plot(time_s, recorded - predicted, color=PALETTE["grey"], linewidth=0.8)
-    _shade_missing(ax, frame_rate, mask, label=False)
-    ax.set_ylabel("residual\n(ΔF/F)")
-    ax = axes[2]
-    _style(ax, grid_axis="x")
-    _ticks(ax, spikes, colour=PALETTE["plum"])
-    ax.set_ylabel("spikes", rotation=0, ha="right", va="center")
-    _panel_title(ax, f"spikes used for the prediction: {spikes.size}")
-    ax.set_xlabel("time (s)")
-    ax.set_xlim(time_s[0] - 0.5 / frame_rate, time_s[-1] + 0.5 / frame_rate)
+    top.plot(time_s, predicted, color=PALETTE["orange"], linewidth=1.8, label="predicted from spikes")
+    if recorded is not None:
+        top.plot(time_s, recorded, color=PALETTE["ink"], linewidth=0.7, label="recorded")
+        _shade_missing(top, frame_rate, mask, label=True)
+        _style(residual_ax)
+        residual_ax.axhline(0.0, color=_FRAME, linewidth=0.6)
+        residual_ax.plot(time_s, recorded - predicted, color=PALETTE["grey"], linewidth=0.8)
+        _shade_missing(residual_ax, frame_rate, mask, label=False)
+        residual_ax.set_ylabel("residual\n(ΔF/F)")
+    top.set_ylabel("ΔF/F")
+    _legend(top, ncol=3)
+    _style(spike_ax, grid_axis="x")
+    _ticks(spike_ax, spikes, colour=PALETTE["plum"])
+    spike_ax.set_ylabel("spikes", rotation=0, ha="right", va="center")
+    _panel_title(spike_ax, f"spikes used for the prediction: {spikes.size}")
+    spike_ax.set_xlabel("time (s)")
+    spike_ax.set_xlim(time_s[0] - 0.5 / frame_rate, time_s[-1] + 0.5 / frame_rate)
     return fig
 
 
