@@ -14,7 +14,8 @@ import pytest
 import scipy.signal
 from hypothesis import given, settings, strategies as st
 
-from calcium.infer.ar import ar_objective, deconvolve_ar, reference_deconvolve_ar
+from calcium.infer._reference import deconvolve_ar_reference
+from calcium.infer.ar import ar_objective, deconvolve_ar
 
 
 def ar_calcium(spikes, g):
@@ -114,7 +115,7 @@ def test_kkt_conditions_hold_at_the_solution(order, baseline):
 @pytest.mark.parametrize("min_spike", [0.0, 0.4])
 @pytest.mark.parametrize("weighted", [True, False])
 def test_plain_python_reference_agrees_with_numba(order, baseline, min_spike, weighted):
-    # reference: the same algorithm written in plain Python (calcium.infer.ar.reference_deconvolve_ar); unit
+    # reference: the same algorithm written in plain Python (calcium.infer._reference.deconvolve_ar_reference); unit
     # weights take the numba kernels' unit-weight paths (pool sums from tables, a specialised AR(2) pass)
     rng, y, g = random_problem(40 + order, order, T=70)
     weights = None
@@ -122,7 +123,7 @@ def test_plain_python_reference_agrees_with_numba(order, baseline, min_spike, we
         weights = rng.uniform(0.5, 1.5, y.size)
         weights[[10, 33]] = 0.0
     fast = deconvolve_ar(y, g, penalty=0.25, baseline=baseline, weights=weights, min_spike=min_spike)
-    c, s, b = reference_deconvolve_ar(y, g, penalty=0.25, baseline=baseline, weights=weights, min_spike=min_spike)
+    c, s, b = deconvolve_ar_reference(y, g, penalty=0.25, baseline=baseline, weights=weights, min_spike=min_spike)
     np.testing.assert_allclose(fast.calcium, c, atol=1e-9)
     np.testing.assert_allclose(fast.spikes, s, atol=1e-9)
     assert abs(fast.baseline - b) <= 1e-9
@@ -225,7 +226,8 @@ def test_the_residual_of_the_affine_pools_is_the_quadratic_in_the_penalty_it_is_
     # Reference: the residual written out term by term, sum w (y - b' - c)^2 expanded over the pools
     # (syy - 2 b' sy + b'^2 W - 2 sum(v dy + p ey) + 2 b' sum(v h + p f) + sum(v^2 a + 2 v p b + p^2 c)),
     # at (v, p, b') = x0 - lam x1, evaluated directly at several penalties.
-    from calcium.infer import ar
+    from calcium.infer import _state
+    from calcium.infer._support import pools_rss_quadratic
 
     rng = np.random.default_rng(4)
     n = 7
@@ -235,11 +237,12 @@ def test_the_residual_of_the_affine_pools_is_the_quadratic_in_the_penalty_it_is_
 
     def residual(lam):
         v, p, b = pv0 - lam * pv1, pp0 - lam * pp1, b0 - lam * b1
-        return (syy - 2 * b * sy + b * b * sums[ar._SW].sum() - 2 * np.sum(v * sums[ar._DY] + p * sums[ar._EY])
-                + 2 * b * np.sum(v * sums[ar._H] + p * sums[ar._F])
-                + np.sum(v * v * sums[ar._A] + 2 * v * p * sums[ar._B] + p * p * sums[ar._C]))
+        return (syy - 2 * b * sy + b * b * sums[_state.SW].sum() - 2 * np.sum(v * sums[_state.DY] + p * sums[_state.EY])
+                + 2 * b * np.sum(v * sums[_state.H] + p * sums[_state.F])
+                + np.sum(v * v * sums[_state.A] + 2 * v * p * sums[_state.B] + p * p * sums[_state.C]))
 
-    c0, c1, c2 = ar._pools_rss_quadratic(n, pv0, pp0, pv1, pp1, b0, b1, sums, syy, sy)
+    pools = _state.Pools(sums, np.empty((4, n)), pv0, pp0, pv1, pp1)
+    c0, c1, c2 = pools_rss_quadratic(n, pools, b0, b1, syy, sy)
     for lam in (0.0, 0.3, 1.7, -2.5):
         assert c0 + c1 * lam + c2 * lam * lam == pytest.approx(residual(lam), rel=1e-12, abs=1e-12)
 
@@ -249,19 +252,19 @@ def test_kernel_tables_of_a_longer_trace_from_a_shorter_one(g):
     # Reference: the AR(2) impulse response h_k = g1 h_{k-1} + g2 h_{k-2} (Box & Jenkins 1976) written out in
     # plain Python, and its prefix sums of h_k^2 with numpy; the tables for 36000 frames taken from those of
     # an 8192-frame block (the kernel has decayed to 0 within it) must equal the ones computed afresh.
-    from calcium.infer import ar
+    from calcium.infer import _response
 
     g1, g2 = g
-    saved = dict(ar._KERNEL_CACHE)
+    saved = dict(_response._CACHE)
     try:
-        ar._KERNEL_CACHE.clear()
-        ar._kernel_tables(g1, g2, 8192)
-        h, n_nonzero, tab = ar._kernel_tables(g1, g2, 36000)
-        ar._KERNEL_CACHE.clear()
-        h_new, n_new, tab_new = ar._kernel_tables(g1, g2, 36000)
+        _response._CACHE.clear()
+        _response.response_for(g1, g2, 8192)
+        _, _, h, n_nonzero, tab = _response.response_for(g1, g2, 36000)
+        _response._CACHE.clear()
+        _, _, h_new, n_new, tab_new = _response.response_for(g1, g2, 36000)
     finally:
-        ar._KERNEL_CACHE.clear()
-        ar._KERNEL_CACHE.update(saved)
+        _response._CACHE.clear()
+        _response._CACHE.update(saved)
     assert n_nonzero == n_new < 8192
     assert h.shape == h_new.shape == (36001,) and not h.flags.writeable
     np.testing.assert_array_equal(h, h_new)

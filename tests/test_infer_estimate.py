@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 from calcium.forward import simulate_recording
-from calcium.infer.ar import _Work, _prepare_weights, _solve
+from calcium.infer._driver import Workspace, prepare_weights, solve
 from calcium.infer.estimate import (_autocovariance, _coefficient_derivative, _coefficients_from_times,
-                                    _event_support, _least_squares, _project_out, _solve_small,
+                                    _event_support, _least_squares, _solve_small,
                                     _times_from_coefficients, _yule_walker,
                                     estimate_ar_coefficients, estimate_noise_sd, penalty_for_noise,
                                     signal_detected)
@@ -133,14 +133,14 @@ def test_kinetics_gradient_matches_finite_differences():
     # the non-negative fit on a fixed support, against the gradient -2 r' dc/dtheta used by the Gauss-Newton
     # steps (spikes held: the optimal spikes and baseline need no derivative)
     rec = simulate_recording(1, 60.0, 30.0, indicator="GCaMP6f", rate_hz=1.0, noise_sd=0.03, seed=9)
-    y, w, unit, _ = _prepare_weights(rec.dff[0], None)
+    y, w, unit, _ = prepare_weights(rec.dff[0], None)
     support = np.zeros(y.size, dtype=bool)
     support[np.round(rec.spike_times[0] * 30.0).astype(int)] = True
     support[0] = True
 
     def fit(theta):
         g = _coefficients_from_times(math.exp(theta[0]), math.exp(theta[1]), 30.0, 2)
-        c, _, b, _, _ = _solve(y, w, unit, g, 0.0, "fit", 0.0, support=support, allowed=support)
+        c, _, b, _, _ = solve(y, w, unit, g, 0.0, "fit", 0.0, support=support, allowed=support)
         return float(np.sum((y - b - c) ** 2)), c, b, g
 
     theta = np.log([0.03, 0.25])
@@ -174,7 +174,7 @@ def test_projection_removes_the_least_squares_fit_by_a_constant_and_the_pool_res
         A = np.array(cols).T
         sw = np.sqrt(w) if weighted else np.ones(T)
         coef, *_ = np.linalg.lstsq(A * sw[:, None], x * sw, rcond=None)
-        got = _project_out(x, w, not weighted, g[0], g[1], _Work(T), starts, free0, 1e-13)
+        got = Workspace(T).project_out(x, w, not weighted, g[0], g[1], starts, free0, 1e-13)
         np.testing.assert_allclose(got, x - A @ coef, atol=1e-10)
 
 

@@ -23,7 +23,7 @@ import numpy as np
 from numba import njit
 
 from .._checks import MissingFrames, as_traces, check_frame_rate, check_int, check_positive, require_some_data
-from .ar import _check_baseline, _check_penalty, _objective, _prepare_weights, _scratch, _solve
+from ._driver import check_baseline, check_penalty, objective, prepare_weights, reused_workspace, solve
 from .counts import SpikeUnit, _spike_unit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
     quantal_size
 from .estimate import MAX_KINETICS_FRAMES, _estimate_kinetics, _search_penalty, estimate_noise_sd, signal_detected
@@ -218,8 +218,8 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
     kernel = _resolve_kernel(kernel, indicator, None if spike_size is None else check_positive(spike_size,
                                                                                                 "spike_size"))
     if penalty is not None:
-        penalty = _check_penalty(penalty)
-    baseline = _check_baseline(baseline)
+        penalty = check_penalty(penalty)
+    baseline = check_baseline(baseline)
     order = check_int(order, "order", minimum=1, maximum=2)
     threshold = check_positive(threshold, "threshold")
     observed = y[~missing.mask] if missing.any else y
@@ -253,10 +253,10 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
                              frame_weights)
 
     if frame_weights is None and not missing.any:
-        # (every frame finite, no weights: what _prepare_weights returns, without a second finiteness pass)
+        # (every frame finite, no weights: what prepare_weights returns, without a second finiteness pass)
         yc, w, unit_w, n_obs = y_lin, np.ones(0), True, y_lin.size
     else:
-        yc, w, unit_w, n_obs = _prepare_weights(y_lin, frame_weights)
+        yc, w, unit_w, n_obs = prepare_weights(y_lin, frame_weights)
     lam_hint = b_hint = None
     if kernel is not None:
         g = kernel.ar_coefficients(frame_rate)
@@ -269,7 +269,7 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
                                                    MAX_KINETICS_FRAMES)
     # penalised deconvolution, then the refit; one scratch space for both (the trace's filtered copy and data
     # scale are shared), reused by the next call
-    with _scratch(yc.size) as work:
+    with reused_workspace(yc.size) as work:
         return _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_sd, penalty, baseline,
                                      spike_size, threshold, missing, lam_hint, b_hint, work)
 
@@ -277,8 +277,6 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
 def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_sd, penalty, baseline, spike_size,
                           threshold, missing, lam_hint, b_hint, work):
     """The penalised deconvolution, its refit on the support and the spike counts (see infer_spikes)."""
-    g1 = float(g[0])
-    g2 = float(g[1]) if g.size > 1 else 0.0
     # (the arrays of a solve are the work's own until its next solve: used before that)
     if penalty is None:
         # (the penalty and baseline found on the block where the kinetics were estimated are good first guesses)
@@ -286,14 +284,14 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
                                                            start=lam_hint, b0=b_hint, work=work, copy=False)
     else:
         lam = penalty
-        c, s, b, its, conv = _solve(yc, w, unit_w, g, lam, baseline, 0.0, work=work, copy=False)
-    objective = float(_objective(yc, w, unit_w, g1, g2, lam, b, c, s))
+        c, s, b, its, conv = solve(yc, w, unit_w, g, lam, baseline, 0.0, work=work, copy=False)
+    objective_value = float(objective(yc, w, unit_w, lam, b, c, s))
 
     # refit without penalty on the support (undo the shrinkage)
     support = s > 0
     if support.any():
-        c_fit, s_fit, b_fit, its_fit, _ = _solve(yc, w, unit_w, g, 0.0, baseline, 0.0, b0=b, support=support,
-                                                 allowed=support, work=work, copy=False)
+        c_fit, s_fit, b_fit, its_fit, _ = solve(yc, w, unit_w, g, 0.0, baseline, 0.0, b0=b, support=support,
+                                                allowed=support, work=work, copy=False)
         its += its_fit
     else:
         c_fit, s_fit, b_fit = c, s, b
@@ -317,7 +315,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
             if q is None:
                 denoised = _denoised(kernel, b_fit, c_fit)
                 res = _nothing_found(y, frame_rate, missing, None, noise_sd, b_fit, g)
-                return _replace(res, denoised=denoised, penalty=lam, converged=conv, objective=objective,
+                return _replace(res, denoised=denoised, penalty=lam, converged=conv, objective=objective_value,
                                 iterations=its)
             amplitude = q / per_amplitude.size
             kernel = shape.scaled(amplitude)
@@ -334,7 +332,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
     lag = int(round(unit.lag_frames))
     return SpikeInference(activity=_shift(activity, lag), spike_times=spike_times, spike_counts=spike_counts,
                           denoised=_denoised(kernel, b_fit, c_fit), baseline=float(b_fit), noise_sd=float(noise_sd),
-                          kernel=kernel, penalty=float(lam), converged=bool(conv), objective=objective,
+                          kernel=kernel, penalty=float(lam), converged=bool(conv), objective=objective_value,
                           iterations=int(its), missing=missing, coefficients=np.asarray(g, dtype=np.float64),
                           spike_size=float(unit.size))
 
@@ -395,7 +393,7 @@ def _convex_refit(y, kernel, frame_rate, baseline, support, weights=None):
 
     from .convex import ConvexDeconvolution
 
-    yc, w, unit_w, _ = _prepare_weights(np.asarray(y, dtype=np.float64), weights)
+    yc, w, unit_w, _ = prepare_weights(np.asarray(y, dtype=np.float64), weights)
     T = yc.size
     w = np.ones(T) if unit_w else w
     cols = np.flatnonzero(support)

@@ -42,7 +42,8 @@ import numpy as np
 import scipy  # scipy.sparse loads on first use (the AR path never needs it)
 
 from .._checks import as_traces, check_frame_rate, check_positive
-from .ar import _check_baseline, _check_penalty, _prepare_weights, check_ar_coefficients
+from ._driver import check_baseline, check_penalty, prepare_weights
+from .ar import check_ar_coefficients
 
 __all__ = ["ConvexDeconvolution", "deconvolve_convex", "kernel_operator"]
 
@@ -233,10 +234,10 @@ def deconvolve_convex(y, kernel_or_impulse_response, *, frame_rate=None, penalty
         raise ValueError("give penalty (penalised form) or noise_sd (noise-constrained form)")
     if penalty is not None and noise_sd is not None:
         raise ValueError("give only one of penalty and noise_sd")
-    lam = _check_penalty(penalty) if penalty is not None else None
+    lam = check_penalty(penalty) if penalty is not None else None
     sigma = check_positive(noise_sd, "noise_sd") if noise_sd is not None else None
-    baseline = _check_baseline(baseline)
-    y, w, unit, n_obs = _prepare_weights(y, weights)
+    baseline = check_baseline(baseline)
+    y, w, unit, n_obs = prepare_weights(y, weights)
     T = y.size
     if unit:
         w = np.ones(T)

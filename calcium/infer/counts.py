@@ -34,7 +34,8 @@ import numpy as np
 from numba import njit
 
 from .._checks import check_frame_rate, check_positive
-from .ar import _KERNEL_CACHE, _prepare_weights, _solve, check_ar_coefficients
+from ._driver import prepare_weights, response_energy, solve
+from .ar import check_ar_coefficients
 
 __all__ = ["SpikeUnit", "spike_unit", "quantal_size", "refit_on_support", "events_to_spikes", "activity_events",
            "event_sizes", "merge_gap_frames"]
@@ -216,11 +217,11 @@ def refit_on_support(y, coefficients, support, *, baseline="fit", weights=None):
     """
     y = np.asarray(y, dtype=np.float64)
     g = check_ar_coefficients(coefficients)
-    y, w, unit, _ = _prepare_weights(y, weights)
+    y, w, unit, _ = prepare_weights(y, weights)
     support = np.asarray(support, dtype=bool)
     if support.shape != y.shape:
         raise ValueError(f"support must have the trace's shape {y.shape}, got {support.shape}")
-    c, s, b, _, _ = _solve(y, w, unit, g, 0.0, baseline, 0.0, support=support, allowed=support)
+    c, s, b, _, _ = solve(y, w, unit, g, 0.0, baseline, 0.0, support=support, allowed=support)
     return c, s, b
 
 
@@ -367,22 +368,4 @@ def event_noise_size(coefficients, noise_sd: float, n_frames: int) -> float:
     noise_sd = check_positive(noise_sd, "noise_sd")
     g1, g2 = float(g[0]), float(g[1]) if g.size > 1 else 0.0
     n = int(min(max(n_frames, 2), 1_000_000))
-    if (g1, g2, n) in _KERNEL_CACHE:  # sum h^2 is the last prefix sum of the kernel's tables
-        return noise_sd / math.sqrt(float(_KERNEL_CACHE[(g1, g2, n)][2][0, -1]))
-    return noise_sd / math.sqrt(_impulse_energy(g1, g2, n))
-
-
-@njit(cache=True)
-def _impulse_energy(g1, g2, n):
-    """sum of h_k^2 over the first n frames of the AR impulse response (stops once it has decayed away)."""
-    h1 = 1.0
-    h2 = 0.0
-    total = 1.0
-    for _ in range(1, n):
-        x = g1 * h1 + g2 * h2
-        h2 = h1
-        h1 = x
-        total += x * x
-        if abs(x) < 1e-150 and abs(h2) < 1e-150:
-            break
-    return total
+    return noise_sd / math.sqrt(response_energy(g1, g2, n))

@@ -38,9 +38,8 @@ import numpy as np
 from numba import njit
 
 from .._checks import as_traces, check_frame_rate, check_int, check_positive
-from .ar import (_OK, PREVIOUS, ARDeconvolution, _at_penalty, _backward_filter, _check_baseline, _fill,
-                 _match_penalty, _objective, _pool_sums, _pools_solve, _prepare_weights, _solve, _Work,
-                 check_ar_coefficients)
+from ._driver import PREVIOUS, Workspace, backward_filter, check_baseline, objective, prepare_weights, solve
+from .ar import ARDeconvolution, check_ar_coefficients
 
 __all__ = ["estimate_noise_sd", "estimate_ar_coefficients", "penalty_for_noise", "PenaltySearch",
            "signal_detected", "MAX_ESTIMATION_FRAMES"]
@@ -170,7 +169,7 @@ def signal_detected(y, noise_sd, *, lags=3, z=5.0, max_frames=MAX_ESTIMATION_FRA
     y = as_traces(y, "y")
     sigma = check_positive(noise_sd, "noise_sd")
     yb = y[_central_block(y.size, max_frames)]
-    yc, w, unit, n_obs = _prepare_weights(yb, None)
+    yc, w, unit, n_obs = prepare_weights(yb, None)
     observed = np.ones(yc.size, dtype=bool) if unit else w > 0
     lags = min(lags, max(1, yc.size // 4))
     gamma = _autocovariance(yc, observed, lags)
@@ -323,7 +322,7 @@ def _max_useful_penalty(y, w, unit, g, b):
     z = np.empty(y.size + 2)
     g1 = float(g[0])
     g2 = float(g[1]) if g.size > 1 else 0.0
-    _backward_filter(y if unit else w * (y - b), b if unit else 0.0, g1, g2, z, np.empty(y.size + 1))
+    backward_filter(y if unit else w * (y - b), b if unit else 0.0, g1, g2, z, np.empty(y.size + 1))
     return max(float(np.max(z[:y.size])), 0.0)
 
 
@@ -342,7 +341,7 @@ class _PenaltyEngine:
         self.baseline = baseline
         self.fit_b = isinstance(baseline, str)
         self.T = y.size
-        self.work = work or _Work(self.T)
+        self.work = work or Workspace(self.T)
         self.g1 = float(g[0])
         self.g2 = float(g[1]) if g.size > 1 else 0.0
         self.warm = False
@@ -357,9 +356,9 @@ class _PenaltyEngine:
         if target is not None:
             bb = self.work.level(self.y, self.w, self.unit, self.fit_b, 0.0 if self.fit_b else float(self.baseline))
             match = (target, *self._level_sums(bb))
-        c, s, b, its, conv = _solve(self.y, self.w, self.unit, self.g, lam, self.baseline, 0.0, b0=self.b,
-                                    support=PREVIOUS if self.warm else None, work=self.work,
-                                    presolved=self.presolved, match=match, copy=False)
+        c, s, b, its, conv = solve(self.y, self.w, self.unit, self.g, lam, self.baseline, 0.0, b0=self.b,
+                                   support=PREVIOUS if self.warm else None, work=self.work,
+                                   presolved=self.presolved, match=match, copy=False)
         self.lam = self.work.lam
         self.solves += 1
         self.warm = True
@@ -368,29 +367,20 @@ class _PenaltyEngine:
         rss = _weighted_rss(self.y, self.w, self.unit, b, c)
         return c, s, b, its, conv, rss
 
-    def affine_penalty(self, target, scale=None):
+    def affine_penalty(self, target):
         """Penalty at which the residual, with the current support held, equals ``target`` (or None).
 
-        The pools at that penalty are left in the work for the next solve
-        (see _match_penalty).
+        The pools at that penalty are left in the workspace for the next
+        solve (see Workspace.penalty_on_support).
         """
-        work = self.work
         y, w, unit = self.y, self.w, self.unit
-        n, free0 = work.n_pools, work.free0
-        h, _, tab = work.kernel(self.g1, self.g2)
         b_fixed = 0.0 if self.fit_b else float(self.baseline)
-        bb = work.level(y, w, unit, self.fit_b, b_fixed)
-        zy, tail = work.filtered(y, w, unit, bb, self.g1, self.g2)
-        _, _, tiny = work.tolerance_parts(y, w, unit)
-        _pool_sums(y, w, unit, self.g1, self.g2, h, tab, zy, tail, bb, self.fit_b, work.starts, n, work.sums)
-        lam, b0, b1, solved = _match_penalty(self.T, self.g1, self.g2, h, work.starts, n, free0, self.fit_b,
-                                             b_fixed - bb, self.lam if scale is None else scale, work.sums, work.dp,
-                                             work.pv, work.pp, work.pv1, work.pp1, *self._level_sums(bb), target,
-                                             tiny)
-        if not (solved and lam == lam):
+        bb = self.work.level(y, w, unit, self.fit_b, b_fixed)
+        found = self.work.penalty_on_support(y, w, unit, self.g1, self.g2, self.fit_b, b_fixed, target,
+                                             *self._level_sums(bb))
+        if found is None:
             return None
-        _at_penalty(n, work.pv, work.pp, work.pv1, work.pp1, lam)
-        self.b = bb + b0 - lam * b1 if self.fit_b else b_fixed
+        lam, self.b = found
         self.presolved = True
         return lam
 
@@ -436,8 +426,7 @@ def _search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESI
     if start is not None and start > 0:
         lam = float(start)
     else:
-        _, _, tab = engine.work.kernel(engine.g1, engine.g2)
-        lam = noise_sd * math.sqrt(float(tab[0, -1]))  # sqrt(sum h^2)
+        lam = noise_sd * math.sqrt(engine.work.response_energy(engine.g1, engine.g2))  # sqrt(sum h^2)
     total_its = 0
     best = None
     live = False  # best holds the work's arrays (the latest solve): copied before they are overwritten
@@ -459,7 +448,7 @@ def _search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESI
             lo = lam
         else:
             hi = lam
-        step = engine.affine_penalty(target, lam) if np.any(s > 0) else None
+        step = engine.affine_penalty(target) if np.any(s > 0) else None
         if step is not None and lo < step < hi:
             lam = step
             continue
@@ -521,14 +510,12 @@ def penalty_for_noise(y, coefficients, noise_sd, *, baseline="fit", weights=None
         raise ValueError(f"y must be one trace of at least 3 frames, got shape {y.shape}")
     g = check_ar_coefficients(coefficients)
     sigma = check_positive(noise_sd, "noise_sd")
-    baseline = _check_baseline(baseline)
+    baseline = check_baseline(baseline)
     rtol = check_positive(rtol, "rtol")
-    y, w, unit, n_obs = _prepare_weights(y, weights)
+    y, w, unit, n_obs = prepare_weights(y, weights)
     lam, c, s, b, its, conv, rss, target, solves = _search_penalty(y, w, unit, g, sigma, baseline, n_obs, rtol=rtol)
-    g1 = float(g[0])
-    g2 = float(g[1]) if g.size > 1 else 0.0
-    objective = float(_objective(y, w, unit, g1, g2, lam, b, c, s))
-    result = ARDeconvolution(calcium=c, spikes=s, baseline=float(b), penalty=float(lam), objective=objective,
+    objective_value = float(objective(y, w, unit, lam, b, c, s))
+    result = ARDeconvolution(calcium=c, spikes=s, baseline=float(b), penalty=float(lam), objective=objective_value,
                              iterations=int(its), converged=bool(conv), coefficients=g.copy())
     return PenaltySearch(penalty=float(lam), deconvolution=result, residual=float(rss), target=float(target),
                          solves=int(solves))
@@ -566,47 +553,6 @@ def _coefficient_derivative(c, g1, g2, u):
         c_prev = c[t]
 
 
-def _project_out(x, w, unit, g1, g2, work, starts, free0, tiny, out=None):
-    """x minus its (weighted) least-squares fit by a constant and spikes at the pool ``starts`` (into ``out``)."""
-    T = x.size
-    n = starts.size
-    h, _, tab = work.kernel(g1, g2)
-    out = np.empty(T) if out is None else out
-    _project_out_into(x, w, unit, g1, g2, h, tab, starts, n, free0, tiny, np.empty(T + 2), np.empty(T + 1),
-                      np.empty((11, n)), work.dp, work.pv1, work.pp1, out, work.s)
-    return out
-
-
-@njit(cache=True)
-def _project_out_into(x, w, unit, g1, g2, h, tab, starts, n, free0, tiny, zx, tail, sums, dp, pv, pp, out, spare):
-    """_project_out in one call (scratch arrays given; ``spare`` is overwritten)."""
-    T = x.shape[0]
-    if unit:
-        acc = 0.0
-        for t in range(T):
-            acc += x[t]
-        bb = acc / T
-        _backward_filter(x, bb, g1, g2, zx, tail)
-    else:
-        acc = 0.0
-        sw = 0.0
-        for t in range(T):
-            acc += w[t] * x[t]
-            sw += w[t]
-        bb = acc / sw
-    _pool_sums(x, w, unit, g1, g2, h, tab, zx, tail, bb, True, starts, n, sums)
-    bp, _, status, _ = _pools_solve(T, g1, g2, h, starts, n, free0, True, 0.0, 0.0, sums, dp, pv, pp, pv, pp, False,
-                                    tiny)
-    if status != _OK:
-        for t in range(T):
-            out[t] = x[t] - bb
-        return
-    _fill(T, g1, g2, h, starts, n, pv, pp, out, spare)
-    level = bb + bp
-    for t in range(T):
-        out[t] = x[t] - level - out[t]
-
-
 def _solve_small(A: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     """A x = rhs for a 1x1 or 2x2 positive definite A by Cramer's rule (numpy.linalg.solve otherwise, and when
     A is not clearly positive definite)."""
@@ -641,7 +587,7 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
     .. [3] Levenberg, K. (1944). A method for the solution of certain
        non-linear problems in least squares. Q. Appl. Math. 2, 164-168.
     """
-    work = _Work(yc.size)
+    work = Workspace(yc.size)
     g = _coefficients_from_times(rise_s, decay_s, frame_rate, order)
     lam, c, s, b_search, *_ = _search_penalty(yc, w, unit, g, noise_sd, "fit", n_obs, work=work, copy=False)
     support = _event_support(s, noise_sd)
@@ -658,9 +604,9 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
         tr, td = (0.0, math.exp(theta[0])) if order == 1 else (math.exp(theta[0]), math.exp(theta[1]))
         gg = _coefficients_from_times(tr, td, frame_rate, order)
         # (c is the work's own array: it is used up before the next fit)
-        c, _, b, _, _ = _solve(yc, w, unit, gg, 0.0, "fit", 0.0, b0=b_cur, support=support if first else PREVIOUS,
-                               allowed=support, work=work, copy=False)
-        return float(_weighted_rss(yc, w, unit, b, c)), (c, b, gg, work.starts[:work.n_pools].copy(), work.free0)
+        c, _, b, _, _ = solve(yc, w, unit, gg, 0.0, "fit", 0.0, b0=b_cur, support=support if first else PREVIOUS,
+                              allowed=support, work=work, copy=False)
+        return float(_weighted_rss(yc, w, unit, b, c)), (c, b, gg, *work.support())
 
     theta = np.array([math.log(decay_s)] if order == 1 else [math.log(rise_s), math.log(decay_s)])
     f, state = fit(theta, True)
@@ -690,7 +636,7 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
             J = (u * (-d * math.log(d)))[None, :]
         perp = np.empty_like(J)
         for i in range(J.shape[0]):
-            _project_out(J[i], w, unit, g1, g2, work, starts, free0, tiny, perp[i])
+            work.project_out(J[i], w, unit, g1, g2, starts, free0, tiny, perp[i])
         grad = -2.0 * (J @ r)
         hess = 2.0 * (perp @ (perp.T if unit else (w * perp).T))
         while True:
@@ -799,7 +745,7 @@ def _estimate_kinetics(y, frame_rate, order, noise_sd, weights, refine, max_lag,
     wb = None if weights is None else np.asarray(weights, dtype=np.float64)[block]
     if noise_sd is None:
         noise_sd = estimate_noise_sd(yb, frame_rate)
-    yc, w, unit, n_obs = _prepare_weights(yb, wb)
+    yc, w, unit, n_obs = prepare_weights(yb, wb)
     observed = np.ones(yc.size, dtype=bool) if unit else w > 0
     if max_lag is None:
         max_lag = max(order + 4, int(math.ceil(0.1 * frame_rate)))
