@@ -752,8 +752,9 @@ def calibrate_session(dff, frame_rate, *, electrical_spikes=None, indicator=None
 
     Examples
     --------
-    >>> from calcium.forward import simulate_recording
-    >>> rec = simulate_recording(4, 120.0, 30.0, indicator="GCaMP6s", rate_hz=0.5, noise_sd=0.03, seed=3)
+    >>> from calcium.forward import NoiseModel, SpikeModel, simulate_recording
+    >>> rec = simulate_recording(4, 120.0, 30.0, indicator="GCaMP6s", spikes=SpikeModel(rate_hz=0.5),
+    ...                          noise=NoiseModel(noise_sd=0.03), seed=3)
     >>> cal = calibrate_session(rec.dff, 30.0)
     >>> cal.source, cal.n_rois
     ('blind', 4)

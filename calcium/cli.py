@@ -329,15 +329,16 @@ def cmd_indicators(args):
 
 
 def cmd_simulate(args):
-    from calcium.forward import simulate_recording
+    from calcium.forward import NoiseModel, SpikeModel, simulate_recording
     out = Path(args.out)
     if out.exists() and any(out.iterdir()) and not args.overwrite:
         raise CommandError(f"{out}: folder exists and is not empty; pass --overwrite")
     kernel = _kernel_from_args(args, required=False)
     sim = simulate_recording(args.rois, args.duration_s, args.frame_rate, kernel=kernel,
                              indicator=None if kernel is not None else "GCaMP6s",
-                             rate_hz=args.rate_hz, noise_sd=args.noise_sd,
-                             photons_per_frame=args.photons_per_frame, seed=args.seed)
+                             spikes=SpikeModel(rate_hz=args.rate_hz),
+                             noise=NoiseModel(noise_sd=args.noise_sd, photons_per_frame=args.photons_per_frame),
+                             seed=args.seed)
     out.mkdir(parents=True, exist_ok=True)
     paths = sim.save(out)
     _say(args, f"simulated {args.rois} ROI(s) x {sim.raw.shape[-1]} frames -> {out}")

@@ -687,8 +687,9 @@ def fit_kernel(dff, spike_times_s, frame_rate, *, model="double-exponential", ke
 
     Examples
     --------
-    >>> from calcium.forward import simulate_recording
-    >>> rec = simulate_recording(1, 60.0, 30.0, indicator="GCaMP6f", rate_hz=0.5, noise_sd=0.02, seed=3)
+    >>> from calcium.forward import NoiseModel, SpikeModel, simulate_recording
+    >>> rec = simulate_recording(1, 60.0, 30.0, indicator="GCaMP6f", spikes=SpikeModel(rate_hz=0.5),
+    ...                          noise=NoiseModel(noise_sd=0.02), seed=3)
     >>> fit = fit_kernel(rec.dff[0], rec.spike_times[0], 30.0, n_bootstrap=0)
     >>> abs(fit.kernel.half_decay_s / rec.kernel.half_decay_s - 1) < 0.1
     True
