@@ -28,7 +28,8 @@ _EXPORTS = {
                                "phase_locking", "PhaseLocking"],
     "calcium.kernel": ["Kernel", "time_constants_from_half_times"],
     "calcium.indicators": ["INDICATORS", "IndicatorKinetics", "get_indicator", "indicator_names"],
-    "calcium.forward": ["predict_fluorescence", "simulate_recording", "SimulatedRecording"],
+    "calcium.forward": ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SpikeModel",
+                        "BaselineModel", "NoiseModel"],
     "calcium.io.nwb": ["export_nwb", "read_nwb_traces"],
     "calcium.infer": ["deconvolve_ar", "ARDeconvolution", "deconvolve_convex", "ConvexDeconvolution",
                       "estimate_ar_coefficients", "penalty_for_noise", "infer_spikes", "infer_spikes_many",
@@ -54,7 +55,8 @@ if TYPE_CHECKING:  # the same names, imported for type checkers and IDEs (at run
                             zero_phase_filter, detrend, estimate_noise)
     from .kernel import Kernel, time_constants_from_half_times
     from .indicators import INDICATORS, IndicatorKinetics, get_indicator, indicator_names
-    from .forward import predict_fluorescence, simulate_recording, SimulatedRecording
+    from .forward import (predict_fluorescence, simulate_recording, SimulatedRecording, SpikeModel, BaselineModel,
+                          NoiseModel)
     from .io.nwb import export_nwb, read_nwb_traces
     from .infer import (deconvolve_ar, ARDeconvolution, deconvolve_convex, ConvexDeconvolution,
                            estimate_ar_coefficients, penalty_for_noise, infer_spikes, infer_spikes_many,

@@ -374,3 +374,14 @@ def test_predict_with_a_plot_writes_both_and_names_columns_as_the_other_commands
                  "--plot", str(plot), "--quiet"]) == 0
     assert plot.stat().st_size > 0
     assert out.read_text().splitlines()[0] == "time_s,roi_0,roi_3"
+
+
+def test_the_output_of_dff_is_a_valid_input_of_infer_without_options(tmp_path):
+    # (commands chain: dff writes 'dff' beside 'f0'; infer reads the ΔF/F without --dataset)
+    rec = calcium.simulate_recording(3, 60.0, 30.0, indicator="GCaMP6s", seed=4)
+    raw = write_traces(tmp_path / "raw.h5", rec.raw, frame_rate=30.0)
+    assert main(["dff", str(raw), "--out", str(tmp_path / "dff.h5"), "--quiet"]) == 0
+    assert main(["infer", str(tmp_path / "dff.h5"), "--out", str(tmp_path / "spikes.h5"), "--workers", "1",
+                 "--quiet"]) == 0
+    data, _ = read_hdf5(tmp_path / "dff.h5")
+    assert read_traces(tmp_path / "dff.h5").traces.shape == data["dff"].shape

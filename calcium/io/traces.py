@@ -145,7 +145,8 @@ def read_traces(path, *, dataset: str | None = None, time_column="auto",
         on the file.
     dataset : str, optional
         HDF5 only: the dataset to read. By default the dataset named
-        ``traces``, else the only 1-D/2-D numeric dataset in the file.
+        ``traces``, else ``dff`` (what ``calcium dff`` writes beside ``f0``),
+        else the only 1-D/2-D numeric dataset in the file.
     time_column : "auto", str, int or None, default "auto"
         CSV only. ``"auto"``: the column named ``time_s`` or ``time`` is the
         time column; a column under another name that rises in even steps
@@ -477,20 +478,25 @@ def _open_hdf5(path: Path):
         raise CalciumInputError(f"{path} is not a readable HDF5 file: {exc}") from None
 
 
+_DEFAULT_DATASETS = ("traces", "dff")
+
+
 def _select_dataset(handle, path: Path, dataset: str | None):
     """(key, node, frame_rate) of the traces dataset, chosen as :func:`read_traces` documents."""
     nodes = _numeric_datasets(handle)
     listing = ", ".join(f"{name} {node.shape} {node.dtype}" for name, node in nodes.items()) or "none"
     if dataset is None:
         candidates = [name for name, node in nodes.items() if _is_trace_dataset(node)]
-        if "traces" in nodes:
-            dataset = "traces"
+        # the traces the tool's own commands write: 'traces', else the ΔF/F of `calcium dff` ('dff' beside 'f0')
+        named = [name for name in _DEFAULT_DATASETS if name in nodes]
+        if named:
+            dataset = named[0]
         elif len(candidates) == 1:
             dataset = candidates[0]
         else:
             what = "no" if not candidates else "more than one"
-            raise CalciumInputError(f"{path} has {what} 1-D/2-D numeric dataset; pass dataset=... "
-                                    f"(datasets available: {listing})")
+            raise CalciumInputError(f"{path} has {what} 1-D/2-D numeric dataset; name the one to read (dataset=..., "
+                                    f"--dataset) (datasets available: {listing})")
     key = dataset.strip("/")
     if key not in nodes:
         raise CalciumInputError(f"{path} has no dataset {dataset!r} (datasets available: {listing})")
