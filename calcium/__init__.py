@@ -53,6 +53,9 @@ if TYPE_CHECKING:  # the same names, imported for type checkers and IDEs (at run
     from .extract import Extraction, extract_traces, estimate_neuropil_factor, neuropil_rings
     from .signal import (DeltaF, delta_f_over_f, ZeroPhaseFilter, FilterResult, DetrendResult, design_filter,
                             zero_phase_filter, detrend, estimate_noise)
+    from .signal.rhythms import (SessionSpectra, session_spectra, spectrogram, scalogram, find_rhythms,
+                                 SessionRhythms, Rhythm, apparent_frequency, physical_frequencies, remove_rhythms,
+                                 RhythmRemoval, shared_component, rhythm_phase, phase_locking, PhaseLocking)
     from .kernel import Kernel, time_constants_from_half_times
     from .indicators import INDICATORS, IndicatorKinetics, get_indicator, indicator_names
     from .forward import (predict_fluorescence, simulate_recording, SimulatedRecording, SpikeModel, BaselineModel,
