@@ -511,7 +511,8 @@ def cmd_score(args):
     print(table)
     if args.out:
         from calcium.report.figures import save_figure, score_figure
-        write_csv(csv_path, table.header(), table.rows())
+        # (the pooled row has an empty roi, so that the column stays numeric for whoever reads the file)
+        write_csv(csv_path, table.header(), table.rows(pooled_roi=""))
         s = table.scores
         save_figure(score_figure([x.precision for x in s], [x.recall for x in s], [x.f1 for x in s],
                                  bin_widths_s=list(args.bin_widths_s),

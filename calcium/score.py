@@ -476,14 +476,15 @@ class ScoreTable:
                  "timing_error_mean_s", "timing_error_sd_s", "van_rossum"]
                 + [f"r_{w:g}s" for w in widths])
 
-    def rows(self) -> list:
-        """One list of values per ROI, then a ``"pooled"`` row (columns: :meth:`header`)."""
+    def rows(self, *, pooled_roi="pooled") -> list:
+        """One list of values per ROI, then the pooled row, whose ``roi`` is ``pooled_roi`` (columns:
+        :meth:`header`; ``pooled_roi=""`` keeps the column numeric in a CSV file)."""
         out = []
         for roi, s in zip(self.rois, self.scores):
             out.append([roi, s.n_true, s.n_inferred, s.n_matched, s.precision, s.recall, s.f1,
                         s.timing_error_mean_s, s.timing_error_sd_s, s.van_rossum]
                        + [r for _, r in s.correlations])
-        out.append(["pooled", self.n_true, self.n_inferred, self.n_matched, self.precision, self.recall,
+        out.append([pooled_roi, self.n_true, self.n_inferred, self.n_matched, self.precision, self.recall,
                     self.f1, self.timing_error_mean_s, self.timing_error_sd_s, self.mean_van_rossum]
                    + [r for _, r in self.mean_correlations])
         return out

@@ -385,3 +385,11 @@ def test_the_output_of_dff_is_a_valid_input_of_infer_without_options(tmp_path):
                  "--quiet"]) == 0
     data, _ = read_hdf5(tmp_path / "dff.h5")
     assert read_traces(tmp_path / "dff.h5").traces.shape == data["dff"].shape
+
+
+def test_scores_csv_keeps_the_roi_column_numeric(tmp_path):
+    a = write_spike_table(tmp_path / "a.csv", {0: np.array([1.0, 2.0]), 2: np.array([3.0])})
+    b = write_spike_table(tmp_path / "b.csv", {0: np.array([1.01, 2.5]), 2: np.array([3.02])})
+    assert main(["score", str(a), str(b), "--out", str(tmp_path / "s"), "--quiet"]) == 0
+    rois = [line.split(",")[0] for line in (tmp_path / "s" / "scores.csv").read_text().splitlines()[1:]]
+    assert rois == ["0", "2", ""]  # one line per ROI, then the pooled line with an empty roi
