@@ -655,11 +655,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = add("filter", cmd_filter, "zero-phase filter traces (low/high/band-pass, band-stop)")
     traces_input(p)
-    p.add_argument("--kind", required=True, choices=["lowpass", "highpass", "bandpass", "bandstop"])
+    p.add_argument("--kind", required=True, choices=["lowpass", "highpass", "bandpass", "bandstop"],
+                   help="which frequencies pass")
     p.add_argument("--cutoff-hz", type=_positive, nargs="+", required=True,
                    help="cut-off in Hz (two values for bandpass/bandstop)")
     p.add_argument("--order", type=int, default=4, help="filter order (FIR: taps - 1)")
-    p.add_argument("--method", choices=["butterworth", "fir"], default="butterworth")
+    p.add_argument("--method", choices=["butterworth", "fir"], default="butterworth",
+                   help="Butterworth (IIR) or windowed-sinc FIR design, run forward and backward (default: "
+                        "butterworth)")
     p.add_argument("--edges", choices=["pad", "mark", "trim"], default="pad",
                    help="edge handling: pad (default), mark the affected span, or trim it")
     p.add_argument("--plot", help="also write the frequency response to this PNG")
@@ -674,18 +677,19 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("simulate", cmd_simulate, "simulate a recording: spike trains -> forward model -> noisy fluorescence")
     p.add_argument("--out", required=True, help="output folder")
     p.add_argument("--overwrite", action="store_true", help="write into a non-empty folder")
-    p.add_argument("--rois", type=int, default=10)
-    p.add_argument("--duration-s", type=_positive, default=60.0)
-    p.add_argument("--frame-rate", type=_positive, default=30.0)
+    p.add_argument("--rois", type=int, default=10, help="number of simulated cells (default 10)")
+    p.add_argument("--duration-s", type=_positive, default=60.0, help="recording length, seconds (default 60)")
+    p.add_argument("--frame-rate", type=_positive, default=30.0, help="frames per second, Hz (default 30)")
     p.add_argument("--rate-hz", type=_finite, default=0.5, help="mean firing rate per ROI")
     p.add_argument("--noise-sd", type=_finite, help="ΔF/F noise s.d. (instead of a photon budget)")
     p.add_argument("--photons-per-frame", type=_finite, help="photons per frame at baseline (shot noise)")
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=int, default=0, help="seed of the random numbers, for repeatable results "
+                                                       "(default 0)")
     _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
 
     p = add("predict", cmd_predict, "spike times -> predicted ΔF/F per frame (forward model)")
     p.add_argument("spikes", help="spike CSV: roi,time_s or one time per line")
-    p.add_argument("--frame-rate", type=_positive, required=True)
+    p.add_argument("--frame-rate", type=_positive, required=True, help="frames per second of the prediction, Hz")
     p.add_argument("--duration-s", type=_positive, help="recording length (default: last spike + 5 decays)")
     p.add_argument("--scan-offset-s", type=_finite, default=0.0, help="time the scanner reaches the ROI in a frame")
     p.add_argument("--exposure-s", type=_finite, help="average over an exposure window instead of a point sample")
@@ -729,13 +733,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--roi", type=int, default=0, help="which ROI of the trace file (default 0)")
     p.add_argument("--spike-roi", type=int, help="which ROI of the spike file (default: same as --roi)")
     p.add_argument("--indicator", help="indicator to start from and to check against")
-    p.add_argument("--model", choices=["double-exponential", "free"], default="double-exponential")
+    p.add_argument("--model", choices=["double-exponential", "free"], default="double-exponential",
+                   help="kernel model (default: double-exponential; 'free' also estimates a free-form response)")
     p.add_argument("--n-bootstrap", type=int, default=200,
                    help="bootstrap refits for the intervals (default 200; 0: no intervals)")
     _former(p, "--bootstrap", "--n-bootstrap", "n_bootstrap", type=int)
     p.add_argument("--max-lag-s", type=_positive, default=1.0, help="largest clock offset searched, in seconds")
     p.add_argument("--temperature-c", type=_finite, help="recording temperature, for the kinetics check")
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=int, default=0, help="seed of the random numbers, for repeatable results "
+                                                       "(default 0)")
     output(p, required=False, help_text="folder for the table and figure")
 
     p = add("score", cmd_score, "score inferred spikes against true (electrical) spike times")
@@ -743,19 +749,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("true", help="true spike CSV")
     p.add_argument("--tolerance-s", type=_positive, default=0.1, help="matching tolerance in seconds")
     p.add_argument("--bin-widths-s", type=_positive, nargs="+", default=[0.1, 0.2, 0.5, 1.0],
-                   help="bin widths for the count correlations")
+                   help="bin widths for the correlation of binned counts, seconds (default: 0.1 0.2 0.5 1)")
     output(p, required=False, help_text="folder for the table and figure")
 
     p = add("plan", cmd_plan, "will single spikes be detectable? sweep frame rate and noise by simulation")
     _add_kernel_options(p, help_suffix=" (default: GCaMP6s)")
-    p.add_argument("--frame-rates", type=_positive, nargs="+", default=[7.5, 15.0, 30.0, 60.0])
+    p.add_argument("--frame-rates", type=_positive, nargs="+", default=[7.5, 15.0, 30.0, 60.0],
+                   help="frame rates to compare, Hz (default: 7.5 15 30 60)")
     p.add_argument("--noise-sd", type=_finite, nargs="+", help="ΔF/F noise s.d. levels")
     p.add_argument("--photons-per-frame", type=_finite, nargs="+",
                    help="photons per frame at baseline, one or more levels (instead of --noise-sd)")
     _former(p, "--photons", "--photons-per-frame", "photons_per_frame", type=_finite, nargs="+")
-    p.add_argument("--trials", type=int, default=200)
-    p.add_argument("--false-positive-rate", type=_finite, default=0.01)
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--trials", type=int, default=200,
+                   help="simulated trials per frame rate and noise level (default 200)")
+    p.add_argument("--false-positive-rate", type=_finite, default=0.01,
+                   help="false detections allowed per spike-free window, the detection threshold's level "
+                        "(default 0.01)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the random numbers, for repeatable results "
+                                                       "(default 0)")
     output(p, required=False, help_text="folder for the table and figure")
 
     p = add("report", cmd_report, "write the HTML report of a results file (from `calcium run` or `calcium infer`)")
@@ -773,7 +784,8 @@ def build_parser() -> argparse.ArgumentParser:
     output(p, help_text="output .nwb file")
 
     p = add("init", cmd_init, "write a commented pipeline configuration (TOML)")
-    p.add_argument("path", nargs="?", default="calcium.toml")
+    p.add_argument("path", nargs="?", default="calcium.toml",
+                   help="configuration file to write (default: calcium.toml), with every key commented")
 
     p = add("run", cmd_run, "run the whole-session pipeline described by a configuration file")
     p.add_argument("config", help="TOML configuration (see `calcium init`)")

@@ -393,3 +393,13 @@ def test_scores_csv_keeps_the_roi_column_numeric(tmp_path):
     assert main(["score", str(a), str(b), "--out", str(tmp_path / "s"), "--quiet"]) == 0
     rois = [line.split(",")[0] for line in (tmp_path / "s" / "scores.csv").read_text().splitlines()[1:]]
     assert rois == ["0", "2", ""]  # one line per ROI, then the pooled line with an empty roi
+
+
+def test_every_option_of_every_command_has_a_help_text():
+    import argparse
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    silent = [(name, action.option_strings or action.dest) for name, command in sub.choices.items()
+              for action in command._actions if action.help is None]
+    assert silent == []
