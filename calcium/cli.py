@@ -648,8 +648,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = add("dff", cmd_dff, "raw fluorescence -> ΔF/F with a running-percentile baseline F0")
     traces_input(p)
-    p.add_argument("--window-s", type=_positive, default=60.0, help="baseline window in seconds (default 60)")
-    p.add_argument("--percentile", type=_finite, default=8.0, help="baseline percentile (default 8)")
+    p.add_argument("--window-s", type=_positive, default=60.0,
+                   help="baseline window in seconds (default 60: measured with --percentile 8 on our independent "
+                        "generator, see scripts/bench_baseline_defaults.py and docs/benchmarks.md)")
+    p.add_argument("--percentile", type=_finite, default=8.0, help="baseline percentile (default 8, see --window-s)")
     p.add_argument("--floor", type=_finite, help="lowest allowed F0 (otherwise F0 <= 0 is an error)")
     output(p, help_text="output file (.h5 also stores F0)")
 
