@@ -20,8 +20,8 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-SECTIONS = ("inputs", "output", "extraction", "dff", "filter", "noise", "inference", "calibration", "quality",
-            "kernel_fit", "scoring", "report", "nwb", "execution")
+SECTIONS = ("inputs", "output", "extraction", "dff", "filter", "rhythms", "noise", "inference", "calibration",
+            "quality", "kernel_fit", "scoring", "report", "nwb", "execution")
 
 
 def _write(path, text):
