@@ -309,6 +309,122 @@ def cmd_noise(args):
             print(f"{i},{v:.6g}")
 
 
+def _figure_paths(folder, names, *, overwrite: bool, inputs) -> list[Path]:
+    """PNG paths in the --figures folder, checked against the inputs and --overwrite; the folder is created."""
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise CommandError(f"{folder}: is a file; --figures takes a folder")
+    paths = [folder / f"{name}.png" for name in names]
+    _protect(inputs, files=paths, flag="--figures")
+    for path in paths:
+        if path.exists() and not overwrite:
+            raise CommandError(f"{path}: already exists; pass --overwrite to replace it")
+    folder.mkdir(parents=True, exist_ok=True)
+    return paths
+
+
+def cmd_rhythms(args):
+    from calcium.signal.rhythms import find_rhythms, phase_locking, remove_rhythms, rhythm_phase
+    if args.remove and not args.out:
+        raise UsageError("--remove needs --out (the file for the traces without the rhythms)")
+    if args.out and not args.remove:
+        raise UsageError("--out writes the traces without the rhythms: give --remove regression|notch|bandstop too")
+    if (args.rhythm_trace is None) != (args.rhythm_band is None):
+        raise UsageError("--rhythm-trace and --rhythm-band go together (the trace carrying the rhythm, and its band)")
+    if args.rhythm_trace and not args.spikes:
+        raise UsageError("--rhythm-trace needs --spikes: the spikes whose locking to the rhythm is measured")
+    inputs = {"INPUT": args.input, "--neuropil": args.neuropil, "--spikes": args.spikes,
+              "--rhythm-trace": args.rhythm_trace}
+    out = _check_new_output(args.out, overwrite=args.overwrite, inputs=inputs) if args.out else None
+    names = ["rhythm-spectrum", "rhythm-scalogram", "rhythm-spectrogram"]
+    figures = _figure_paths(args.figures, names, overwrite=args.overwrite, inputs=inputs) if args.figures else None
+    data = _read_traces(args.input, args.dataset, args)
+    rate = _frame_rate(args, data)
+    neuropil = _read_traces(args.neuropil, args.neuropil_dataset).traces if args.neuropil else None
+    try:
+        found = find_rhythms(data.traces, rate, segment_s=args.segment_s, min_share=args.min_share,
+                             false_alarm=args.false_alarm, lowest_hz=args.lowest_hz, neuropil=neuropil)
+    except ValueError as exc:
+        raise _fail(args.input, exc) from exc
+    print(found.summary())
+    traces = data.traces.reshape(-1, data.traces.shape[-1])
+    removal = None
+    if out is not None:
+        try:
+            removal = remove_rhythms(traces, rate, found, method=args.remove) if found.rhythms else None
+        except ValueError as exc:
+            raise _fail(args.input, exc) from exc
+        _write_traces(out, traces if removal is None else removal.cleaned, frame_rate=rate, inputs=(args.input,),
+                      attrs={"rhythms_removed": json.dumps([list(b) for b in found.bands_hz]),
+                             "rhythm_removal": "" if removal is None else removal.describe()})
+        _say(args, ("nothing to remove: the traces are written unchanged" if removal is None
+                    else removal.describe()) + f" -> {out}")
+    if args.spikes:
+        spikes = _read_spikes(args.spikes)
+        if args.rhythm_trace:
+            carrier = _read_traces(args.rhythm_trace).traces.reshape(-1, traces.shape[-1])[0]
+            targets = [("the given rhythm", carrier, tuple(args.rhythm_band))]
+        else:
+            average = np.nanmean(np.where(np.isfinite(traces), traces, np.nan), axis=0)
+            targets = [(f"{r.frequency_hz:.2f} Hz", average, r.band_hz) for r in found.rhythms]
+        for label, carrier, band in targets:
+            try:
+                phase = rhythm_phase(carrier, rate, band)
+            except ValueError as exc:
+                raise _fail(args.rhythm_trace or args.input, exc) from exc
+            locking = {roi: phase_locking(times, phase, n_surrogates=args.surrogates, seed=roi)
+                       for roi, times in sorted(spikes.items())}
+            counted = {roi: x for roi, x in locking.items() if x.n_spikes}
+            locked = [roi for roi, x in counted.items() if x.p_value <= 0.05]
+            print(f"phase locking to {label} ({band[0]:.3g}-{band[1]:.3g} Hz): {len(locked)} of {len(counted)} ROI(s) "
+                  f"with spikes locked at p <= 0.05 (5 % expected by chance)"
+                  + (f", median PLV {np.median([x.plv for x in counted.values()]):.3f} (by chance "
+                     f"{np.median([x.null_plv for x in counted.values()]):.3f})" if counted else ""))
+            for roi in locked[:20]:
+                print(f"  ROI {roi}: {counted[roi].describe()}")
+    if figures is not None:
+        from calcium.report.figures import rhythm_spectrum_figure, save_figure, time_frequency_figure
+        from calcium.signal.rhythms import scalogram, session_spectra, spectrogram
+        spectra = found.spectra
+        after = None if removal is None else session_spectra(removal.cleaned, rate, segment_s=args.segment_s)
+        save_figure(rhythm_spectrum_figure(spectra.freq_hz, spectra.median_power,
+                                           background=found.median_background,
+                                           low_power=spectra.quantile_power(0.1), high_power=spectra.quantile_power(0.9),
+                                           after=None if after is None else after.median_power,
+                                           coherence=spectra.median_coherence,
+                                           coherence_null=found.rhythms[0].coherence_null if found.rhythms else None,
+                                           peaks_hz=[r.frequency_hz for r in found.rhythms],
+                                           resolution_hz=spectra.resolution_hz), figures[0])
+        average = np.nanmean(np.where(np.isfinite(traces), traces, np.nan), axis=0)
+        wavelets = scalogram(average, rate)
+        save_figure(time_frequency_figure(wavelets.time_s, wavelets.freq_hz, wavelets.amplitude,
+                                          reliable=wavelets.reliable, log_frequency=True,
+                                          resolution=wavelets.describe(), title="scalogram of the average of the ROIs"),
+                    figures[1])
+        windows = spectrogram(average, rate, window_s=spectra.segment_s)
+        save_figure(time_frequency_figure(windows.time_s, windows.freq_hz, windows.power,
+                                          value_label="power (ΔF/F² / Hz)", resolution=windows.describe(),
+                                          title="spectrogram of the average of the ROIs"), figures[2])
+        _say(args, "figures -> " + ", ".join(str(path) for path in figures))
+
+
+def cmd_alias(args):
+    from calcium.signal.rhythms import apparent_frequency, physical_frequencies
+    if not args.physical_hz and not args.observed_hz:
+        raise UsageError("give --physical-hz (where a known rhythm appears) and/or --observed-hz (what could cause a "
+                         "peak)")
+    for freq in args.physical_hz or ():
+        print(f"{freq:g} Hz sampled at {args.frame_rate:g} frames/s appears at "
+              f"{apparent_frequency(freq, args.frame_rate):.4g} Hz")
+    for freq in args.observed_hz or ():
+        try:
+            candidates = physical_frequencies(freq, args.frame_rate, up_to_hz=args.up_to_hz)
+        except ValueError as exc:
+            raise UsageError(_cli_words(str(exc)).replace("observed_hz", "--observed-hz")) from None
+        print(f"a peak at {freq:g} Hz at {args.frame_rate:g} frames/s can come from "
+              + ", ".join(f"{c:.4g}" for c in candidates) + " Hz")
+
+
 def cmd_indicators(args):
     from calcium.indicators import INDICATORS
 
@@ -673,6 +789,40 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("noise", cmd_noise, "noise s.d. per ROI from the upper band of the power spectrum")
     traces_input(p)
     output(p, required=False, help_text="CSV table (default: print)")
+
+    p = add("rhythms", cmd_rhythms, "find rhythms many ROIs share (heartbeat, breathing, flicker, mains, aliased or "
+                                     "not), show them in time and frequency, remove them, and test spikes' locking")
+    traces_input(p)
+    p.add_argument("--segment-s", type=_positive, default=10.0,
+                   help="Welch segment in seconds; the frequency resolution is 1/segment (default 10: 0.1 Hz)")
+    p.add_argument("--min-share", type=_finite, default=0.25,
+                   help="a rhythm must stand out in at least this share of the ROIs (default 0.25)")
+    p.add_argument("--false-alarm", type=_finite, default=0.01,
+                   help="chance that a session without a shared rhythm shows one (default 0.01)")
+    p.add_argument("--lowest-hz", type=_positive, default=0.5, help="lowest frequency searched (default 0.5 Hz)")
+    p.add_argument("--neuropil", help="trace file of each ROI's neuropil (same shape): coherence with it instead of "
+                                      "with the other ROIs")
+    p.add_argument("--neuropil-dataset", help="dataset of --neuropil inside an HDF5 file (calcium extract writes "
+                                              "neuropil_f)")
+    p.add_argument("--remove", choices=["regression", "notch", "bandstop"],
+                   help="remove the rhythms found and write the traces to --out: regression keeps each cell's own "
+                        "activity in the band; notch/bandstop are zero-phase filters")
+    p.add_argument("--spikes", help="spike CSV (roi,time_s): how strongly each ROI's spikes lock to each rhythm "
+                                    "(phase-locking value, surrogate test)")
+    p.add_argument("--rhythm-trace", help="a trace file (one row, same frames) carrying a rhythm you recorded "
+                                          "(breathing, running): the --spikes' locking to it")
+    p.add_argument("--rhythm-band", type=_positive, nargs=2, metavar=("LOW", "HIGH"),
+                   help="band of --rhythm-trace's rhythm, Hz")
+    p.add_argument("--surrogates", type=int, default=999,
+                   help="surrogate spike trains of the locking test (default 999)")
+    p.add_argument("--figures", help="folder for the spectrum, scalogram and spectrogram (PNG)")
+    output(p, required=False, help_text="traces without the rhythms (.h5, .npy or .csv; with --remove)")
+
+    p = add("alias", cmd_alias, "where a rhythm appears once sampled at a frame rate, and what could cause a peak")
+    p.add_argument("--frame-rate", type=_positive, required=True, help="frames per second (Hz)")
+    p.add_argument("--physical-hz", type=_positive, nargs="+", help="frequencies of known rhythms (mains, heart)")
+    p.add_argument("--observed-hz", type=_positive, nargs="+", help="frequencies of peaks seen in a spectrum")
+    p.add_argument("--up-to-hz", type=_positive, help="highest candidate listed (default 5 x the frame rate)")
 
     add("indicators", cmd_indicators, "list the reference indicator kinetics with their sources")
 

@@ -13,8 +13,8 @@ import calcium
 from calcium.cli import build_parser, main
 from calcium.io import read_hdf5, read_spike_times, read_traces, write_spike_table, write_traces
 
-COMMANDS = ["demo", "extract", "dff", "filter", "noise", "indicators", "simulate", "predict", "infer",
-            "calibrate", "fit-kernel", "score", "plan", "init", "run", "report", "export-nwb"]
+COMMANDS = ["demo", "extract", "dff", "filter", "noise", "rhythms", "alias", "indicators", "simulate", "predict",
+            "infer", "calibrate", "fit-kernel", "score", "plan", "init", "run", "report", "export-nwb"]
 
 
 @pytest.mark.parametrize("command", COMMANDS)

@@ -454,3 +454,159 @@ def test_rhythm_figures_draw_from_plain_arrays_and_name_bad_arguments():
     assert len(fig.axes) == 3 and fig.axes[0].get_ylabel() == "ΔF/F"
     with pytest.raises(ValueError, match="start_s"):
         rhythm_removal_figure(FRAME_RATE, dff[0], dff[0], start_s=1e4)
+
+
+# --------------------------------------------------------------------------- the pipeline stage and the CLI
+def test_configuration_defaults_are_the_defaults_of_find_rhythms():
+    # Reference: the signature of the public function the [rhythms] section configures.
+    import inspect
+
+    from calcium.pipeline import config_from_dict
+
+    section = config_from_dict({"inputs": {"traces": "t.npy"}}).rhythms
+    defaults = {k: p.default for k, p in inspect.signature(find_rhythms).parameters.items()
+                if p.default is not inspect.Parameter.empty}
+    for key in ("segment_s", "min_share", "false_alarm", "lowest_hz"):
+        assert getattr(section, key) == defaults[key], key
+    assert (section.action, section.method) == ("report", "regression")
+
+
+def _raw_session(tmp_path, n_rois=16, seconds=60.0, rate=20.0):
+    """Raw fluorescence with a rhythm of 23 Hz (aliased to 3 Hz at 20 frames/s) in every ROI."""
+    rng = np.random.default_rng(20)
+    n = int(seconds * rate)
+    dff, _ = _session(rng, n_rois=n_rois, n_frames=n, frame_rate=rate, rhythms=[(23.0, 0.15)])
+    from calcium.io import write_traces
+
+    return write_traces(tmp_path / "traces.h5", 100.0 * (1.0 + dff), frame_rate=rate), rate
+
+
+def _run(tmp_path, traces, name, **rhythms):
+    from calcium.pipeline import config_from_dict, run_pipeline
+
+    config = config_from_dict({"inputs": {"traces": str(traces)}, "output": {"folder": str(tmp_path / name)},
+                               "execution": {"backend": rhythms.pop("backend", "serial"), "chunk_rois": 4,
+                                             "workers": 2},
+                               "report": {"enabled": rhythms.pop("report", False)}, "rhythms": rhythms})
+    return run_pipeline(config, progress=False)
+
+
+def test_the_run_records_the_rhythm_and_keeps_it_out_of_every_rois_noise(tmp_path):
+    # Reference: calcium.signal.estimate_noise called directly on each ROI's ΔF/F with the bands found, widened
+    # by two bins of its 256-frame spectrum on each side.
+    import json
+
+    from calcium.pipeline import open_results
+
+    traces, rate = _raw_session(tmp_path)
+    summary = _run(tmp_path, traces, "report", report=True)
+    assert "3.00 Hz" in summary.rhythms and "NOT removed" in summary.rhythms
+    with open_results(summary.results_path) as results:
+        record = json.loads(results.read("rhythms/summary_json")[0])
+        dff = results.read("dff").astype(np.float64)
+        noise = results.read("noise_sd")
+        assert "dff_filtered" not in results
+    (rhythm,) = record["rhythms"]
+    assert rhythm["frequency_hz"] == pytest.approx(3.0, abs=0.05) and rhythm["share"] > 0.9
+    margin = 2 * rate / 256
+    bands = [(rhythm["band_hz"][0] - margin, rhythm["band_hz"][1] + margin)]
+    np.testing.assert_allclose(noise, estimate_noise(dff, rate, exclude_hz=bands), rtol=2e-6)
+    figures = {path.name for path in (summary.report_path.parent / "figures").iterdir()}
+    assert {"rhythm-spectrum.png", "rhythm-scalogram.png", "rhythm-spectrogram.png",
+            "rhythm-removal.png"} <= figures
+    assert "Periodic artefacts" in summary.report_path.read_text(encoding="utf-8")
+
+
+@pytest.mark.parametrize("method", ["notch", "regression"])
+def test_a_run_that_removes_the_rhythm_gives_each_roi_what_remove_rhythms_gives(tmp_path, method):
+    # Reference: calcium.signal.rhythms.remove_rhythms called directly on the ΔF/F of the results (regression:
+    # against shared_component of the ROIs searched, as the stage hands it to the workers).
+    import json
+
+    from calcium.pipeline import open_results
+
+    traces, rate = _raw_session(tmp_path)
+    summary = _run(tmp_path, traces, method, action="remove", method=method)
+    assert "removed before the inference" in summary.rhythms
+    with open_results(summary.results_path) as results:
+        record = json.loads(results.read("rhythms/summary_json")[0])
+        dff = results.read("dff").astype(np.float64)
+        used = results.read("dff_filtered").astype(np.float64)
+        after = results.read("rhythms/median_power_after")
+    bands = [tuple(r["band_hz"]) for r in record["rhythms"]]
+    reference = shared_component(dff[record["rois"]], rate, bands) if method == "regression" else None
+    expected = remove_rhythms(dff, rate, bands, method=method, reference=reference).cleaned
+    np.testing.assert_allclose(used, expected, atol=2e-6)          # (float32 storage)
+    band = (np.arange(after.size) * 0.1 >= bands[0][0]) & (np.arange(after.size) * 0.1 <= bands[0][1])
+    assert np.isfinite(after).all() and np.nanmax(after[band]) < 3 * np.median(after)
+
+
+def test_worker_processes_remove_the_rhythm_as_the_serial_run_does(tmp_path):
+    from calcium.pipeline import read_results
+
+    traces, _ = _raw_session(tmp_path)
+    serial = _run(tmp_path, traces, "serial", action="remove")
+    parallel = _run(tmp_path, traces, "processes", action="remove", backend="processes")
+    first, second = read_results(serial.results_path)[0], read_results(parallel.results_path)[0]
+    for name in ("dff_filtered", "spike_counts", "noise_sd", "rhythms/summary_json"):
+        assert np.array_equal(first[name], second[name], equal_nan=first[name].dtype.kind == "f"), name
+
+
+def test_with_the_search_off_nothing_is_searched_or_recorded(tmp_path):
+    from calcium.pipeline import open_results
+
+    traces, _ = _raw_session(tmp_path)
+    summary = _run(tmp_path, traces, "off", action="off")
+    assert summary.rhythms == ""
+    with open_results(summary.results_path) as results:
+        assert "rhythms/summary_json" not in results and "dff_filtered" not in results
+
+
+def _cli(capsys, *args):
+    """Run the command line in this process; (exit code, stdout, stderr)."""
+    from calcium.cli import main
+
+    try:
+        code = main([str(a) for a in args])
+    except SystemExit as exc:          # (argparse's usage errors)
+        code = exc.code
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_cli_finds_removes_and_reports_locking(tmp_path, capsys):
+    # Reference: the public API called directly (find_rhythms, remove_rhythms) on the same file.
+    from calcium.io import read_traces, write_spike_table, write_traces
+
+    rng = np.random.default_rng(21)
+    dff, _ = _session(rng, n_rois=12, n_frames=3600, rhythms=[(50.0, 0.15)])
+    source = write_traces(tmp_path / "dff.h5", dff, frame_rate=FRAME_RATE)
+    t = np.arange(20, 110, 0.1)                                  # at the 10 Hz rhythm's frames: locked
+    spikes = write_spike_table(tmp_path / "spikes.csv", {0: t, 1: rng.uniform(5, 115, 300)})
+    code, out, err = _cli(capsys, "rhythms", source, "--remove", "notch", "--out", tmp_path / "clean.h5", "--spikes",
+                          spikes, "--surrogates", 99, "--figures", tmp_path / "figures", "--quiet")
+    assert code == 0, err
+    assert "1 shared rhythm(s)" in out and "10.00 Hz" in out
+    assert "phase locking to 10.00 Hz" in out and "ROI 0: locked" in out
+    found = find_rhythms(dff, FRAME_RATE)
+    expected = remove_rhythms(dff, FRAME_RATE, found, method="notch").cleaned
+    np.testing.assert_allclose(read_traces(tmp_path / "clean.h5").traces, expected, atol=1e-12)
+    assert sorted(p.name for p in (tmp_path / "figures").iterdir()) == [
+        "rhythm-scalogram.png", "rhythm-spectrogram.png", "rhythm-spectrum.png"]
+    code, _, err = _cli(capsys, "rhythms", source, "--remove", "notch", "--out", tmp_path / "clean.h5")
+    assert code == 1 and "--overwrite" in err
+    for args in (("--out", tmp_path / "x.h5"), ("--remove", "notch"), ("--rhythm-trace", source)):
+        code, _, err = _cli(capsys, "rhythms", source, *args)
+        assert code == 2 and "Traceback" not in err
+
+
+def test_cli_alias_answers_both_ways(capsys):
+    # Reference: the aliasing formula |f - fs round(f / fs)| (Oppenheim & Schafer 2010), worked by hand.
+    code, out, err = _cli(capsys, "alias", "--frame-rate", 30, "--physical-hz", 50, 8.5, "--observed-hz", 10,
+                          "--up-to-hz", 60)
+    assert code == 0, err
+    assert "50 Hz sampled at 30 frames/s appears at 10 Hz" in out
+    assert "8.5 Hz sampled at 30 frames/s appears at 8.5 Hz" in out
+    assert "can come from 10, 20, 40, 50 Hz" in out
+    code, _, err = _cli(capsys, "alias", "--frame-rate", 30, "--observed-hz", 16)
+    assert code == 2 and "--observed-hz" in err

@@ -77,6 +77,9 @@ class RunSummary:
     n_uncalibrated : int
         ROIs whose spike counts are not calibrated (flag "uncalibrated
         counts"): their single-spike size could not be identified.
+    rhythms : str
+        What the search for shared rhythms found, in words ("" when it was
+        off); see the report's section on periodic artefacts.
     calibration : str
         Plain-words summary of the session calibration ("" when the counts
         were made per ROI, without one).
@@ -100,6 +103,7 @@ class RunSummary:
     workers: int
     n_uncalibrated: int = 0
     calibration: str = ""
+    rhythms: str = ""
 
     def __str__(self) -> str:
         if self.chunks_resumed == self.chunks_total:
@@ -120,6 +124,8 @@ class RunSummary:
                          f"their counts as numbers of spikes")
         elif self.calibration:
             lines.append("every ROI's spike count is calibrated")
+        if self.rhythms:
+            lines.append(self.rhythms)
         if self.report_path is not None:
             lines.append(f"report:  {self.report_path}")
         if self.nwb_path is not None:
@@ -297,6 +303,19 @@ def _inference_kwargs(config: RunConfig) -> dict:
     return kwargs
 
 
+def _rhythm_params(config: RunConfig, prepared, params, store, progress):
+    """The stage parameters with the session's shared rhythms (searched once, recorded in the results)."""
+    cfg = config.rhythms
+    if cfg.action == "off":
+        return params
+    if cfg.lowest_hz >= prepared.frame_rate / 2:
+        raise ConfigError(f"rhythms.lowest_hz = {cfg.lowest_hz:g} is not allowed at {prepared.frame_rate:g} Hz: it must "
+                          f"lie below half the frame rate ({prepared.frame_rate / 2:g} Hz)")
+    return stages.with_rhythms(prepared.source, params, store, action=cfg.action, method=cfg.method,
+                               max_rois=cfg.max_rois, segment_s=cfg.segment_s, min_share=cfg.min_share,
+                               false_alarm=cfg.false_alarm, lowest_hz=cfg.lowest_hz, progress=progress)
+
+
 def _calibration_how(config: RunConfig, electrical) -> str:
     how = config.calibration.source
     if how == "auto":
@@ -426,7 +445,8 @@ def _fit_options(config: RunConfig) -> dict:
 # ---------------------------------------------------------------------------
 def _layout(config: RunConfig, prepared: _Inputs, electrical_rois: list[int]) -> list[DatasetSpec]:
     n, t = prepared.n_rois, prepared.n_frames
-    specs = stages.result_datasets(n, t, filtered=config.filter.kind != "none", with_f0=config.output.f0)
+    specs = stages.result_datasets(n, t, filtered=config.filter.kind != "none" or config.rhythms.action == "remove",
+                                   with_f0=config.output.f0)
     if prepared.kind == "movie":
         specs += [
             DatasetSpec("raw", (n, t), "f4", "neuropil-corrected ROI fluorescence extracted from the movie "
@@ -439,6 +459,8 @@ def _layout(config: RunConfig, prepared: _Inputs, electrical_rois: list[int]) ->
         ]
     specs += stages.electrical_datasets(len(electrical_rois), len(config.scoring.bin_widths_s))
     specs.append(stages.CALIBRATION_DATASET)
+    if config.rhythms.action != "off":
+        specs += stages.rhythm_datasets(t, prepared.frame_rate, config.rhythms.segment_s)
     return specs
 
 
@@ -618,6 +640,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         if todo:
             if prepared.kind == "movie":
                 prepared.source = _extraction(config, prepared, store, work, run_hash, progress)
+            params = _rhythm_params(config, prepared, params, store, progress)
             params = _calibrated_params(config, prepared, params, store, progress)
             backend, workers, computed_rois = _run_chunks(
                 prepared.source, params, store, todo, backend=config.execution.backend,
@@ -664,7 +687,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         chunks_total=int(bounds.size - 1), chunks_resumed=chunks_resumed, elapsed_s=elapsed,
         frames_per_second=computed_rois * prepared.n_frames / elapsed if elapsed > 0 else float("nan"),
         backend=backend, workers=workers, n_uncalibrated=int(np.count_nonzero(quality & stages.FLAG_UNCALIBRATED)),
-        calibration=_stored_calibration_summary(results_path))
+        calibration=_stored_calibration_summary(results_path), rhythms=_stored_rhythms_summary(results_path))
     return summary
 
 
@@ -1214,6 +1237,9 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
             _electrical_section(report, results, indicator, rate, kernel_figure, distribution_figure,
                                 score_figure)
 
+        if stages.RHYTHMS_RECORD in results:
+            _rhythms_section(report, results, rate, trains, per_roi)
+
         # -- per-ROI table ---------------------------------------------------
         report.add_section("Quality flags and per-ROI table",
                            "Flags: failed (no results), low SNR, saturation suspected (raw maximum repeated), F0 "
@@ -1337,3 +1363,131 @@ def _electrical_section(report, results, indicator, rate, kernel_figure, distrib
              fit["r_squared"][k]] for k, r in enumerate(rois)]
     report.add_table(header, rows, caption="Kernel fits and scores of the ROIs with electrical spikes.",
                      flags=[str(n) for n in notes])
+
+
+def _rhythm_record(results) -> dict | None:
+    """The record of the search for shared rhythms in an open results file, or None when it was not run."""
+    if stages.RHYTHMS_RECORD not in results:
+        return None
+    text = results.read(stages.RHYTHMS_RECORD)[0]
+    text = text.decode() if isinstance(text, bytes) else str(text)
+    try:
+        record = json.loads(text) if text.startswith("{") else None
+    except json.JSONDecodeError:
+        return None
+    return record if isinstance(record, dict) else None
+
+
+def _stored_rhythms_summary(results_path) -> str:
+    """One line on the shared rhythms recorded in a results file ("" when the search was off)."""
+    with open_results(results_path) as results:
+        record = _rhythm_record(results)
+    if record is None:
+        return ""
+    rhythms = record.get("rhythms") or []
+    if not rhythms:
+        return "shared rhythms: " + str(record.get("summary", "")).splitlines()[-1]
+    found = "; ".join(f"{r['frequency_hz']:.2f} Hz in {r['share']:.0%} of the ROIs ({r['stability']})" for r in rhythms)
+    done = "removed before the inference" if record.get("action") == "remove" else (
+        "NOT removed ([rhythms] action = \"remove\" removes them); their bands were left out of the noise")
+    return f"shared rhythms: {found}; {done}"
+
+
+def _rhythms_section(report, results, rate, trains, per_roi):
+    """Report section: the session's spectrum with its shared peaks, the scalogram and spectrogram of the average of
+    the ROIs searched, the phase locking of the spikes to each rhythm, and one ROI before and after removal."""
+    from ..infer import infer_spikes
+    from ..kernel import Kernel
+    from ..report import rhythm_removal_figure, rhythm_spectrum_figure, time_frequency_figure
+    from ..signal.rhythms import (N_SURROGATES, phase_locking, remove_rhythms, rhythm_phase, scalogram,
+                                  spectrogram)
+
+    record = _rhythm_record(results)
+    if record is None:
+        return
+    rhythms = record.get("rhythms") or []
+    summary = str(record.get("summary", ""))
+    report.add_section("Periodic artefacts: rhythms shared across the session",
+                       (f"{len(rhythms)} shared rhythm(s) found. " if rhythms else "No shared rhythm found. ") +
+                       ("They were removed before the inference (" + record.get("removal", "") + ")."
+                        if rhythms and record.get("action") == "remove" else
+                        "They were NOT removed; set [rhythms] action = \"remove\" to remove them. Their bands "
+                        "were left out of every ROI's noise estimate." if rhythms else ""))
+    for line in summary.splitlines():
+        report.add_text(line)
+    if "freq_hz" not in record and not np.isfinite(results.read("rhythms/freq_hz")).any():
+        return
+    spectra = {name: results.read(f"rhythms/{name}") for name in stages.RHYTHM_SPECTRA}
+    after = spectra["median_power_after"]
+    report.add_figure(
+        rhythm_spectrum_figure(spectra["freq_hz"], spectra["median_power"], background=spectra["background"],
+                               low_power=spectra["power_low"], high_power=spectra["power_high"],
+                               after=after if np.isfinite(after).any() else None, coherence=spectra["coherence"],
+                               coherence_null=rhythms[0]["coherence_null"] if rhythms else None,
+                               peaks_hz=[r["frequency_hz"] for r in rhythms],
+                               resolution_hz=record.get("resolution_hz")),
+        name="rhythm-spectrum",
+        caption=f"Power spectrum of the inference's input over the {record.get('n_rois', '?')} ROIs searched: median "
+                f"and 10-90 % range, the aperiodic background, the shared rhythms found (dotted) and, below, the "
+                f"median coherence of each ROI with the average of the others.")
+    average = results.read("rhythms/session_average").astype(np.float64)
+    if np.isfinite(average).sum() >= 16:
+        wavelets = scalogram(average, rate)
+        report.add_figure(time_frequency_figure(wavelets.time_s, wavelets.freq_hz, wavelets.amplitude,
+                                                reliable=wavelets.reliable, log_frequency=True,
+                                                resolution=wavelets.describe(),
+                                                title="scalogram of the average of the ROIs searched"),
+                          name="rhythm-scalogram",
+                          caption="Amplitude of the average ΔF/F at each frequency and time (Morlet wavelets); "
+                                  "pale: the cone of influence, where the ends disturb the values.")
+        try:
+            windows = spectrogram(average, rate, window_s=float(record.get("segment_s", 10.0)))
+            report.add_figure(time_frequency_figure(windows.time_s, windows.freq_hz, windows.power,
+                                                    value_label="power (ΔF/F² / Hz)", resolution=windows.describe(),
+                                                    title="spectrogram of the average of the ROIs searched"),
+                              name="rhythm-spectrogram", caption="Power of the average ΔF/F in consecutive windows.")
+        except ValueError:
+            pass
+    if not rhythms:
+        return
+    searched = [int(r) for r in record.get("rois", [])][:100]
+    rows = []
+    for r in rhythms:
+        phase = rhythm_phase(average, rate, tuple(r["band_hz"]))
+        locking = [phase_locking(trains[roi], phase, n_surrogates=N_SURROGATES, seed=roi) for roi in searched]
+        counted = [x for x in locking if x.n_spikes > 0]
+        locked = sum(x.p_value <= 0.05 for x in counted)
+        rows.append([f"{r['frequency_hz']:.2f}", len(counted), locked,
+                     f"{locked / len(counted):.0%}" if counted else "-",
+                     float(np.median([x.plv for x in counted])) if counted else float("nan"),
+                     float(np.median([x.null_plv for x in counted])) if counted else float("nan")])
+    report.add_table(["rhythm (Hz)", "ROIs with spikes", "locked (p <= 0.05)", "share locked", "median PLV",
+                      "median PLV by chance"], rows, sortable=False,
+                     caption="Phase locking of each ROI's inferred spikes to each rhythm (its phase in the average of "
+                             "the ROIs searched; interval-jitter surrogates): 5 % of the ROIs lock by chance. Spikes "
+                             "that lock to a rhythm left in the traces may be faked by it; spikes that still lock "
+                             "after its removal suggest that the cells are entrained.")
+    roi = int(rhythms[0].get("example_roi", searched[0] if searched else 0))
+    if "dff" not in results or per_roi["quality_flags"][roi] & stages.FLAG_FAILED:
+        return
+    before = results.read("dff", roi).astype(np.float64)
+    bands = [tuple(x["band_hz"]) for x in rhythms]
+    removed = record.get("action") == "remove"
+    method = str(record.get("method", "regression"))
+    after = results.read("dff_filtered", roi).astype(np.float64) if removed and "dff_filtered" in results else \
+        remove_rhythms(before, rate, bands, method=method, reference=average if method == "regression" else None).cleaned
+    kernel = Kernel(float(per_roi["kernel_rise_s"][roi]), float(per_roi["kernel_decay_s"][roi]),
+                    float(per_roi["kernel_amplitude"][roi]))
+    noise = float(per_roi["noise_sd"][roi])
+    other = infer_spikes(before if removed else after, rate, kernel=kernel,
+                         noise_sd=noise if noise > 0 else None).spike_times
+    spikes_before, spikes_after = (other, trains[roi]) if removed else (trains[roi], other)
+    start = min(max(0.0, before.size / rate / 2 - 15.0), before.size / rate - 1.0 / rate)
+    report.add_figure(rhythm_removal_figure(rate, before, after, spikes_before=spikes_before, spikes_after=spikes_after,
+                                            start_s=start, duration_s=30.0, roi_label=f"ROI {roi}",
+                                            band_label=", ".join(f"{r['frequency_hz']:.2f} Hz" for r in rhythms)),
+                      name="rhythm-removal",
+                      caption=f"ROI {roi}, where the strongest rhythm is largest: ΔF/F with the rhythm and "
+                              + ("after its removal by the run" if removed else
+                                 f"after removal by {method} (a preview: the run did not remove them)")
+                              + ", and the spikes inferred from each with the ROI's kernel.")

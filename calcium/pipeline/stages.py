@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import os
+import sys
 import threading
 import warnings
 from dataclasses import dataclass, field
@@ -272,6 +273,11 @@ class StageParams:
         The input is ΔF/F given by the user: a ROI that looks like raw
         fluorescence (:func:`calcium._checks.check_dff_like`) is flagged
         "uncalibrated counts".
+    rhythms : dict or None
+        Keyword arguments of :func:`calcium.signal.rhythms.remove_rhythms`
+        (``bands_hz``, ``method``, ``reference``): the session's shared
+        rhythms, removed from each ROI after the filter and before the noise
+        and the inference; None: nothing removed.
     """
 
     frame_rate: float
@@ -286,6 +292,7 @@ class StageParams:
     calibration: object = None
     uncalibrated: str = ""
     check_dff: bool = False
+    rhythms: dict | None = None
 
 
 @dataclass(frozen=True)
@@ -319,7 +326,8 @@ def result_datasets(n_rois: int, n_frames: int, *, filtered: bool, with_dff: boo
             specs.append(DatasetSpec("f0", big, "f4", "baseline fluorescence F0", "a.u."))
         specs.append(DatasetSpec("f0_min", one, "f8", "smallest F0 of the ROI", "a.u."))
     if filtered:
-        specs.append(DatasetSpec("dff_filtered", big, "f4", "zero-phase filtered ΔF/F (input of the inference)",
+        specs.append(DatasetSpec("dff_filtered", big, "f4", "ΔF/F as the inference saw it: zero-phase filtered "
+                                 "([filter]) and without the session's shared rhythms ([rhythms] action = remove)",
                                  "ΔF/F"))
     specs += [
         DatasetSpec("denoised", big, "f4", "denoised ΔF/F: the inferred activity convolved with the kernel, "
@@ -492,7 +500,7 @@ def process_chunk(task: ChunkTask) -> dict:
 def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
     """The stages of :func:`process_chunk` on rows already read (ROIs ``first_roi``, ``first_roi + 1``, ...)."""
     n, n_frames = raw.shape
-    filtered = params.filter is not None
+    filtered = params.filter is not None or params.rhythms is not None
     with_dff = params.dff is not None
     out = _empty_results(n, n_frames, filtered, with_dff, with_dff and params.keep_f0)
     flags = out["quality_flags"]
@@ -530,9 +538,8 @@ def _process_rows(raw: np.ndarray, first_roi: int, params: StageParams) -> dict:
                     flags[i] |= FLAG_F0
                     reasons[i].append(f"F0 clipped at the floor {floor:g} in {clipped} frames")
     if rows.size:
-        signal = dff
+        signal = _inference_input(dff, params)
         if filtered:
-            signal = params.filter.apply(dff)
             out["dff_filtered"][rows] = signal
         noise = _noise_rows(signal, params, rows, reasons)
         for k, i in enumerate(rows):
@@ -631,6 +638,16 @@ def _scan_rows(raw):  # pragma: no cover - compiled
                     same += 1
             at_top[r] = same
     return n_finite, top, at_top
+
+
+def _inference_input(dff: np.ndarray, params: StageParams) -> np.ndarray:
+    """ΔF/F as the inference sees it: through the configured filter, then without the session's shared rhythms."""
+    signal = dff if params.filter is None else params.filter.apply(dff)
+    if params.rhythms is not None and len(params.rhythms.get("bands_hz", ())):
+        from ..signal.rhythms import remove_rhythms
+
+        signal = remove_rhythms(signal, params.frame_rate, **params.rhythms).cleaned
+    return signal
 
 
 def _noise_rows(signal: np.ndarray, params: StageParams, rows: np.ndarray, reasons: list) -> np.ndarray:
@@ -951,8 +968,8 @@ def calibration_signal(source: TraceSource, params: StageParams, rois: np.ndarra
         kept, signal, _, _, _ = _dff_rows(raw, params, reasons, flags, usable)
     else:
         kept, signal = usable, raw[usable]
-    if kept.size and params.filter is not None:
-        signal = params.filter.apply(signal)
+    if kept.size:
+        signal = _inference_input(signal, params)
     return np.asarray(rois)[kept], signal
 
 
@@ -1001,3 +1018,128 @@ def session_calibration(source: TraceSource, params: StageParams, *, how: str, e
 
         cal = dataclasses.replace(cal, source="indicator")
     return cal.for_session(n, rois=kept)
+
+
+# ---------------------------------------------------------------------------
+# the session's shared rhythms (once, in the parent, before the chunks and the calibration)
+# ---------------------------------------------------------------------------
+#: What the rhythm search found (JSON: settings, ROIs searched, every rhythm with its verdict), written once.
+RHYTHMS_RECORD = "rhythms/summary_json"
+#: Per-frequency results of the search, each (bins,): name -> description.
+RHYTHM_SPECTRA = {
+    "freq_hz": "frequencies of the spectra",
+    "median_power": "median over the ROIs searched of the Welch power spectral density of the inference's input",
+    "power_low": "10th percentile over the ROIs searched of that density",
+    "power_high": "90th percentile over the ROIs searched of that density",
+    "background": "median over the ROIs searched of the aperiodic background of their spectra",
+    "coherence": "median magnitude-squared coherence of the ROIs with the average of the others",
+    "statistic": "power over background in the ROIs sharing a peak most (quantile 1 - min_share)",
+    "threshold": "level the statistic had to exceed (NaN outside the frequencies searched)",
+    "median_power_after": "median power spectral density after removal (NaN unless [rhythms] action = remove)",
+}
+# estimate_noise takes its spectrum from 256-frame Welch segments (its documented default), whose Hann main lobe
+# spreads a line over two of its bins on each side: the bands left out of the noise are widened by that much.
+_NOISE_SEGMENT = 256
+
+
+def rhythm_bins(n_frames: int, frame_rate: float, segment_s: float) -> int:
+    """Frequencies of the rhythm spectra of a session (1 when the recording is too short for any)."""
+    from ..signal.rhythms import segment_frames
+
+    try:
+        return segment_frames(segment_s, frame_rate, n_frames) // 2 + 1
+    except ValueError:
+        return 1
+
+
+def rhythm_datasets(n_frames: int, frame_rate: float, segment_s: float) -> list[DatasetSpec]:
+    """Layout of the ``rhythms/`` group: the record, the spectra, and the average of the ROIs searched."""
+    bins = (rhythm_bins(n_frames, frame_rate, segment_s),)
+    specs = [DatasetSpec(RHYTHMS_RECORD, (1,), "text64000", "shared rhythms found in the session (JSON: settings, "
+                         "ROIs searched, each rhythm's frequency, band, share, amplitude, coherence, steadiness and "
+                         "verdict); '' when the search was not run", per_roi=False, fill=0)]
+    specs += [DatasetSpec(f"rhythms/{name}", bins, "f8", text, "Hz" if name == "freq_hz" else "", per_roi=False,
+                          fill=np.nan) for name, text in RHYTHM_SPECTRA.items()]
+    specs.append(DatasetSpec("rhythms/session_average", (n_frames,), "f4", "average over the ROIs searched of the "
+                             "inference's input before removal (for the scalogram and the phase of each rhythm)",
+                             "ΔF/F", per_roi=False, fill=np.nan))
+    return specs
+
+
+def _rhythm_record(found, rois, action: str, method: str, removal) -> dict:
+    """The JSON record of a search (plain numbers and words)."""
+    spectra = found.spectra
+    return {"action": action, "method": method, "n_rois": int(len(rois)), "rois": [int(r) for r in rois],
+            "segment_s": spectra.segment_s, "resolution_hz": spectra.resolution_hz, "min_share": found.min_share,
+            "false_alarm": found.false_alarm, "lowest_hz": found.lowest_hz, "summary": found.summary(),
+            "removal": "" if removal is None else removal.describe(),
+            "rhythms": [{"frequency_hz": r.frequency_hz, "band_hz": list(r.band_hz), "power_ratio": r.power_ratio,
+                         "z": r.z, "share": r.share, "amplitude": r.amplitude,
+                         "amplitude_to_noise": r.amplitude_to_noise, "coherence": r.coherence,
+                         "coherence_null": r.coherence_null, "stability": r.stability,
+                         "present": [bool(x) for x in r.present], "harmonic_of": r.harmonic_of,
+                         "example_roi": int(rois[int(np.argmax(r.roi_amplitude))]), "verdict": r.verdict}
+                        for r in found.rhythms]}
+
+
+def with_rhythms(source: TraceSource, params: StageParams, store, *, action: str, method: str, max_rois: int,
+                 segment_s: float, min_share: float, false_alarm: float, lowest_hz: float, progress=False):
+    """params with what the chunks need about the session's shared rhythms, found once and recorded in ``store``.
+
+    The search (:func:`calcium.signal.rhythms.find_rhythms`) runs on the inference's input (ΔF/F, filtered as
+    configured) of at most ``max_rois`` ROIs spread evenly over the session. The bands found are left out of
+    every ROI's noise estimate; with ``action = "remove"`` they are also removed from every ROI
+    (:func:`calcium.signal.rhythms.remove_rhythms`; a regression is made against the shared component of the
+    ROIs searched, :func:`calcium.signal.rhythms.shared_component`). A session too short to search is said so
+    in the record and left as it is.
+    """
+    import dataclasses
+    import json
+
+    from ..signal.rhythms import find_rhythms, remove_rhythms, session_spectra, shared_component
+
+    rois = calibration_rois(source.n_rois, max_rois)
+    kept, signal = calibration_signal(source, params, rois)
+    empty = {"bands_hz": [], "method": method, "reference": None} if action == "remove" else None
+    try:
+        if kept.size < 2:
+            raise ValueError(f"{kept.size} ROI(s) with a usable ΔF/F; the search needs at least 2")
+        found = find_rhythms(signal, params.frame_rate, segment_s=segment_s, min_share=min_share,
+                             false_alarm=false_alarm, lowest_hz=lowest_hz)
+    except ValueError as exc:
+        text = f"shared rhythms not searched: {_first_line(exc)}"
+        if progress:
+            print(f"rhythms: {text}", file=sys.stderr, flush=True)
+        store.write_rows(RHYTHMS_RECORD, slice(0, 1), [json.dumps({"action": action, "summary": text, "rhythms": []})])
+        return dataclasses.replace(params, rhythms=empty)
+    spectra = found.spectra
+    arrays = {"freq_hz": spectra.freq_hz, "median_power": spectra.median_power,
+              "power_low": spectra.quantile_power(0.1), "power_high": spectra.quantile_power(0.9),
+              "background": found.median_background, "coherence": spectra.median_coherence,
+              "statistic": found.statistic, "threshold": found.threshold}
+    removal = None
+    changes = {"rhythms": empty}
+    if found.rhythms:
+        margin = 2.0 * params.frame_rate / _NOISE_SEGMENT
+        exclude = [(max(low - margin, 0.0), high + margin) for low, high in found.bands_hz]
+        changes["noise"] = {**params.noise, "exclude_hz": exclude}
+        if action == "remove":
+            reference = shared_component(signal, params.frame_rate, found) if method == "regression" else None
+            kwargs = {"bands_hz": found.bands_hz, "method": method, "reference": reference}
+            removal = remove_rhythms(signal, params.frame_rate, **kwargs)
+            arrays["median_power_after"] = session_spectra(removal.cleaned, params.frame_rate,
+                                                           segment_s=segment_s).median_power
+            changes["rhythms"] = kwargs
+    if progress:
+        lines = found.summary().splitlines()
+        print("rhythms: " + lines[1] + ("" if not found.rhythms else " " + "; ".join(
+            f"{r.frequency_hz:.2f} Hz in {r.share:.0%} of the ROIs" for r in found.rhythms)), file=sys.stderr,
+              flush=True)
+    store.write_rows(RHYTHMS_RECORD, slice(0, 1), [json.dumps(_rhythm_record(found, np.asarray(rois)[kept], action,
+                                                                             method, removal))])
+    for name, values in arrays.items():
+        store.write_rows(f"rhythms/{name}", (), np.asarray(values, dtype=np.float64))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # (frames where no ROI searched has a value)
+        store.write_rows("rhythms/session_average", (), np.nanmean(signal, axis=0).astype(np.float32))
+    return dataclasses.replace(params, **changes)

@@ -67,15 +67,16 @@ __all__ = [
     "rhythm_phase",
     "PhaseLocking",
     "phase_locking",
+    "segment_frames",
     "SEGMENT_S",
     "N_CYCLES",
     "N_SURROGATES",
 ]
 
-#: Welch segment (and spectrogram window) length, seconds. A resolution of 0.1 Hz separates the harmonics of
-#: rhythms down to 0.5 Hz and keeps a steady artefact within one or two bins; measured in scripts/bench_rhythms.py:
-#: 10-s segments detected 100 % of steady and drifting rhythms of 1 noise s.d. (20-minute sessions) where 2.5-s
-#: segments missed the drifting ones at low frequency (see docs/benchmarks.md, "Periodic artefacts").
+#: Welch segment (and spectrogram window) length, seconds: a resolution of 0.1 Hz. Measured in
+#: scripts/bench_rhythms.py (10-minute sessions of 60 ROIs, 40 per amplitude, steady and drifting rhythms, aliased
+#: or not): 10-s segments found every rhythm of 1-2.5 noise s.d. (100 %), 2.5-s segments 94 %, missing rhythms
+#: below 1.7 Hz, which their 0.4-Hz resolution cannot tell from the calcium background (docs/benchmarks.md).
 SEGMENT_S = 10.0
 #: Cycles of the Morlet wavelet, f0 / sigma_f = 7: the wavelet family of Tallon-Baudry et al. (1996).
 N_CYCLES = 7.0
@@ -192,9 +193,15 @@ def _welch_dof(n_segments) -> np.ndarray:
     return 36.0 * k ** 2 / (19.0 * k - 1.0)
 
 
-def _segment_length(segment_s, frame_rate: float, n_frames: int) -> int:
-    """Frames per Welch segment: ``segment_s`` seconds, shortened so that the session holds at least 7 segments."""
+def segment_frames(segment_s, frame_rate, n_frames) -> int:
+    """Frames per Welch segment that :func:`session_spectra` and :func:`find_rhythms` use for a recording.
+
+    ``segment_s`` seconds, shortened to a quarter of the recording when it is longer (at least 7 half-overlapping
+    segments); a ValueError when that leaves fewer than 32 frames.
+    """
     segment_s = check_positive(segment_s, "segment_s")
+    frame_rate = check_frame_rate(frame_rate)
+    n_frames = check_int(n_frames, "n_frames", minimum=1)
     wanted = int(round(segment_s * frame_rate))
     nperseg = min(wanted, n_frames // 4)
     if nperseg < _MIN_SEGMENT:
@@ -411,7 +418,7 @@ def session_spectra(traces, frame_rate, *, segment_s=SEGMENT_S, neuropil=None) -
     x = as_traces(traces, "traces")
     x = x.reshape(-1, x.shape[-1])
     missing = require_some_data(x, "traces").mask
-    nperseg = _segment_length(segment_s, frame_rate, x.shape[-1])
+    nperseg = segment_frames(segment_s, frame_rate, x.shape[-1])
     neuropil, neuropil_missing = _neuropil_rows(neuropil, x.shape)
     return _spectral_pass(x, missing, frame_rate, nperseg, neuropil, neuropil_missing)
 
@@ -800,8 +807,8 @@ class Rhythm:
         Where its peak is (interpolated between bins).
     band_hz : (float, float)
         The band it occupies: where its power above the background exceeds
-        half the peak's, widened by the main lobe of the Hann window (two
-        bins each side). The band removed and left out of the noise.
+        half the peak's, widened by one bin on each side. The band removed
+        and left out of the noise.
     power_ratio : float
         Power over the aperiodic background at the peak, in the ROIs that
         share it most (the quantile ``1 − min_share`` over ROIs).
@@ -1026,8 +1033,8 @@ def find_rhythms(traces, frame_rate, *, segment_s=SEGMENT_S, min_share=0.25, fal
        background: smaller excesses were seen at the knee of clean
        spectra, measured in scripts/bench_rhythms.py). Neighbouring retained
        bins form one peak.
-    5. Description of each peak: its band (half the peak's excess, plus the
-       Hann main lobe), the share of ROIs whose own ratio at the peak exceeds
+    5. Description of each peak: its band (half the peak's excess, plus a
+       bin each side), the share of ROIs whose own ratio at the peak exceeds
        the χ²_ν/ν quantile of 0.01 / (bins in the band), the amplitude of a
        sinusoid with the excess power (a = √(2 Σ_band (P − B) Δf)) and its
        ratio to the ROI's noise s.d., the median coherence against the
@@ -1065,7 +1072,7 @@ def find_rhythms(traces, frame_rate, *, segment_s=SEGMENT_S, min_share=0.25, fal
     min_share = _check_fraction(min_share, "min_share")
     false_alarm = _check_fraction(false_alarm, "false_alarm")
     lowest_hz = check_positive(lowest_hz, "lowest_hz")
-    nperseg = _segment_length(segment_s, frame_rate, x.shape[-1])
+    nperseg = segment_frames(segment_s, frame_rate, x.shape[-1])
     neuropil, neuropil_missing = _neuropil_rows(neuropil, x.shape)
     spectra = _spectral_pass(x, missing, frame_rate, nperseg, neuropil, neuropil_missing)
     return _search(spectra, min_share=min_share, false_alarm=false_alarm, lowest_hz=lowest_hz)
@@ -1074,6 +1081,7 @@ def find_rhythms(traces, frame_rate, *, segment_s=SEGMENT_S, min_share=0.25, fal
 _MIN_EXCESS = 0.5            # see find_rhythms, Notes 4
 _BACKGROUND_HALF_WIDTH_HZ = 1.0
 _ROI_ALPHA = 0.01
+_LOBE = 1
 
 
 def _search(spectra: SessionSpectra, *, min_share: float, false_alarm: float, lowest_hz: float) -> SessionRhythms:
@@ -1108,7 +1116,8 @@ def _peaks(above: np.ndarray, statistic: np.ndarray) -> list[tuple[int, tuple[in
     """(peak bin, (first, last) bin of its band) of each peak, strongest first.
 
     Retained bins at most two bins apart form one peak; its band holds the neighbouring bins whose excess over
-    the background is more than half the peak's, plus two bins each side (the main lobe of the Hann window).
+    the background is more than half the peak's, plus one bin each side (_LOBE: a steady line lies within a bin
+    of the interpolated peak, and the narrower the band, the less of the cells' own activity a removal takes).
     Peaks whose bands overlap (a drifting rhythm can rise above the threshold in several places) are one.
     """
     index = np.flatnonzero(above)
@@ -1124,7 +1133,7 @@ def _peaks(above: np.ndarray, statistic: np.ndarray) -> list[tuple[int, tuple[in
             low -= 1
         while high < n_bins - 2 and statistic[high + 1] - 1.0 > half:
             high += 1
-        found.append([k, max(low - 2, 1), min(high + 2, n_bins - 1)])
+        found.append([k, max(low - _LOBE, 1), min(high + _LOBE, n_bins - 1)])
     merged = [found[0]]
     for k, low, high in found[1:]:
         last = merged[-1]
@@ -1435,7 +1444,7 @@ def remove_rhythms(traces, frame_rate, bands_hz, *, method="notch", order=2, ref
     ``edge_frames`` is measured on the zero-phase impulse response.
 
     Regression: the reference r and the trace x are band-passed to the band
-    (zero-phase Butterworth), the analytic signal z = r_b + i H[r_b] is
+    widened by a quarter of its width on each side (zero-phase Butterworth), the analytic signal z = r_b + i H[r_b] is
     formed with the Hilbert transform (Gabor 1946; :func:`scipy.signal.hilbert`),
     and the least-squares fit x_b ≈ Re(c* z) over the frames away from
     edges and gaps gives the complex weight c = a − ib: a ROI that follows
@@ -1494,12 +1503,25 @@ def remove_rhythms(traces, frame_rate, bands_hz, *, method="notch", order=2, ref
                          affected=affected.reshape(x.shape), coefficients=coefficients, reference=what)
 
 
+def _widened(band: tuple[float, float], frame_rate: float) -> tuple[float, float]:
+    """A band widened by a quarter of its width on each side (within (0, Nyquist]): the pass band of a
+    regression, so that a rhythm drifting to the band's edges is passed with a gain nearer 1 (at a Butterworth
+    band-pass's own edges the zero-phase gain is 1/2) while little more of the cells' own activity is let in.
+    Measured in scripts/bench_rhythms.py (inference false positives after removal against the clean twin, 12
+    sessions of 60 ROIs): +6.7 % unwidened, +3.6 % widened by a quarter, +4.3 % by a half."""
+    low, high = band
+    half = 0.25 * (high - low)
+    return max(low - half, 0.5 * low), min(high + half, frame_rate / 2.0)
+
+
 def _analytic_band(filt: ZeroPhaseFilter, rows: np.ndarray, edge: int):
     """Analytic signal of the band-passed rows (missing frames as 0) and the frames usable for a fit: finite and
     further than ``edge`` frames from an end or a gap."""
     band = filt.apply(rows)
     bad = ~np.isfinite(band)
-    analytic = scipy.signal.hilbert(np.where(bad, 0.0, band), axis=-1)
+    # (zero-padded beyond the edge span: the transform's circular wrap would join the two ends)
+    length = scipy.fft.next_fast_len(band.shape[-1] + 2 * edge)
+    analytic = scipy.signal.hilbert(np.where(bad, 0.0, band), N=length, axis=-1)[..., :band.shape[-1]]
     usable = ~grow_mask(bad, edge)
     if edge:
         usable[..., :edge] = False
@@ -1510,14 +1532,15 @@ def _analytic_band(filt: ZeroPhaseFilter, rows: np.ndarray, edge: int):
 def _aligned_average(analytic: np.ndarray, usable: np.ndarray, iterations: int = 20):
     """Weights c (rois,) and the phase-aligned average s = Σ conj(c_i) z_i / Σ |c_i|² of analytic band signals z_i:
     the rank-one fit z_i ≈ c_i s by alternating least squares (the power method on Z Z^H), so that ROIs that
-    carry the rhythm with other phases or signs add up instead of cancelling."""
+    carry the rhythm with other phases or signs add up instead of cancelling. The weights are fitted on the
+    ``usable`` frames; s is returned at every frame (also near the ends, where the band-pass is less exact)."""
     z = np.where(usable, analytic, 0.0)
     s = z[int(np.argmax(np.sum(np.abs(z) ** 2, axis=1)))].copy()
     c = np.ones(z.shape[0], np.complex128)
     for _ in range(iterations):
         c = (z @ np.conj(s)) / max(float(np.vdot(s, s).real), 1e-300)
         s = (np.conj(c) @ z) / max(float(np.sum(np.abs(c) ** 2)), 1e-300)
-    return c, s
+    return c, (np.conj(c) @ analytic) / max(float(np.sum(np.abs(c) ** 2)), 1e-300)
 
 
 def shared_component(traces, frame_rate, bands_hz, *, order=2) -> np.ndarray:
@@ -1565,7 +1588,7 @@ def shared_component(traces, frame_rate, bands_hz, *, order=2) -> np.ndarray:
     require_some_data(rows, "traces")
     total = np.zeros(rows.shape[1])
     for band in _band_list(bands_hz, frame_rate):
-        filt = _band_filter("bandpass", band, frame_rate, order)
+        filt = _band_filter("bandpass", _widened(band, frame_rate), frame_rate, order)
         analytic, usable = _analytic_band(filt, rows, _edge_frames(filt, band[1] - band[0]))
         c, s = _aligned_average(analytic, usable)
         total += (s * np.mean(np.abs(c))).real
@@ -1595,7 +1618,7 @@ def _regress_bands(rows: np.ndarray, mask: np.ndarray, frame_rate: float, bands,
     filters = []
     coefficients = np.zeros((n_rois, len(bands)), np.complex128)
     for j, band in enumerate(bands):
-        filt = _band_filter("bandpass", band, frame_rate, order)
+        filt = _band_filter("bandpass", _widened(band, frame_rate), frame_rate, order)
         filters.append(filt)
         edge = _edge_frames(filt, band[1] - band[0])
         own, usable = _analytic_band(filt, cleaned, edge)
@@ -1611,8 +1634,7 @@ def _regress_bands(rows: np.ndarray, mask: np.ndarray, frame_rate: float, bands,
             # each ROI's reference leaves the ROI out: (Σ conj(c) z - conj(c_i) z_i) / (Σ |c|² - |c_i|²)
             weight = np.sum(np.abs(c) ** 2)
             total = s * weight
-            refs = (total[None, :] - np.conj(c)[:, None] * np.where(usable, own, 0.0)) / np.maximum(
-                weight - np.abs(c) ** 2, 1e-300)[:, None]
+            refs = (total[None, :] - np.conj(c)[:, None] * own) / np.maximum(weight - np.abs(c) ** 2, 1e-300)[:, None]
         for i in range(n_rois):
             keep = usable[i]
             if keep.sum() < 4:
