@@ -487,7 +487,7 @@ def _run(tmp_path, traces, name, **rhythms):
     config = config_from_dict({"inputs": {"traces": str(traces)}, "output": {"folder": str(tmp_path / name)},
                                "execution": {"backend": rhythms.pop("backend", "serial"), "chunk_rois": 4,
                                              "workers": 2},
-                               "report": {"enabled": rhythms.pop("report", False)}, "rhythms": rhythms})
+                               "report": {"enabled": rhythms.pop("report", False), "n_examples": 0}, "rhythms": rhythms})
     return run_pipeline(config, progress=False)
 
 
@@ -610,3 +610,37 @@ def test_cli_alias_answers_both_ways(capsys):
     assert "can come from 10, 20, 40, 50 Hz" in out
     code, _, err = _cli(capsys, "alias", "--frame-rate", 30, "--observed-hz", 16)
     assert code == 2 and "--observed-hz" in err
+
+
+def test_a_movie_run_takes_the_coherence_with_each_rois_neuropil(tmp_path):
+    # A light source flickering at 3 Hz brightens the whole field, ROIs and neuropil rings alike: the ROIs are
+    # coherent with their own rings at 3 Hz, and the rings' spectrum peaks there too.
+    import json
+
+    from calcium.io import write_masks, write_movie
+    from calcium.pipeline import config_from_dict, open_results, run_pipeline
+
+    rng = np.random.default_rng(22)
+    rate, n = 20.0, 1200
+    masks = np.zeros((4, 32, 32), dtype=bool)
+    for k, (y, x) in enumerate([(8, 8), (8, 24), (24, 8), (24, 24)]):
+        masks[k, y - 2:y + 2, x - 2:x + 2] = True
+    flicker = 1.0 + 0.02 * np.sin(2 * np.pi * 3.0 * np.arange(n) / rate)
+    movie = (100.0 + rng.normal(0.0, 2.0, (n, 32, 32))) * flicker[:, None, None]
+    write_movie(tmp_path / "movie.tif", movie.astype(np.float32))
+    write_masks(tmp_path / "masks.tif", masks)
+    config = config_from_dict({"inputs": {"movie": str(tmp_path / "movie.tif"), "masks": str(tmp_path / "masks.tif"),
+                                          "frame_rate": rate},
+                               "output": {"folder": str(tmp_path / "out")}, "report": {"enabled": False},
+                               "extraction": {"neuropil_radius_px": 6}, "execution": {"backend": "serial"}})
+    summary = run_pipeline(config, progress=False)
+    with open_results(summary.results_path) as results:
+        record = json.loads(results.read("rhythms/summary_json")[0])
+        freq = results.read("rhythms/freq_hz")
+        neuropil_power = results.read("rhythms/neuropil_power")
+        coherence = results.read("rhythms/coherence")
+    assert record["reference"] == "neuropil"
+    (rhythm,) = record["rhythms"]
+    assert rhythm["frequency_hz"] == pytest.approx(3.0, abs=0.05)
+    assert freq[np.argmax(neuropil_power)] == pytest.approx(3.0, abs=0.05)
+    assert coherence[np.argmin(np.abs(freq - 3.0))] > 0.9

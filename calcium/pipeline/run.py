@@ -313,7 +313,8 @@ def _rhythm_params(config: RunConfig, prepared, params, store, progress):
                           f"lie below half the frame rate ({prepared.frame_rate / 2:g} Hz)")
     return stages.with_rhythms(prepared.source, params, store, action=cfg.action, method=cfg.method,
                                max_rois=cfg.max_rois, segment_s=cfg.segment_s, min_share=cfg.min_share,
-                               false_alarm=cfg.false_alarm, lowest_hz=cfg.lowest_hz, progress=progress)
+                               false_alarm=cfg.false_alarm, lowest_hz=cfg.lowest_hz, progress=progress,
+                               neuropil=store.read("rhythms/neuropil") if prepared.kind == "movie" else None)
 
 
 def _calibration_how(config: RunConfig, electrical) -> str:
@@ -460,7 +461,8 @@ def _layout(config: RunConfig, prepared: _Inputs, electrical_rois: list[int]) ->
     specs += stages.electrical_datasets(len(electrical_rois), len(config.scoring.bin_widths_s))
     specs.append(stages.CALIBRATION_DATASET)
     if config.rhythms.action != "off":
-        specs += stages.rhythm_datasets(t, prepared.frame_rate, config.rhythms.segment_s)
+        searched = len(stages.calibration_rois(n, config.rhythms.max_rois)) if prepared.kind == "movie" else 0
+        specs += stages.rhythm_datasets(t, prepared.frame_rate, config.rhythms.segment_s, neuropil_rois=searched)
     return specs
 
 
@@ -716,6 +718,8 @@ def _extraction(config: RunConfig, prepared: _Inputs, store: ResultStore, work: 
     store.write_rows("extraction/neuropil_factor", (), extraction.neuropil_factor)
     store.write_rows("extraction/roi_pixels", (), extraction.roi_pixels)
     store.write_rows("extraction/neuropil_pixels", (), extraction.neuropil_pixels)
+    if config.rhythms.action != "off":
+        stages.keep_searched_neuropil(store, extraction.neuropil_f, config.rhythms.max_rois)
     store.set_flag("extraction")
     return stages.npy_source(scratch)
 
@@ -1418,18 +1422,22 @@ def _rhythms_section(report, results, rate, trains, per_roi):
     if "freq_hz" not in record and not np.isfinite(results.read("rhythms/freq_hz")).any():
         return
     spectra = {name: results.read(f"rhythms/{name}") for name in stages.RHYTHM_SPECTRA}
+    neuropil = results.read("rhythms/neuropil_power") if "rhythms/neuropil_power" in results else None
     after = spectra["median_power_after"]
+    reference = ("its own neuropil ring" if record.get("reference") == "neuropil" else
+                 "the average of the others")
     report.add_figure(
         rhythm_spectrum_figure(spectra["freq_hz"], spectra["median_power"], background=spectra["background"],
                                low_power=spectra["power_low"], high_power=spectra["power_high"],
                                after=after if np.isfinite(after).any() else None, coherence=spectra["coherence"],
                                coherence_null=rhythms[0]["coherence_null"] if rhythms else None,
-                               peaks_hz=[r["frequency_hz"] for r in rhythms],
+                               peaks_hz=[r["frequency_hz"] for r in rhythms], neuropil=neuropil,
                                resolution_hz=record.get("resolution_hz")),
         name="rhythm-spectrum",
         caption=f"Power spectrum of the inference's input over the {record.get('n_rois', '?')} ROIs searched: median "
-                f"and 10-90 % range, the aperiodic background, the shared rhythms found (dotted) and, below, the "
-                f"median coherence of each ROI with the average of the others.")
+                f"and 10-90 % range, the aperiodic background, the shared rhythms found (dotted)"
+                + (", the neuropil rings' median spectrum (relative to their mean F)" if neuropil is not None else "")
+                + f" and, below, the median coherence of each ROI with {reference}.")
     average = results.read("rhythms/session_average").astype(np.float64)
     if np.isfinite(average).sum() >= 16:
         wavelets = scalogram(average, rate)

@@ -1052,8 +1052,9 @@ def rhythm_bins(n_frames: int, frame_rate: float, segment_s: float) -> int:
         return 1
 
 
-def rhythm_datasets(n_frames: int, frame_rate: float, segment_s: float) -> list[DatasetSpec]:
-    """Layout of the ``rhythms/`` group: the record, the spectra, and the average of the ROIs searched."""
+def rhythm_datasets(n_frames: int, frame_rate: float, segment_s: float, *, neuropil_rois: int = 0) -> list[DatasetSpec]:
+    """Layout of the ``rhythms/`` group: the record, the spectra, the average of the ROIs searched and, for a
+    movie, the neuropil of the ROIs searched (``neuropil_rois`` of them)."""
     bins = (rhythm_bins(n_frames, frame_rate, segment_s),)
     specs = [DatasetSpec(RHYTHMS_RECORD, (1,), "text64000", "shared rhythms found in the session (JSON: settings, "
                          "ROIs searched, each rhythm's frequency, band, share, amplitude, coherence, steadiness and "
@@ -1063,13 +1064,29 @@ def rhythm_datasets(n_frames: int, frame_rate: float, segment_s: float) -> list[
     specs.append(DatasetSpec("rhythms/session_average", (n_frames,), "f4", "average over the ROIs searched of the "
                              "inference's input before removal (for the scalogram and the phase of each rhythm)",
                              "ΔF/F", per_roi=False, fill=np.nan))
+    if neuropil_rois:
+        specs += [DatasetSpec("rhythms/neuropil", (neuropil_rois, n_frames), "f4", "neuropil ring of each ROI searched "
+                              "(movie input), relative to its mean: F / mean(F) - 1", "", per_roi=False, fill=np.nan),
+                  DatasetSpec("rhythms/neuropil_power", bins, "f8", "median over the ROIs searched of the power "
+                              "spectral density of their neuropil", "", per_roi=False, fill=np.nan)]
     return specs
+
+
+def keep_searched_neuropil(store, neuropil_f: np.ndarray, max_rois: int) -> None:
+    """Write the neuropil of the ROIs the rhythm search will use (rows of :func:`calibration_rois`), relative to
+    its mean, into ``rhythms/neuropil`` (at the extraction, the only time it is at hand)."""
+    rows = np.asarray(neuropil_f, dtype=np.float64)[calibration_rois(neuropil_f.shape[0], max_rois)]
+    with np.errstate(invalid="ignore", divide="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        relative = rows / np.nanmean(rows, axis=1, keepdims=True) - 1.0
+    store.write_rows("rhythms/neuropil", (), relative.astype(np.float32))
 
 
 def _rhythm_record(found, rois, action: str, method: str, removal) -> dict:
     """The JSON record of a search (plain numbers and words)."""
     spectra = found.spectra
     return {"action": action, "method": method, "n_rois": int(len(rois)), "rois": [int(r) for r in rois],
+            "reference": spectra.reference,
             "segment_s": spectra.segment_s, "resolution_hz": spectra.resolution_hz, "min_share": found.min_share,
             "false_alarm": found.false_alarm, "lowest_hz": found.lowest_hz, "summary": found.summary(),
             "removal": "" if removal is None else removal.describe(),
@@ -1083,15 +1100,18 @@ def _rhythm_record(found, rois, action: str, method: str, removal) -> dict:
 
 
 def with_rhythms(source: TraceSource, params: StageParams, store, *, action: str, method: str, max_rois: int,
-                 segment_s: float, min_share: float, false_alarm: float, lowest_hz: float, progress=False):
+                 segment_s: float, min_share: float, false_alarm: float, lowest_hz: float, neuropil=None,
+                 progress=False):
     """params with what the chunks need about the session's shared rhythms, found once and recorded in ``store``.
 
     The search (:func:`calcium.signal.rhythms.find_rhythms`) runs on the inference's input (ΔF/F, filtered as
     configured) of at most ``max_rois`` ROIs spread evenly over the session. The bands found are left out of
     every ROI's noise estimate; with ``action = "remove"`` they are also removed from every ROI
     (:func:`calcium.signal.rhythms.remove_rhythms`; a regression is made against the shared component of the
-    ROIs searched, :func:`calcium.signal.rhythms.shared_component`). A session too short to search is said so
-    in the record and left as it is.
+    ROIs searched, :func:`calcium.signal.rhythms.shared_component`). With ``neuropil`` (one row per ROI of
+    :func:`calibration_rois`, from :func:`keep_searched_neuropil`) the coherence of each ROI is taken with its own
+    neuropil and the neuropil's spectrum is recorded too. A session too short to search is said so in the record
+    and left as it is.
     """
     import dataclasses
     import json
@@ -1099,13 +1119,17 @@ def with_rhythms(source: TraceSource, params: StageParams, store, *, action: str
     from ..signal.rhythms import find_rhythms, remove_rhythms, session_spectra, shared_component
 
     rois = calibration_rois(source.n_rois, max_rois)
-    kept, signal = calibration_signal(source, params, rois)
+    kept, signal = calibration_signal(source, params, rois)    # (kept: the ROIs with a usable ΔF/F)
     empty = {"bands_hz": [], "method": method, "reference": None} if action == "remove" else None
     try:
         if kept.size < 2:
             raise ValueError(f"{kept.size} ROI(s) with a usable ΔF/F; the search needs at least 2")
+        rings = None
+        if neuropil is not None:
+            rings = np.asarray(neuropil, dtype=np.float64)[np.searchsorted(rois, kept)]
+            rings = None if (~np.isfinite(rings)).all(axis=1).any() else rings
         found = find_rhythms(signal, params.frame_rate, segment_s=segment_s, min_share=min_share,
-                             false_alarm=false_alarm, lowest_hz=lowest_hz)
+                             false_alarm=false_alarm, lowest_hz=lowest_hz, neuropil=rings)
     except ValueError as exc:
         text = f"shared rhythms not searched: {_first_line(exc)}"
         if progress:
@@ -1117,6 +1141,8 @@ def with_rhythms(source: TraceSource, params: StageParams, store, *, action: str
               "power_low": spectra.quantile_power(0.1), "power_high": spectra.quantile_power(0.9),
               "background": found.median_background, "coherence": spectra.median_coherence,
               "statistic": found.statistic, "threshold": found.threshold}
+    if spectra.neuropil_power is not None:
+        arrays["neuropil_power"] = np.nanmedian(spectra.neuropil_power, axis=0)
     removal = None
     changes = {"rhythms": empty}
     if found.rhythms:
@@ -1135,8 +1161,7 @@ def with_rhythms(source: TraceSource, params: StageParams, store, *, action: str
         print("rhythms: " + lines[1] + ("" if not found.rhythms else " " + "; ".join(
             f"{r.frequency_hz:.2f} Hz in {r.share:.0%} of the ROIs" for r in found.rhythms)), file=sys.stderr,
               flush=True)
-    store.write_rows(RHYTHMS_RECORD, slice(0, 1), [json.dumps(_rhythm_record(found, np.asarray(rois)[kept], action,
-                                                                             method, removal))])
+    store.write_rows(RHYTHMS_RECORD, slice(0, 1), [json.dumps(_rhythm_record(found, kept, action, method, removal))])
     for name, values in arrays.items():
         store.write_rows(f"rhythms/{name}", (), np.asarray(values, dtype=np.float64))
     with warnings.catch_warnings():

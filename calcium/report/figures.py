@@ -1209,8 +1209,8 @@ def plan_figure(plan, *, target_probability=None) -> Figure:
 # periodic artefacts (calcium.signal.rhythms)
 # ---------------------------------------------------------------------------
 def rhythm_spectrum_figure(freq_hz, median_power, *, background=None, low_power=None, high_power=None,
-                           after=None, coherence=None, coherence_null=None, peaks_hz=(), peak_labels=None,
-                           resolution_hz=None, title="power spectrum of the session") -> Figure:
+                           after=None, neuropil=None, coherence=None, coherence_null=None, peaks_hz=(),
+                           peak_labels=None, resolution_hz=None, title="power spectrum of the session") -> Figure:
     """Power spectrum of a session (median over ROIs) with its background, shared peaks and coherence.
 
     Parameters
@@ -1225,6 +1225,9 @@ def rhythm_spectrum_figure(freq_hz, median_power, *, background=None, low_power=
         A range over ROIs (e.g. the 10th and 90th percentiles), shaded.
     after : array_like, shape (bins,), optional
         The median spectrum after the rhythms were removed.
+    neuropil : array_like, shape (bins,), optional
+        The median spectrum of the ROIs' neuropil (in relative units, F /
+        mean(F) − 1, comparable with ΔF/F).
     coherence : array_like, shape (bins,), optional
         Median coherence of the ROIs with their reference; adds a panel.
     coherence_null : float, optional
@@ -1247,7 +1250,7 @@ def rhythm_spectrum_figure(freq_hz, median_power, *, background=None, low_power=
     median = _vector(median_power, "median_power", length=n)
     extra = {key: None if value is None else _vector(value, key, length=n) for key, value in
              (("background", background), ("low_power", low_power), ("high_power", high_power), ("after", after),
-              ("coherence", coherence))}
+              ("neuropil", neuropil), ("coherence", coherence))}
     peaks = list(_vector(np.atleast_1d(np.asarray(peaks_hz, dtype=np.float64)), "peaks_hz", finite=True))
     labels = [f"{p:.3g} Hz" for p in peaks] if peak_labels is None else [str(x) for x in peak_labels]
     if len(labels) != len(peaks):
@@ -1272,6 +1275,8 @@ def rhythm_spectrum_figure(freq_hz, median_power, *, background=None, low_power=
                 label="aperiodic background")
     if extra["after"] is not None:
         ax.plot(freq[keep], extra["after"][keep], color=PALETTE["blue"], linewidth=1.1, label="after removal")
+    if extra["neuropil"] is not None:
+        ax.plot(freq[keep], extra["neuropil"][keep], color=PALETTE["grey"], linewidth=1.1, label="neuropil (median)")
     ax.set_yscale("log")
     ax.set_ylabel("power (ΔF/F² / Hz)")
     for axis in axes:
