@@ -526,13 +526,16 @@ def test_a_run_that_removes_the_rhythm_gives_each_roi_what_remove_rhythms_gives(
     from calcium.pipeline import open_results
 
     traces, rate = _raw_session(tmp_path)
-    summary = _run(tmp_path, traces, method, action="remove", method=method)
+    summary = _run(tmp_path, traces, method, action="remove", method=method, max_rois=7)   # (a part searched)
     assert "removed before the inference" in summary.rhythms
     with open_results(summary.results_path) as results:
         record = json.loads(results.read("rhythms/summary_json")[0])
         dff = results.read("dff").astype(np.float64)
         used = results.read("dff_filtered").astype(np.float64)
         after = results.read("rhythms/median_power_after")
+    from calcium.pipeline.stages import calibration_rois
+
+    assert record["rois"] == calibration_rois(16, 7).tolist() and len(record["rois"]) == 7
     bands = [tuple(r["band_hz"]) for r in record["rhythms"]]
     reference = shared_component(dff[record["rois"]], rate, bands) if method == "regression" else None
     expected = remove_rhythms(dff, rate, bands, method=method, reference=reference).cleaned

@@ -408,17 +408,22 @@ def _infer_calibration(calibration, kernel, indicator):
     raise ValueError(f"calibration must be 'session', 'given', 'per-roi' or a calibration file, got {calibration!r}")
 
 
-def _calibration_record(results) -> dict | None:
-    """The session calibration recorded in an open results file (a dict), or None when there is none."""
-    if stages.CALIBRATION_DATASET.name not in results:
+def _json_record(results, name: str) -> dict | None:
+    """The JSON object held in the text dataset ``name`` of an open results file, or None (absent, empty, broken)."""
+    if name not in results:
         return None
-    text = results.read(stages.CALIBRATION_DATASET.name)[0]
+    text = results.read(name)[0]
     text = text.decode() if isinstance(text, bytes) else str(text)
     try:
         record = json.loads(text) if text.startswith("{") else None
     except json.JSONDecodeError:
         return None
     return record if isinstance(record, dict) else None
+
+
+def _calibration_record(results) -> dict | None:
+    """The session calibration recorded in an open results file (a dict), or None when there is none."""
+    return _json_record(results, stages.CALIBRATION_DATASET.name)
 
 
 def _stored_calibration_summary(results_path) -> str:
@@ -1371,15 +1376,7 @@ def _electrical_section(report, results, indicator, rate, kernel_figure, distrib
 
 def _rhythm_record(results) -> dict | None:
     """The record of the search for shared rhythms in an open results file, or None when it was not run."""
-    if stages.RHYTHMS_RECORD not in results:
-        return None
-    text = results.read(stages.RHYTHMS_RECORD)[0]
-    text = text.decode() if isinstance(text, bytes) else str(text)
-    try:
-        record = json.loads(text) if text.startswith("{") else None
-    except json.JSONDecodeError:
-        return None
-    return record if isinstance(record, dict) else None
+    return _json_record(results, stages.RHYTHMS_RECORD)
 
 
 def _stored_rhythms_summary(results_path) -> str:

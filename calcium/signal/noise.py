@@ -13,6 +13,7 @@ import numpy as np
 import scipy  # scipy loads its submodules on first use: the per-ROI path needs only special
 
 from .._checks import as_traces, check_choice, check_frame_rate, require_some_data
+from ._bands import frequency_pairs
 from ._missing import finite_runs
 
 __all__ = ["estimate_noise", "average_name", "MIN_FRAMES", "AVERAGES"]
@@ -55,11 +56,7 @@ def _check_exclude(exclude_hz) -> tuple[tuple[float, float], ...]:
     """``exclude_hz`` as a tuple of (low, high) pairs in Hz (empty for None)."""
     if exclude_hz is None:
         return ()
-    try:
-        pairs = tuple((float(low), float(high)) for low, high in exclude_hz)
-    except (TypeError, ValueError):
-        raise ValueError(f"exclude_hz must be None or a sequence of (low, high) pairs of frequencies in Hz, such as "
-                         f"[(4.8, 5.2)]; got {exclude_hz!r}") from None
+    pairs = frequency_pairs(exclude_hz, "exclude_hz", "[(4.8, 5.2)] (or None)")
     for low, high in pairs:
         if not (math.isfinite(low) and math.isfinite(high) and 0.0 <= low < high):
             raise ValueError(f"exclude_hz holds ({low:g}, {high:g}); each band must be (low, high) with "

@@ -44,6 +44,7 @@ import numpy as np
 import scipy  # submodules (signal, special, stats, ndimage) load on first use
 
 from .._checks import as_traces, check_choice, check_frame_rate, check_int, check_positive, require_some_data
+from ._bands import frequency_pairs
 from ._missing import fill_gaps_linear, grow_mask, row_chunks
 from .filters import ZeroPhaseFilter, design_filter
 
@@ -1342,11 +1343,7 @@ def _band_list(bands_hz, frame_rate: float) -> tuple:
     if isinstance(bands_hz, SessionRhythms):
         bands_hz = bands_hz.bands_hz
     nyquist = frame_rate / 2.0
-    try:
-        bands = tuple((float(low), float(high)) for low, high in bands_hz)
-    except (TypeError, ValueError):
-        raise ValueError(f"bands_hz must be a sequence of (low, high) pairs in Hz, such as [(9.8, 10.2)], or the "
-                         f"result of find_rhythms; got {bands_hz!r}") from None
+    bands = frequency_pairs(bands_hz, "bands_hz", "[(9.8, 10.2)] (or the result of find_rhythms)")
     for low, high in bands:
         if not (0.0 < low < high <= nyquist):
             raise ValueError(f"bands_hz holds ({low:g}, {high:g}); each band must satisfy 0 < low < high <= "
