@@ -340,6 +340,9 @@ def cmd_rhythms(args):
     figures = _figure_paths(args.figures, names, overwrite=args.overwrite, inputs=inputs) if args.figures else None
     data = _read_traces(args.input, args.dataset, args)
     rate = _frame_rate(args, data)
+    n_rois = data.traces.reshape(-1, data.traces.shape[-1]).shape[0]
+    if args.roi is not None and not 0 <= args.roi < n_rois:
+        raise UsageError(f"--roi {args.roi} is out of range: {args.input} has ROIs 0 to {n_rois - 1}")
     neuropil = _read_traces(args.neuropil, args.neuropil_dataset).traces if args.neuropil else None
     try:
         found = find_rhythms(data.traces, rate, segment_s=args.segment_s, min_share=args.min_share,
@@ -395,16 +398,21 @@ def cmd_rhythms(args):
                                            coherence_null=found.rhythms[0].coherence_null if found.rhythms else None,
                                            peaks_hz=[r.frequency_hz for r in found.rhythms],
                                            resolution_hz=spectra.resolution_hz), figures[0])
-        average = np.nanmean(np.where(np.isfinite(traces), traces, np.nan), axis=0)
-        wavelets = scalogram(average, rate)
+        if args.roi is None:
+            shown, what = np.nanmean(np.where(np.isfinite(traces), traces, np.nan), axis=0), "the average of the ROIs"
+        else:
+            shown, what = traces[args.roi], f"ROI {args.roi}"
+        try:
+            wavelets = scalogram(shown, rate)
+            windows = spectrogram(shown, rate, window_s=spectra.segment_s)
+        except ValueError as exc:
+            raise _fail(args.input, exc) from exc
         save_figure(time_frequency_figure(wavelets.time_s, wavelets.freq_hz, wavelets.amplitude,
                                           reliable=wavelets.reliable, log_frequency=True,
-                                          resolution=wavelets.describe(), title="scalogram of the average of the ROIs"),
-                    figures[1])
-        windows = spectrogram(average, rate, window_s=spectra.segment_s)
+                                          resolution=wavelets.describe(), title=f"scalogram of {what}"), figures[1])
         save_figure(time_frequency_figure(windows.time_s, windows.freq_hz, windows.power,
                                           value_label="power (ΔF/F² / Hz)", resolution=windows.describe(),
-                                          title="spectrogram of the average of the ROIs"), figures[2])
+                                          title=f"spectrogram of {what}"), figures[2])
         _say(args, "figures -> " + ", ".join(str(path) for path in figures))
 
 
@@ -816,6 +824,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--surrogates", type=int, default=999,
                    help="surrogate spike trains of the locking test (default 999)")
     p.add_argument("--figures", help="folder for the spectrum, scalogram and spectrogram (PNG)")
+    p.add_argument("--roi", type=int, help="the scalogram and spectrogram of this ROI (default: of the average)")
     output(p, required=False, help_text="traces without the rhythms (.h5, .npy or .csv; with --remove)")
 
     p = add("alias", cmd_alias, "where a rhythm appears once sampled at a frame rate, and what could cause a peak")

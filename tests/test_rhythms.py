@@ -587,7 +587,7 @@ def test_cli_finds_removes_and_reports_locking(tmp_path, capsys):
     t = np.arange(20, 110, 0.1)                                  # at the 10 Hz rhythm's frames: locked
     spikes = write_spike_table(tmp_path / "spikes.csv", {0: t, 1: rng.uniform(5, 115, 300)})
     code, out, err = _cli(capsys, "rhythms", source, "--remove", "notch", "--out", tmp_path / "clean.h5", "--spikes",
-                          spikes, "--surrogates", 99, "--figures", tmp_path / "figures", "--quiet")
+                          spikes, "--surrogates", 99, "--figures", tmp_path / "figures", "--roi", 3, "--quiet")
     assert code == 0, err
     assert "1 shared rhythm(s)" in out and "10.00 Hz" in out
     assert "phase locking to 10.00 Hz" in out and "ROI 0: locked" in out
@@ -598,7 +598,7 @@ def test_cli_finds_removes_and_reports_locking(tmp_path, capsys):
         "rhythm-scalogram.png", "rhythm-spectrogram.png", "rhythm-spectrum.png"]
     code, _, err = _cli(capsys, "rhythms", source, "--remove", "notch", "--out", tmp_path / "clean.h5")
     assert code == 1 and "--overwrite" in err
-    for args in (("--out", tmp_path / "x.h5"), ("--remove", "notch"), ("--rhythm-trace", source)):
+    for args in (("--out", tmp_path / "x.h5"), ("--remove", "notch"), ("--rhythm-trace", source), ("--roi", 12)):
         code, _, err = _cli(capsys, "rhythms", source, *args)
         assert code == 2 and "Traceback" not in err
 

@@ -1031,9 +1031,16 @@ def find_rhythms(traces, frame_rate, *, segment_s=SEGMENT_S, min_share=0.25, fal
        median + z × spread, z the normal quantile of ``false_alarm``
        divided by the number of frequencies searched (Bonferroni), and when
        its excess over the background is at least 0.5 (power 1.5 times the
-       background: smaller excesses were seen at the knee of clean
-       spectra, measured in scripts/bench_rhythms.py). Neighbouring retained
-       bins form one peak.
+       background). That floor is ours, from measurements on the rhythm-free
+       sessions of scripts/bench_rhythms.py: their statistic reached 1.07
+       (20-minute sessions of 200 ROIs) to 1.23 (5-minute sessions of 30
+       ROIs), and up to 1.63 in 2-minute sessions of 10 ROIs (where the
+       robust threshold is higher anyway); it keeps tiny features that are
+       consistent across a large session from counting, and above the
+       calcium band it lets through a sinusoid of about a tenth of the noise
+       s.d. (A² N / 6 = 0.5 with N = 300 frames per segment, from the
+       closed form of a sinusoid's Welch peak). Neighbouring retained bins
+       form one peak.
     5. Description of each peak: its band (half the peak's excess, plus a
        bin each side), the share of ROIs whose own ratio at the peak exceeds
        the χ²_ν/ν quantile of 0.01 / (bins in the band), the amplitude of a
@@ -1080,8 +1087,12 @@ def find_rhythms(traces, frame_rate, *, segment_s=SEGMENT_S, min_share=0.25, fal
 
 
 _MIN_EXCESS = 0.5            # see find_rhythms, Notes 4
+# Half-width of the running median: it ignores peaks narrower than itself (half its window); the drifting rhythms
+# of scripts/bench_rhythms.py spread over up to 0.6 Hz.
 _BACKGROUND_HALF_WIDTH_HZ = 1.0
+# Level at which a single ROI's peak counts as its own (Bonferroni over the band's bins): common practice.
 _ROI_ALPHA = 0.01
+# Bins added on each side of the half-excess band (see _peaks).
 _LOBE = 1
 
 
