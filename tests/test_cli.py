@@ -403,3 +403,13 @@ def test_every_option_of_every_command_has_a_help_text():
     silent = [(name, action.option_strings or action.dest) for name, command in sub.choices.items()
               for action in command._actions if action.help is None]
     assert silent == []
+
+
+def test_report_works_on_the_results_of_infer(tmp_path):
+    # (report --help says it takes the results of calcium infer; it used to refuse them)
+    rec = calcium.simulate_recording(4, 60.0, 30.0, indicator="GCaMP6s", seed=6)
+    dff = write_traces(tmp_path / "dff.h5", rec.dff, frame_rate=30.0)
+    assert main(["infer", str(dff), "--out", str(tmp_path / "s.h5"), "--workers", "1", "--quiet"]) == 0
+    assert main(["report", str(tmp_path / "s.h5"), "--out", str(tmp_path / "rep"), "--quiet"]) == 0
+    page = (tmp_path / "rep" / "index.html").read_text(encoding="utf-8")
+    assert "All 4 ROIs" in page and "Spike counts: calibration" in page

@@ -1002,6 +1002,7 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
 # ---------------------------------------------------------------------------
 # the report
 # ---------------------------------------------------------------------------
+_RUN_ONLY = ("f0_min",)  # per-ROI results that only calcium run writes (from raw fluorescence)
 _PER_ROI = ("noise_sd", "snr", "n_spikes", "missing_frames", "f0_min", "saturated_frames", "quality_flags",
             "flags", "kernel_rise_s", "kernel_decay_s", "kernel_amplitude", "converged", "baseline", "penalty")
 
@@ -1146,11 +1147,12 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
 
                 electrical_spikes = read_spike_times(path)
         electrical_spikes = electrical_spikes or {}
-        missing = [name for name in _PER_ROI if name not in results]
+        missing = [name for name in _PER_ROI if name not in results and name not in _RUN_ONLY]
         if missing:
-            raise ValueError(f"{results_path} has no {', '.join(missing)}: the session report needs the results of "
-                             f"a whole-session run (calcium run), not of inference alone (calcium infer)")
-        per_roi = {name: results.read(name) for name in _PER_ROI}
+            raise ValueError(f"{results_path} has no {', '.join(missing)}: not a results file of calcium run or "
+                             f"calcium infer")
+        # (the results of calcium infer have no F0: its input already was ΔF/F)
+        per_roi = {name: results.read(name) if name in results else np.full(n_rois, np.nan) for name in _PER_ROI}
         calibration = _read_calibration(results)
         # electrical spikes drawn on the imaging clock: add the fitted clock lag where there is one
         lags = {}
