@@ -600,3 +600,49 @@ def test_the_former_name_of_the_detection_figure_still_works_with_a_deprecation_
     with pytest.warns(DeprecationWarning, match="detection_figure"):
         fig = planner_figure([10.0, 20.0], [[0.5, 0.6]], noise_sd=[0.1])
     assert fig.axes
+
+
+# ---------------------------------------------------------------------------
+# the session report, laid out from data handed in (no results file)
+# ---------------------------------------------------------------------------
+def _page_text(page: Path) -> str:
+    text = re.sub(r"<(script|style)[^>]*>.*?</\1>", "", page.read_text(encoding="utf-8"), flags=re.S)
+    return " ".join(html.unescape(re.sub(r"<[^>]+>", " ", text)).split())
+
+
+def _session_data(n_rois=3, *, flagged=()):
+    from calcium.report.session import ExampleRoi, SessionData
+
+    rng = np.random.default_rng(0)
+    n_frames = 600
+    flags = np.zeros(n_rois, dtype=np.int64)
+    flags[list(flagged)] = 2
+    per_roi = {"noise_sd": np.full(n_rois, 0.02), "snr": np.linspace(3.0, 9.0, n_rois),
+               "n_spikes": np.arange(n_rois) + 1, "missing_frames": np.zeros(n_rois, dtype=int),
+               "f0_min": np.full(n_rois, np.nan), "quality_flags": flags,
+               "flags": np.array(["low SNR" if f else "" for f in flags]),
+               "kernel_rise_s": np.full(n_rois, 0.01), "kernel_decay_s": np.full(n_rois, 0.4),
+               "kernel_amplitude": np.full(n_rois, 0.2)}
+    trains = [np.sort(rng.uniform(0, n_frames / FRAME_RATE, k + 1)) for k in range(n_rois)]
+    dff = rng.normal(0, 0.02, n_frames)
+    examples = [ExampleRoi(roi=r, raw=1.0 + dff, where="raw F (handed in)", traces={"dff": dff, "denoised": dff * 0},
+                           flags=str(per_roi["flags"][r])) for r in range(n_rois)]
+    return SessionData(results_path="results.h5", calcium_version="test", inputs={}, frame_rate=FRAME_RATE,
+                       n_rois=n_rois, n_frames=n_frames, per_roi=per_roi, flag_names={2: "low SNR"},
+                       flag_descriptions=[str(f) for f in per_roi["flags"]], failed=np.zeros(n_rois, bool),
+                       spike_times=trains, examples=examples)
+
+
+def test_session_report_lays_out_the_data_it_is_handed(tmp_path):
+    from calcium.report.session import session_report
+
+    session = _session_data()
+    page = session_report(session).write(tmp_path / "report")
+    text = _page_text(page)
+    # 1 + 2 + 3 spikes handed in
+    assert "6 spikes inferred in total" in text
+    assert "3 ROIs, 600 frames at 30 Hz" in text
+    for roi in range(3):
+        assert (tmp_path / "report" / "figures" / f"roi-{roi}.png").is_file()
+    assert "All 3 ROIs." in text
+    assert "fitted kernels and scores" not in text and "Periodic artefacts" not in text

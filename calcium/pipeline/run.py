@@ -15,7 +15,6 @@ from __future__ import annotations
 import contextlib
 import errno
 import json
-import math
 import os
 import shutil
 import sys
@@ -680,7 +679,7 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
                                            indicator=config.inference.indicator, progress=progress)
     nwb_path = None
     if config.nwb.enabled:
-        from ..io.nwb import export_nwb
+        from .nwb import export_nwb
 
         nwb_path = export_nwb(results_path, folder / NWB_NAME,
                               session_description=config.nwb.session_description,
@@ -1050,34 +1049,6 @@ def _raw_rows(results, roi: int):
     return f0 * (1.0 + dff), "F = F0 (1 + ΔF/F) (the input file was not readable)"
 
 
-def _reference_range(indicator, quantity: str):
-    """(low, high) allowed for ``quantity`` of ``indicator`` by :func:`calcium.fit.check_kinetics`, or None."""
-    if not indicator:
-        return None
-    from ..fit import check_kinetics
-    from ..kernel import Kernel
-
-    check = check_kinetics(Kernel.from_indicator(indicator), indicator)
-    for row in check.rows:
-        if row.quantity == quantity:
-            return (row.published * row.limits[0], row.published * row.limits[1]), check.indicator
-    return None
-
-
-def _half_decays(rise, decay) -> np.ndarray:
-    from ..kernel import Kernel
-
-    out = np.full(rise.shape, np.nan)
-    cache = {}
-    for i, (r, d) in enumerate(zip(rise, decay)):
-        if np.isfinite(r) and np.isfinite(d) and d > 0 and 0 <= r < d:
-            key = (float(r), float(d))
-            if key not in cache:
-                cache[key] = Kernel(*key).half_decay_s
-            out[i] = cache[key]
-    return out
-
-
 def _recorded_input(results_path: Path, role: str):
     """The path of input ``role`` recorded in a results file, or None (also when the file is unreadable)."""
     try:
@@ -1094,6 +1065,116 @@ def _protect_report_inputs(results_path: Path, folder: Path) -> None:
     inputs = {"results": results_path, "electrical spikes": _recorded_input(results_path, "electrical_spikes")}
     protect_inputs(inputs, files=[folder / "index.html"], folders=[folder / "figures"],
                    remedy="choose another report folder")
+
+
+def _example_data(results, roi: int, per_roi: dict, electrical_spikes: dict, lags: dict):
+    """What the report draws of example ROI ``roi``, read from an open results file."""
+    from ..report.session import ExampleRoi
+
+    raw, where = _raw_rows(results, roi)
+    values = {name: results.read(name, roi).astype(np.float64)
+              for name in ("f0", "dff", "dff_filtered", "denoised") if name in results}
+    if "f0" not in values and raw is not None and "dff" in values:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            values["f0"] = raw / (1.0 + values["dff"])  # (ΔF/F = F / F0 - 1; F0 not stored)
+    missing = None  # (the frames where raw is NaN)
+    if raw is None:
+        raw = np.full(results.n_frames, np.nan)
+        missing = ~np.isfinite(values["dff"]) if "dff" in values else None
+    flags = per_roi["quality_flags"]
+    if flags[roi] & stages.FLAG_FAILED:
+        values = {k: v for k, v in values.items() if np.isfinite(v).any()}
+    return ExampleRoi(roi=roi, raw=raw, where=where, traces=values, missing=missing,
+                      electrical_spikes=(electrical_spikes[roi] + lags.get(roi, 0.0)
+                                         if roi in electrical_spikes else None),
+                      flags=str(per_roi["flags"][roi]) if flags[roi] else "")
+
+
+def _electrical_data(results) -> dict | None:
+    """Kernel fits and scores of the ROIs with electrical spikes, read from an open results file (None: none)."""
+    if "electrical/roi" not in results:
+        return None
+    return {"roi": results.read("electrical/roi"),
+            "fit": {name: results.read(f"electrical/fit_{name}") for name in
+                    ("rise_s", "decay_s", "amplitude", "half_decay_s", "lag_s", "r_squared")},
+            "score": {name: results.read(f"electrical/score_{name}") for name in
+                      ("precision", "recall", "f1", "n_true", "n_inferred", "n_matched", "timing_error_mean_s")},
+            "notes": results.read("electrical/note"),
+            "bin_widths_s": results.read("electrical/bin_widths_s"),
+            "correlation": results.read("electrical/score_correlation")}
+
+
+def _rhythms_data(results, per_roi: dict):
+    """The recorded search for shared rhythms, read from an open results file (None: the search was off)."""
+    from ..report.session import RhythmsData
+
+    if stages.RHYTHMS_RECORD not in results:
+        return None
+    record = _rhythm_record(results)
+    if record is None:
+        return None
+    spectra = {name: results.read(f"rhythms/{name}") for name in stages.RHYTHM_SPECTRA}
+    neuropil = results.read("rhythms/neuropil_power") if "rhythms/neuropil_power" in results else None
+    average = results.read("rhythms/session_average").astype(np.float64)
+    rhythms = record.get("rhythms") or []
+    searched = [int(r) for r in record.get("rois", [])][:100]
+    roi = int(rhythms[0].get("example_roi", searched[0] if searched else 0)) if rhythms else None
+    if roi is None or "dff" not in results or per_roi["quality_flags"][roi] & stages.FLAG_FAILED:
+        return RhythmsData(record=record, spectra=spectra, neuropil=neuropil, average=average)
+    after = None
+    if record.get("action") == "remove" and "dff_filtered" in results:
+        after = results.read("dff_filtered", roi).astype(np.float64)
+    return RhythmsData(record=record, spectra=spectra, neuropil=neuropil, average=average, example_roi=roi,
+                       before=results.read("dff", roi).astype(np.float64), after=after,
+                       kernel=(float(per_roi["kernel_rise_s"][roi]), float(per_roi["kernel_decay_s"][roi]),
+                               float(per_roi["kernel_amplitude"][roi])),
+                       noise_sd=float(per_roi["noise_sd"][roi]))
+
+
+def _read_session(results_path: Path, *, n_examples: int, electrical_spikes, indicator):
+    """Everything the session report shows, read from the results file ``results_path``."""
+    from ..report.session import SessionData
+
+    with open_results(results_path) as results:
+        rate, n_rois, n_frames = results.frame_rate, results.n_rois, results.n_frames
+        attrs = results.attrs
+        settings = attrs.get("settings") or {}
+        if indicator is None:
+            indicator = (settings.get("inference") or {}).get("indicator")
+        if electrical_spikes is None:
+            path = (attrs.get("inputs") or {}).get("electrical_spikes", {}).get("path")
+            if path and Path(path).is_file():
+                from ..io import read_spike_times
+
+                electrical_spikes = read_spike_times(path)
+        electrical_spikes = electrical_spikes or {}
+        missing = [name for name in _PER_ROI if name not in results and name not in _RUN_ONLY]
+        if missing:
+            raise ValueError(f"{results_path} has no {', '.join(missing)}: not a results file of calcium run or "
+                             f"calcium infer")
+        # (the results of calcium infer have no F0: its input already was ΔF/F)
+        per_roi = {name: results.read(name) if name in results else np.full(n_rois, np.nan) for name in _PER_ROI}
+        # electrical spikes drawn on the imaging clock: add the fitted clock lag where there is one
+        lags = {}
+        if "electrical/roi" in results and "electrical/fit_lag_s" in results:
+            lags = {int(r): float(lag) for r, lag in zip(results.read("electrical/roi"),
+                                                         results.read("electrical/fit_lag_s")) if np.isfinite(lag)}
+        bounds = results.read("progress/chunk_bounds")
+        trains = []
+        for start, stop in zip(bounds[:-1], bounds[1:]):
+            for row, offset in zip(results.read("spike_counts", np.s_[start:stop]),
+                                   results.read("spike_time_offset_s", np.s_[start:stop])):
+                trains.append(stages.inferred_spike_times(row, offset, rate))
+        flags = per_roi["quality_flags"]
+        examples = [_example_data(results, roi, per_roi, electrical_spikes, lags)
+                    for roi in _example_rois(per_roi, sorted(electrical_spikes), n_examples)]
+        return SessionData(results_path=str(results_path), calcium_version=str(attrs.get("calcium_version", "?")),
+                           inputs=dict(attrs.get("inputs") or {}), frame_rate=rate, n_rois=n_rois,
+                           n_frames=n_frames, per_roi=per_roi, flag_names=dict(stages.FLAG_NAMES),
+                           flag_descriptions=[stages.describe_flags(f) for f in flags],
+                           failed=(flags & stages.FLAG_FAILED) != 0, spike_times=trains, indicator=indicator,
+                           examples=examples, calibration=_read_calibration(results),
+                           electrical=_electrical_data(results), rhythms=_rhythms_data(results, per_roi))
 
 
 def write_session_report(results_path, folder, *, n_examples: int = 6, electrical_spikes=None, indicator=None,
@@ -1128,147 +1209,14 @@ def write_session_report(results_path, folder, *, n_examples: int = 6, electrica
         the results file or the electrical spikes file it reads (checked
         before anything is written).
     """
-    from ..report import (HtmlReport, distribution_figure, kernel_figure, noise_figure, raster_figure,
-                          score_figure, stages_figure)
+    from ..report.session import session_report
 
     results_path = Path(results_path)
     folder = Path(folder)
     _protect_report_inputs(results_path, folder)
-    with open_results(results_path) as results:
-        rate, n_rois, n_frames = results.frame_rate, results.n_rois, results.n_frames
-        attrs = results.attrs
-        settings = attrs.get("settings") or {}
-        if indicator is None:
-            indicator = (settings.get("inference") or {}).get("indicator")
-        if electrical_spikes is None:
-            path = (attrs.get("inputs") or {}).get("electrical_spikes", {}).get("path")
-            if path and Path(path).is_file():
-                from ..io import read_spike_times
-
-                electrical_spikes = read_spike_times(path)
-        electrical_spikes = electrical_spikes or {}
-        missing = [name for name in _PER_ROI if name not in results and name not in _RUN_ONLY]
-        if missing:
-            raise ValueError(f"{results_path} has no {', '.join(missing)}: not a results file of calcium run or "
-                             f"calcium infer")
-        # (the results of calcium infer have no F0: its input already was ΔF/F)
-        per_roi = {name: results.read(name) if name in results else np.full(n_rois, np.nan) for name in _PER_ROI}
-        calibration = _read_calibration(results)
-        # electrical spikes drawn on the imaging clock: add the fitted clock lag where there is one
-        lags = {}
-        if "electrical/roi" in results and "electrical/fit_lag_s" in results:
-            lags = {int(r): float(lag) for r, lag in zip(results.read("electrical/roi"),
-                                                         results.read("electrical/fit_lag_s")) if np.isfinite(lag)}
-        bounds = results.read("progress/chunk_bounds")
-        trains = []
-        for start, stop in zip(bounds[:-1], bounds[1:]):
-            for row, offset in zip(results.read("spike_counts", np.s_[start:stop]),
-                                   results.read("spike_time_offset_s", np.s_[start:stop])):
-                trains.append(stages.inferred_spike_times(row, offset, rate))
-        duration_s = n_frames / rate
-        flags = per_roi["quality_flags"]
-        report = HtmlReport("Session analysis", subtitle=f"{n_rois} ROIs, {n_frames} frames at {rate:g} Hz "
-                                                         f"({duration_s / 60:.1f} min)")
-
-        # -- summary -----------------------------------------------------
-        report.add_section("Summary")
-        lines = [f"Results: {results_path}", f"Analysed with calcium {attrs.get('calcium_version', '?')}."]
-        for role, entry in (attrs.get("inputs") or {}).items():
-            lines.append(f"Input {role}: {entry['path']} (SHA-256 {entry['sha256'][:16]}…)")
-        report.add_text("\n".join(lines))
-        counts = [(name, int(np.count_nonzero(flags & bit))) for bit, name in stages.FLAG_NAMES.items()]
-        report.add_table(["quality flag", "ROIs"], [[name, n] for name, n in counts] +
-                         [["any flag", int(np.count_nonzero(flags))], ["no flag", int(np.count_nonzero(flags == 0))]],
-                         sortable=False, caption="ROIs per quality flag (a ROI can have several).")
-        total = sum(t.size for t in trains)
-        report.add_text(f"{total} spikes inferred in total ({total / max(n_rois, 1) / duration_s:.3g} per ROI per "
-                        f"second on average).")
-
-        # -- raster --------------------------------------------------------
-        report.add_section("Inferred spikes of all ROIs")
-        report.add_figure(raster_figure(trains, duration_s), name="raster",
-                          caption="Inferred spikes of every ROI (many ROIs: summed counts in groups of ROIs "
-                                  "and time bins).")
-
-        # -- examples ------------------------------------------------------
-        examples = _example_rois(per_roi, sorted(electrical_spikes), n_examples)
-        if examples:
-            report.add_section("Example ROIs through the stages",
-                               "Chosen to span the range of signal-to-noise ratios (ROIs with electrical "
-                               "spikes first, one flagged ROI last).")
-            for roi in examples:
-                raw, where = _raw_rows(results, roi)
-                values = {name: results.read(name, roi).astype(np.float64)
-                          for name in ("f0", "dff", "dff_filtered", "denoised") if name in results}
-                if "f0" not in values and raw is not None and "dff" in values:
-                    with np.errstate(divide="ignore", invalid="ignore"):
-                        values["f0"] = raw / (1.0 + values["dff"])  # (ΔF/F = F / F0 - 1; F0 not stored)
-                missing = None  # (the frames where raw is NaN)
-                if raw is None:
-                    raw = np.full(results.n_frames, np.nan)
-                    missing = ~np.isfinite(values["dff"]) if "dff" in values else None
-                if flags[roi] & stages.FLAG_FAILED:
-                    values = {k: v for k, v in values.items() if np.isfinite(v).any()}
-                fig = stages_figure(rate, raw, f0=values.get("f0"), dff=values.get("dff"),
-                                    filtered=values.get("dff_filtered"), denoised=values.get("denoised"),
-                                    spike_times=trains[roi],
-                                    true_spike_times=(electrical_spikes[roi] + lags.get(roi, 0.0)
-                                                      if roi in electrical_spikes else None),
-                                    missing=missing, roi_label=f"ROI {roi}")
-                note = f"; flags: {per_roi['flags'][roi]}" if flags[roi] else ""
-                report.add_figure(fig, name=f"roi-{roi}", caption=f"ROI {roi}: {where}, F0, ΔF/F, denoised fit "
-                                                                   f"and inferred spikes{note}.")
-
-        # -- noise, SNR, kinetics -------------------------------------------
-        report.add_section("Noise, signal-to-noise ratio and kinetics")
-        ok = (flags & stages.FLAG_FAILED) == 0
-        if ok.any():
-            report.add_figure(noise_figure(per_roi["noise_sd"]), name="noise",
-                              caption="Noise standard deviation of ΔF/F per ROI.")
-        report.add_figure(distribution_figure(per_roi["snr"], name="SNR", unit=""), name="snr",
-                          caption="Signal-to-noise ratio (peak of the denoised ΔF/F over the noise s.d.) over ROIs.")
-        half = _half_decays(per_roi["kernel_rise_s"], per_roi["kernel_decay_s"])
-        reference = _reference_range(indicator, "half-decay")
-        known = half[np.isfinite(half)]
-        if calibration is not None:
-            _calibration_section(report, calibration, rate, n_rois)
-        elif known.size and np.ptp(known) == 0:
-            report.add_text(f"The inference used one fixed kernel for every ROI (half-decay time {known[0]:.3g} s"
-                            + (f", from the published kinetics of {indicator})." if indicator else ")."))
-        else:
-            report.add_figure(distribution_figure(half, name="half-decay time of the inference kernel", unit="s",
-                                                  reference_range=None if reference is None else reference[0],
-                                                  reference_label=f"{reference[1]} range" if reference else "range"),
-                              name="kernel-half-decay",
-                              caption="Half-decay time of the kernel estimated by the inference, per ROI"
-                                      + (f"; shaded: the range accepted for {reference[1]} (a factor 2 around the "
-                                         f"published value)." if reference else "."))
-
-        if "electrical/roi" in results:
-            _electrical_section(report, results, indicator, rate, kernel_figure, distribution_figure,
-                                score_figure)
-
-        if stages.RHYTHMS_RECORD in results:
-            _rhythms_section(report, results, rate, trains, per_roi)
-
-        # -- per-ROI table ---------------------------------------------------
-        report.add_section("Quality flags and per-ROI table",
-                           "Flags: failed (no results), low SNR, saturation suspected (raw maximum repeated), F0 "
-                           "problem (F0 <= 0 or clipped at the floor), many missing frames, solver not converged. "
-                           "Click a column heading to sort.")
-        header = ["ROI", "spikes", "rate (Hz)", "noise SD (ΔF/F)", "SNR", "missing frames", "min F0",
-                  "kernel decay (s)", "flags"]
-        rows = [[i, int(per_roi["n_spikes"][i]), per_roi["n_spikes"][i] / duration_s, per_roi["noise_sd"][i],
-                 per_roi["snr"][i], int(per_roi["missing_frames"][i]), per_roi["f0_min"][i],
-                 per_roi["kernel_decay_s"][i], stages.describe_flags(flags[i])] for i in range(n_rois)]
-        if calibration is not None:
-            sizes = calibration["per_roi"]
-            header[2:2] = ["spikes (90 % interval)", "spike size ΔF/F (90 %)", "calibrated"]
-            for i, row in enumerate(rows):
-                row[2:2] = [f"{int(sizes['count_low'][i])}-{int(sizes['count_high'][i])}",
-                            f"{sizes['spike_size'][i]:.3g} ({sizes['spike_size_low'][i]:.3g}-"
-                            f"{sizes['spike_size_high'][i]:.3g})", "yes" if sizes["calibrated"][i] else "NO"]
-        report.add_table(header, rows, caption=f"All {n_rois} ROIs.", flags=[str(f) for f in per_roi["flags"]])
+    session = _read_session(results_path, n_examples=n_examples, electrical_spikes=electrical_spikes,
+                            indicator=indicator)
+    report = session_report(session)
     # a report left half-written (a full disk) must not pass for a finished one: the old page goes first,
     # the new one is written last, after its figures
     with contextlib.suppress(FileNotFoundError):
@@ -1289,93 +1237,6 @@ def _read_calibration(results):
     return {"session": record, "per_roi": {n: results.read(n) for n in _CALIBRATION_PER_ROI}}
 
 
-def _calibration_section(report, calibration, rate, n_rois):
-    """Report section: how the counts were calibrated, the session kernel with its spread, each ROI's size."""
-    from ..kernel import Kernel
-    from ..report import calibration_figure
-
-    session, per_roi = calibration["session"], calibration["per_roi"]
-    calibrated = per_roi["calibrated"].astype(bool)
-    n_bad = int(n_rois - calibrated.sum())
-    text = session.get("summary", "")
-    verdict = (f"{n_bad} of {n_rois} ROIs have UNCALIBRATED counts: their single-spike size could not be identified "
-               f"(reason in the table's flags). Do not read their counts as numbers of spikes." if n_bad else
-               "Every ROI's count is calibrated.")
-    report.add_section("Spike counts: calibration", verdict)
-    for line in text.splitlines():
-        report.add_text(line)
-    if session.get("source") in (None, "none") or "rise_s" not in session:
-        return
-    sizes = per_roi["spike_size"]
-    median = float(np.nanmedian(sizes)) if np.isfinite(sizes).any() else 1.0
-    duration = 5.0 * float(session["decay_s"])
-    time = np.linspace(0.0, duration, 400)
-    shape = Kernel(float(session["rise_s"]), float(session["decay_s"]), median)
-    spread = []
-    rise_range, decay_range = session.get("rise_range_s", []), session.get("decay_range_s", [])
-    if len(rise_range) == 2 and len(decay_range) == 2 and np.all(np.isfinite(rise_range + decay_range)):
-        for rise in rise_range:
-            for decay in decay_range:
-                if 0 <= rise < decay:
-                    spread.append(Kernel(rise, decay, median).evaluate(time))
-    fig = calibration_figure(time, shape.evaluate(time), np.array(spread), sizes, per_roi["spike_size_low"],
-                             per_roi["spike_size_high"], calibrated,
-                             kinetics_label=f"session kernel ({session.get('source')})")
-    report.add_figure(fig, name="calibration",
-                      caption="Left: the kernel shared by the session's ROIs, at the median single-spike size, with "
-                              "the range of the per-ROI kinetics (10-90 %). Right: each ROI's single-spike ΔF/F with "
-                              "its 90 % interval; hollow markers: uncalibrated ROIs.")
-
-
-def _electrical_section(report, results, indicator, rate, kernel_figure, distribution_figure, score_figure):
-    rois = results.read("electrical/roi")
-    fit = {name: results.read(f"electrical/fit_{name}") for name in
-           ("rise_s", "decay_s", "amplitude", "half_decay_s", "lag_s", "r_squared")}
-    score = {name: results.read(f"electrical/score_{name}") for name in
-             ("precision", "recall", "f1", "n_true", "n_inferred", "n_matched", "timing_error_mean_s")}
-    notes = results.read("electrical/note")
-    report.add_section("ROIs with electrical spikes: fitted kernels and scores")
-    reference = _reference_range(indicator, "half-decay")
-    report.add_figure(distribution_figure(fit["half_decay_s"], name="fitted half-decay time", unit="s",
-                                          reference_range=None if reference is None else reference[0],
-                                          reference_label=f"{reference[1]} range" if reference else "range"),
-                      name="fit-half-decay", caption="Half-decay time of the kernels fitted to the electrical spikes.")
-    amplitude = _reference_range(indicator, "single-spike ΔF/F")
-    report.add_figure(distribution_figure(fit["amplitude"], name="fitted single-spike ΔF/F", unit="ΔF/F",
-                                          reference_range=None if amplitude is None else amplitude[0],
-                                          reference_label=f"{amplitude[1]} range" if amplitude else "range"),
-                      name="fit-amplitude", caption="Peak ΔF/F of one spike in the fitted kernels.")
-    good = np.isfinite(fit["decay_s"])
-    if good.any():
-        from ..kernel import Kernel
-
-        median = Kernel(float(np.median(fit["rise_s"][good])), float(np.median(fit["decay_s"][good])),
-                        float(np.median(fit["amplitude"][good])))
-        n = int(math.ceil(5 * median.decay_s * rate)) + 1
-        time_s = np.arange(n) / rate
-        reference_kernel = None
-        if indicator:
-            reference_kernel = Kernel.from_indicator(indicator).impulse_response(rate, n)
-        report.add_figure(kernel_figure(time_s, fitted=median.impulse_response(rate, n),
-                                        reference=reference_kernel, fitted_label="median fitted kernel",
-                                        reference_label=f"{indicator} (published)" if indicator else "reference"),
-                          name="fit-kernel", caption="Kernel with the median fitted time constants and amplitude"
-                                                     + (", beside the published one." if indicator else "."))
-    report.add_figure(score_figure(score["precision"], score["recall"], score["f1"],
-                                   bin_widths_s=results.read("electrical/bin_widths_s"),
-                                   correlation=results.read("electrical/score_correlation"),
-                                   labels=[str(r) for r in rois]),
-                      name="scores", caption="Inferred against electrically recorded spikes, per ROI.")
-    header = ["ROI", "electrical spikes", "inferred", "matched", "precision", "recall", "F1", "timing error (s)",
-              "rise (s)", "decay (s)", "half-decay (s)", "amplitude (ΔF/F)", "lag (s)", "R²"]
-    rows = [[int(r), int(score["n_true"][k]), int(score["n_inferred"][k]), int(score["n_matched"][k]),
-             score["precision"][k], score["recall"][k], score["f1"][k], score["timing_error_mean_s"][k],
-             fit["rise_s"][k], fit["decay_s"][k], fit["half_decay_s"][k], fit["amplitude"][k], fit["lag_s"][k],
-             fit["r_squared"][k]] for k, r in enumerate(rois)]
-    report.add_table(header, rows, caption="Kernel fits and scores of the ROIs with electrical spikes.",
-                     flags=[str(n) for n in notes])
-
-
 def _rhythm_record(results) -> dict | None:
     """The record of the search for shared rhythms in an open results file, or None when it was not run."""
     return _json_record(results, stages.RHYTHMS_RECORD)
@@ -1394,107 +1255,3 @@ def _stored_rhythms_summary(results_path) -> str:
     done = "removed before the inference" if record.get("action") == "remove" else (
         "NOT removed ([rhythms] action = \"remove\" removes them); their bands were left out of the noise")
     return f"shared rhythms: {found}; {done}"
-
-
-def _rhythms_section(report, results, rate, trains, per_roi):
-    """Report section: the session's spectrum with its shared peaks, the scalogram and spectrogram of the average of
-    the ROIs searched, the phase locking of the spikes to each rhythm, and one ROI before and after removal."""
-    from ..infer import infer_spikes
-    from ..kernel import Kernel
-    from ..report import rhythm_removal_figure, rhythm_spectrum_figure, time_frequency_figure
-    from ..signal.rhythms import (N_SURROGATES, phase_locking, remove_rhythms, rhythm_phase, scalogram,
-                                  spectrogram)
-
-    record = _rhythm_record(results)
-    if record is None:
-        return
-    rhythms = record.get("rhythms") or []
-    summary = str(record.get("summary", ""))
-    report.add_section("Periodic artefacts: rhythms shared across the session",
-                       (f"{len(rhythms)} shared rhythm(s) found. " if rhythms else "No shared rhythm found. ") +
-                       ("They were removed before the inference (" + record.get("removal", "") + ")."
-                        if rhythms and record.get("action") == "remove" else
-                        "They were NOT removed; set [rhythms] action = \"remove\" to remove them. Their bands "
-                        "were left out of every ROI's noise estimate." if rhythms else ""))
-    for line in summary.splitlines():
-        report.add_text(line)
-    if "freq_hz" not in record and not np.isfinite(results.read("rhythms/freq_hz")).any():
-        return
-    spectra = {name: results.read(f"rhythms/{name}") for name in stages.RHYTHM_SPECTRA}
-    neuropil = results.read("rhythms/neuropil_power") if "rhythms/neuropil_power" in results else None
-    after = spectra["median_power_after"]
-    reference = ("its own neuropil ring" if record.get("reference") == "neuropil" else
-                 "the average of the others")
-    report.add_figure(
-        rhythm_spectrum_figure(spectra["freq_hz"], spectra["median_power"], background=spectra["background"],
-                               low_power=spectra["power_low"], high_power=spectra["power_high"],
-                               after=after if np.isfinite(after).any() else None, coherence=spectra["coherence"],
-                               coherence_null=rhythms[0]["coherence_null"] if rhythms else None,
-                               peaks_hz=[r["frequency_hz"] for r in rhythms], neuropil=neuropil,
-                               resolution_hz=record.get("resolution_hz")),
-        name="rhythm-spectrum",
-        caption=f"Power spectrum of the inference's input over the {record.get('n_rois', '?')} ROIs searched: median "
-                f"and 10-90 % range, the aperiodic background, the shared rhythms found (dotted)"
-                + (", the neuropil rings' median spectrum (relative to their mean F)" if neuropil is not None else "")
-                + f" and, below, the median coherence of each ROI with {reference}.")
-    average = results.read("rhythms/session_average").astype(np.float64)
-    if np.isfinite(average).sum() >= 16:
-        wavelets = scalogram(average, rate)
-        report.add_figure(time_frequency_figure(wavelets.time_s, wavelets.freq_hz, wavelets.amplitude,
-                                                reliable=wavelets.reliable, log_frequency=True,
-                                                resolution=wavelets.describe(),
-                                                title="scalogram of the average of the ROIs searched"),
-                          name="rhythm-scalogram",
-                          caption="Amplitude of the average ΔF/F at each frequency and time (Morlet wavelets); "
-                                  "pale: the cone of influence, where the ends disturb the values.")
-        try:
-            windows = spectrogram(average, rate, window_s=float(record.get("segment_s", 10.0)))
-            report.add_figure(time_frequency_figure(windows.time_s, windows.freq_hz, windows.power,
-                                                    value_label="power (ΔF/F² / Hz)", resolution=windows.describe(),
-                                                    title="spectrogram of the average of the ROIs searched"),
-                              name="rhythm-spectrogram", caption="Power of the average ΔF/F in consecutive windows.")
-        except ValueError:
-            pass
-    if not rhythms:
-        return
-    searched = [int(r) for r in record.get("rois", [])][:100]
-    rows = []
-    for r in rhythms:
-        phase = rhythm_phase(average, rate, tuple(r["band_hz"]))
-        locking = [phase_locking(trains[roi], phase, n_surrogates=N_SURROGATES, seed=roi) for roi in searched]
-        counted = [x for x in locking if x.n_spikes > 0]
-        locked = sum(x.p_value <= 0.05 for x in counted)
-        rows.append([f"{r['frequency_hz']:.2f}", len(counted), locked,
-                     f"{locked / len(counted):.0%}" if counted else "-",
-                     float(np.median([x.plv for x in counted])) if counted else float("nan"),
-                     float(np.median([x.null_plv for x in counted])) if counted else float("nan")])
-    report.add_table(["rhythm (Hz)", "ROIs with spikes", "locked (p <= 0.05)", "share locked", "median PLV",
-                      "median PLV by chance"], rows, sortable=False,
-                     caption="Phase locking of each ROI's inferred spikes to each rhythm (its phase in the average of "
-                             "the ROIs searched; interval-jitter surrogates): 5 % of the ROIs lock by chance. Spikes "
-                             "that lock to a rhythm left in the traces may be faked by it; spikes that still lock "
-                             "after its removal suggest that the cells are entrained.")
-    roi = int(rhythms[0].get("example_roi", searched[0] if searched else 0))
-    if "dff" not in results or per_roi["quality_flags"][roi] & stages.FLAG_FAILED:
-        return
-    before = results.read("dff", roi).astype(np.float64)
-    bands = [tuple(x["band_hz"]) for x in rhythms]
-    removed = record.get("action") == "remove"
-    method = str(record.get("method", "regression"))
-    after = results.read("dff_filtered", roi).astype(np.float64) if removed and "dff_filtered" in results else \
-        remove_rhythms(before, rate, bands, method=method, reference=average if method == "regression" else None).cleaned
-    kernel = Kernel(float(per_roi["kernel_rise_s"][roi]), float(per_roi["kernel_decay_s"][roi]),
-                    float(per_roi["kernel_amplitude"][roi]))
-    noise = float(per_roi["noise_sd"][roi])
-    other = infer_spikes(before if removed else after, rate, kernel=kernel,
-                         noise_sd=noise if noise > 0 else None).spike_times
-    spikes_before, spikes_after = (other, trains[roi]) if removed else (trains[roi], other)
-    start = min(max(0.0, before.size / rate / 2 - 15.0), before.size / rate - 1.0 / rate)
-    report.add_figure(rhythm_removal_figure(rate, before, after, spikes_before=spikes_before, spikes_after=spikes_after,
-                                            start_s=start, duration_s=30.0, roi_label=f"ROI {roi}",
-                                            band_label=", ".join(f"{r['frequency_hz']:.2f} Hz" for r in rhythms)),
-                      name="rhythm-removal",
-                      caption=f"ROI {roi}, where the strongest rhythm is largest: ΔF/F with the rhythm and "
-                              + ("after its removal by the run" if removed else
-                                 f"after removal by {method} (a preview: the run did not remove them)")
-                              + ", and the spikes inferred from each with the ROI's kernel.")
