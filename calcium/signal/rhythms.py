@@ -37,8 +37,7 @@ segment that holds one is dropped) and are NaN again in every output trace.
 """
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import scipy  # submodules (signal, special, stats, ndimage) load on first use
