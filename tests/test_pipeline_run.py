@@ -6,6 +6,7 @@ running (processes, resumed after a kill, after Ctrl-C, after a full disk) again
 """
 import errno
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -223,10 +224,27 @@ def test_report_has_every_figure_and_a_row_per_roi(session):
     html = page.read_text(encoding="utf-8")
     for name in ("raster", "noise", "snr", "calibration", "fit-half-decay", "scores"):
         assert f"figures/{name}.png" in html and (page.parent / "figures" / f"{name}.png").is_file()
-    assert html.count('id="fig-roi-') == 3
+    assert html.count('id="fig-roi-') == 3 + 2  # the failed ROI has no close-up
+    for roi in (0,):
+        assert (page.parent / "figures" / f"roi-{roi}-close-up.png").is_file()
     table = html[html.index("All 12 ROIs"):]
     assert table.count("<tr") == N_ROIS + 1
     assert "every frame is missing" in html
+
+
+def test_report_tables_give_times_in_ms_with_three_significant_digits(session):
+    html = session["summary"].report_path.read_text(encoding="utf-8")
+    headers = re.findall(r"<th[^>]*>(.*?)</th>", html, flags=re.S)
+    assert not [h for h in headers if "(s)" in h or "_s" in h]
+    assert "kernel decay (ms)" in html and "half-decay (ms)" in html
+    with h5py.File(session["summary"].results_path, "r") as results:
+        decay_ms = float(results["kernel_decay_s"][0]) * 1e3
+    table = html[html.index("All 12 ROIs"):]
+    first_row = re.findall(r"<td[^>]*>(.*?)</td>", table.split("<tr")[2])
+    assert f"{decay_ms:.3g}" in first_row
+    # (whole numbers are counts: spikes, missing frames)
+    fractions = re.findall(r"<td[^>]*>(-?[0-9]*\.[0-9]+)</td>", table)
+    assert fractions and all(len(c.lstrip("-").replace(".", "").lstrip("0")) <= 3 for c in fractions)
 
 
 def test_report_opens_in_a_browser_with_every_image_loaded(session, browse, tmp_path):

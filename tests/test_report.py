@@ -646,3 +646,38 @@ def test_session_report_lays_out_the_data_it_is_handed(tmp_path):
         assert (tmp_path / "report" / "figures" / f"roi-{roi}.png").is_file()
     assert "All 3 ROIs." in text
     assert "fitted kernels and scores" not in text and "Periodic artefacts" not in text
+
+
+def test_examples_text_mentions_a_flagged_roi_only_when_one_is_shown(tmp_path):
+    from calcium.report.session import session_report
+
+    none_flagged = _page_text(session_report(_session_data()).write(tmp_path / "a"))
+    assert "flagged" not in none_flagged.split("Example ROIs through the stages")[1].split("ROI 0")[0]
+    last_flagged = _page_text(session_report(_session_data(flagged=(2,))).write(tmp_path / "b"))
+    assert "a flagged ROI last (ROI 2: low SNR)" in last_flagged
+
+
+def test_close_up_window_holds_the_densest_run_of_events():
+    from calcium.report.session import event_window
+
+    # a burst of 5 events at 40-43 s and lone events elsewhere in a 100-s recording; a 10-s window
+    events = [5.0, 40.0, 41.0, 42.0, 42.5, 43.0, 90.0]
+    start = event_window(events, 100.0, 10.0)
+    assert start == pytest.approx(40.0 - 2.0)  # a fifth of the window before the burst's first event
+    assert event_window([], 100.0, 10.0) == pytest.approx(45.0)
+    assert event_window([99.5], 100.0, 10.0) == pytest.approx(90.0)  # kept inside the recording
+    assert event_window([1.0], 5.0, 10.0) == 0.0
+
+
+def test_close_up_draws_each_spike_count_once_with_its_number():
+    from calcium.report import zoom_figure
+
+    spikes = [1.0, 3.0, 3.0, 3.0, 12.0]  # 12 s is outside the window
+    fig = zoom_figure(FRAME_RATE, np.zeros(600), denoised=np.zeros(600), spike_times=spikes,
+                      true_spike_times=[1.02, 3.01], start_s=0.5, duration_s=5.0, roi_label="ROI 4")
+    numbers = sorted(t.get_text() for t in fig.axes[1].texts)
+    assert numbers == ["1", "3"]
+    assert fig.axes[1].get_title(loc="left").startswith("inferred spikes: 4 in this window (2 times)")
+    assert fig.axes[2].get_title(loc="left") == "electrically recorded spikes: 2 in this window"
+    low, high = fig.axes[0].get_xlim()
+    assert high - low == pytest.approx(5.0)

@@ -1087,7 +1087,8 @@ def _example_data(results, roi: int, per_roi: dict, electrical_spikes: dict, lag
     return ExampleRoi(roi=roi, raw=raw, where=where, traces=values, missing=missing,
                       electrical_spikes=(electrical_spikes[roi] + lags.get(roi, 0.0)
                                          if roi in electrical_spikes else None),
-                      flags=str(per_roi["flags"][roi]) if flags[roi] else "")
+                      flags=str(per_roi["flags"][roi]) if flags[roi] else "",
+                      decay_s=float(per_roi["kernel_decay_s"][roi]))
 
 
 def _electrical_data(results) -> dict | None:

@@ -26,6 +26,7 @@ from .figures import (
     score_figure,
     stages_figure,
     time_frequency_figure,
+    zoom_figure,
 )
 from .html import HtmlReport
 
@@ -51,4 +52,5 @@ __all__ = [
     "score_figure",
     "stages_figure",
     "time_frequency_figure",
+    "zoom_figure",
 ]

@@ -48,6 +48,7 @@ from .._checks import as_spike_times, check_frame_rate, check_int, check_positiv
 __all__ = [
     "PALETTE",
     "stages_figure",
+    "zoom_figure",
     "noise_figure",
     "distribution_figure",
     "filter_response_figure",
@@ -356,6 +357,96 @@ def stages_figure(frame_rate, raw, *, f0=None, dff=None, filtered=None, denoised
             _panel_title(ax, f"electrically recorded spikes: {recorded.size}")
     axes[-1].set_xlabel("time (s)")
     axes[-1].set_xlim(time_s[0] - 0.5 / frame_rate, time_s[-1] + 0.5 / frame_rate)
+    return fig
+
+
+def zoom_figure(frame_rate, dff, *, denoised=None, spike_times=None, true_spike_times=None, start_s=0.0,
+                duration_s=20.0, roi_label="") -> Figure:
+    """A stretch of one ROI close up: ΔF/F with the model fit, the inferred spikes with their counts and the
+    electrically recorded spikes.
+
+    Parameters
+    ----------
+    frame_rate : float
+        Frames per second (Hz); frame k is drawn at k / frame_rate s.
+    dff : array_like, shape (frames,)
+        ΔF/F of the whole recording (NaN at missing frames).
+    denoised : array_like, shape (frames,), optional
+        The model fit (denoised ΔF/F), drawn over ``dff``.
+    spike_times : array_like, optional
+        Inferred spike times (s) of the whole recording; a repeated time means
+        several spikes: one stem as tall as their number, the number written
+        above it.
+    true_spike_times : array_like, optional
+        Electrically recorded spike times (s) on the imaging clock, drawn as
+        ticks on their own row.
+    start_s, duration_s : float
+        The stretch drawn (s).
+    roi_label : str
+        Name of the ROI, put in the title.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> fig = zoom_figure(30.0, np.zeros(900), spike_times=[2.0, 2.0, 5.0], start_s=1.0, duration_s=10.0)
+    >>> fig.axes[1].get_title(loc="left")
+    'inferred spikes: 3 in this window (2 times), stem height and number = spikes at that time'
+    """
+    frame_rate = check_frame_rate(frame_rate)
+    dff = _trace(dff, "dff")
+    fit = None if denoised is None else _trace(denoised, "denoised", dff.size)
+    inferred = None if spike_times is None else _spike_times(spike_times, "spike_times")
+    recorded = None if true_spike_times is None else _spike_times(true_spike_times, "true_spike_times")
+    duration_s = check_positive(duration_s, "duration_s")
+    total_s = dff.size / frame_rate
+    if not (isinstance(start_s, numbers.Real) and 0.0 <= start_s < total_s):
+        raise ValueError(f"start_s must be a time within the recording (0 to {total_s:g} s), got {start_s!r}")
+    a = int(math.floor(start_s * frame_rate))
+    b = min(dff.size, a + max(2, int(round(duration_s * frame_rate))))
+    time_s = np.arange(a, b) / frame_rate
+    low, high = (a - 0.5) / frame_rate, (b - 0.5) / frame_rate
+    rows = [("dff", 2.6)]
+    if inferred is not None:
+        rows.append(("spikes", 1.2))
+    if recorded is not None:
+        rows.append(("recorded", 0.55))
+    fig = _figure(1.0 + 1.25 * sum(h for _, h in rows))
+    axes = fig.subplots(len(rows), 1, sharex=True, squeeze=False,
+                        gridspec_kw={"height_ratios": [h for _, h in rows]})[:, 0]
+    _title(fig, _prefix(_label(roi_label, "roi_label"), f"close-up, {time_s[0]:.3g} to {high:.3g} s"))
+    for ax, (kind, _) in zip(axes, rows):
+        _style(ax)
+        if kind == "dff":
+            ax.plot(time_s, dff[a:b], color=PALETTE["ink"], linewidth=0.9, marker="o", markersize=1.6,
+                    label="ΔF/F (one dot per frame)")
+            if fit is not None:
+                ax.plot(time_s, fit[a:b], color=PALETTE["plum"], linewidth=1.6, label="model fit")
+            _shade_missing(ax, frame_rate, ~np.isfinite(dff[a:b]), label=False)
+            ax.set_ylabel("ΔF/F")
+            _legend(ax, ncol=2, loc="lower right", bbox_to_anchor=(1.0, 1.0))  # above the data, never over it
+        elif kind == "spikes":
+            inside = inferred[(inferred >= low) & (inferred < high)]
+            where, counts = _spike_counts(inside)
+            _stems(ax, inside, colour=PALETTE["plum"], label=None)
+            for t, k in zip(where, counts):
+                ax.annotate(str(int(k)), (t, k), xytext=(0, 2), textcoords="offset points", ha="center",
+                            va="bottom", fontsize=_LEGEND_SIZE, color=_TEXT)
+            ax.set_ylim(0, max(1.0, float(counts.max()) if counts.size else 1.0) * 1.45)
+            ax.set_ylabel("spikes")
+            _panel_title(ax, f"inferred spikes: {inside.size} in this window ({where.size} times), stem height "
+                             f"and number = spikes at that time")
+        else:
+            inside = recorded[(recorded >= low) & (recorded < high)]
+            _style(ax, grid_axis="")
+            _ticks(ax, inside, colour=PALETTE["ink"])
+            ax.set_ylabel("recorded", rotation=0, ha="right", va="center")
+            _panel_title(ax, f"electrically recorded spikes: {inside.size} in this window")
+    axes[-1].set_xlabel("time (s)")
+    axes[-1].set_xlim(low, high)
     return fig
 
 

@@ -13,7 +13,7 @@ import numpy as np
 
 from .figures import (calibration_figure, distribution_figure, kernel_figure, noise_figure, raster_figure,
                       rhythm_removal_figure, rhythm_spectrum_figure, score_figure, stages_figure,
-                      time_frequency_figure)
+                      time_frequency_figure, zoom_figure)
 from .html import HtmlReport
 
 
@@ -37,6 +37,8 @@ class ExampleRoi:
         Electrically recorded spike times (s) on the imaging clock.
     flags : str
         The ROI's quality flags ("" when none).
+    decay_s : float
+        Decay time constant (s) of the ROI's kernel; sets the length of the close-up (NaN: 20 s).
     """
 
     roi: int
@@ -46,6 +48,7 @@ class ExampleRoi:
     missing: np.ndarray | None = None
     electrical_spikes: np.ndarray | None = None
     flags: str = ""
+    decay_s: float = float("nan")
 
 
 @dataclass(frozen=True)
@@ -175,6 +178,32 @@ def half_decays(rise, decay) -> np.ndarray:
     return out
 
 
+def close_up_length(decay_s: float) -> float:
+    """Length (s) of an example's close-up: 40 decay times (several transients with their tails), kept
+    between 8 and 30 s; 20 s when the decay is unknown."""
+    if not (np.isfinite(decay_s) and decay_s > 0):
+        return 20.0
+    return float(np.clip(40.0 * decay_s, 8.0, 30.0))
+
+
+def event_window(event_times, total_s: float, window_s: float) -> float:
+    """Start (s) of the ``window_s`` stretch of a ``total_s`` recording holding the most events.
+
+    The window starts a fifth of its length before one of the events (the earliest of the best), so that the
+    baseline before the first transient is in view; with no event, the middle of the recording.
+    """
+    if window_s >= total_s:
+        return 0.0
+    times = np.sort(np.asarray(event_times, dtype=np.float64))
+    times = times[np.isfinite(times) & (times >= 0) & (times < total_s)]
+    latest = total_s - window_s
+    if times.size == 0:
+        return 0.5 * latest
+    starts = np.clip(times - 0.2 * window_s, 0.0, latest)
+    counts = np.searchsorted(times, starts + window_s, side="left") - np.searchsorted(times, starts, side="left")
+    return float(starts[int(np.argmax(counts))])
+
+
 # ---------------------------------------------------------------------------
 # sections
 # ---------------------------------------------------------------------------
@@ -203,13 +232,41 @@ def raster_section(report: HtmlReport, spike_times, duration_s: float) -> None:
                               "and time bins).")
 
 
+def _examples_text(examples) -> str:
+    """How the examples were chosen, saying only what is true of these examples."""
+    n_electrical = sum(e.electrical_spikes is not None for e in examples)
+    order = []
+    if n_electrical:
+        order.append(f"{'the ROI' if n_electrical == 1 else 'the ' + str(n_electrical) + ' ROIs'} with electrical "
+                     f"spikes first")
+    if len(examples) > n_electrical and examples[-1].flags and examples[-1].electrical_spikes is None:
+        order.append(f"a flagged ROI last (ROI {examples[-1].roi}: {examples[-1].flags})")
+    text = "Chosen to span the range of signal-to-noise ratios"
+    text += f" ({', '.join(order)})." if order else "."
+    return text + (" Each ROI is shown over the whole recording, then close up where its spikes are densest, "
+                   "frame by frame.")
+
+
+def significant(value, digits: int = 3):
+    """``value`` rounded to ``digits`` significant digits (a float; NaN and inf unchanged; None stays None)."""
+    if value is None:
+        return None
+    number = float(value)
+    if not math.isfinite(number) or number == 0:
+        return number
+    return float(f"{number:.{digits}g}")
+
+
+def _ms(seconds):
+    """Seconds to milliseconds, 3 significant digits."""
+    return significant(float(seconds) * 1e3)
+
+
 def examples_section(report: HtmlReport, examples, spike_times, frame_rate: float) -> None:
     """Each example ROI through the stages: raw F, F0, ΔF/F, the denoised fit and the spikes."""
     if not examples:
         return
-    report.add_section("Example ROIs through the stages",
-                       "Chosen to span the range of signal-to-noise ratios (ROIs with electrical "
-                       "spikes first, one flagged ROI last).")
+    report.add_section("Example ROIs through the stages", _examples_text(examples))
     for example in examples:
         values = example.traces
         fig = stages_figure(frame_rate, example.raw, f0=values.get("f0"), dff=values.get("dff"),
@@ -218,8 +275,25 @@ def examples_section(report: HtmlReport, examples, spike_times, frame_rate: floa
                             missing=example.missing, roi_label=f"ROI {example.roi}")
         note = f"; flags: {example.flags}" if example.flags else ""
         report.add_figure(fig, name=f"roi-{example.roi}",
-                          caption=f"ROI {example.roi}: {example.where}, F0, ΔF/F, denoised fit and inferred "
-                                  f"spikes{note}.")
+                          caption=f"ROI {example.roi}, the whole recording: {example.where}, F0, ΔF/F, denoised "
+                                  f"fit and inferred spikes{note}.")
+        dff = values.get("dff")
+        if dff is None or not np.isfinite(dff).any():
+            continue
+        total_s = dff.size / frame_rate
+        window_s = min(close_up_length(example.decay_s), total_s)
+        recorded = example.electrical_spikes
+        events = spike_times[example.roi] if recorded is None else np.concatenate([spike_times[example.roi],
+                                                                                   recorded])
+        start = event_window(events, total_s, window_s)
+        report.add_figure(zoom_figure(frame_rate, dff, denoised=values.get("denoised"),
+                                      spike_times=spike_times[example.roi], true_spike_times=recorded,
+                                      start_s=start, duration_s=window_s, roi_label=f"ROI {example.roi}"),
+                          name=f"roi-{example.roi}-close-up",
+                          caption=f"ROI {example.roi} close up, {window_s:.3g} s where its spikes are densest: "
+                                  f"ΔF/F frame by frame, the model fit, the inferred spikes with their number at "
+                                  f"each time" + (" and the electrically recorded spikes." if recorded is not None
+                                                  else "."))
 
 
 def noise_section(report: HtmlReport, session: SessionData) -> None:
@@ -320,12 +394,13 @@ def electrical_section(report: HtmlReport, electrical: dict, indicator, frame_ra
                                    bin_widths_s=electrical["bin_widths_s"], correlation=electrical["correlation"],
                                    labels=[str(r) for r in rois]),
                       name="scores", caption="Inferred against electrically recorded spikes, per ROI.")
-    header = ["ROI", "electrical spikes", "inferred", "matched", "precision", "recall", "F1", "timing error (s)",
-              "rise (s)", "decay (s)", "half-decay (s)", "amplitude (ΔF/F)", "lag (s)", "R²"]
+    header = ["ROI", "electrical spikes", "inferred", "matched", "precision", "recall", "F1",
+              "timing error (ms)", "rise (ms)", "decay (ms)", "half-decay (ms)", "amplitude (ΔF/F)", "lag (ms)", "R²"]
     rows = [[int(r), int(score["n_true"][k]), int(score["n_inferred"][k]), int(score["n_matched"][k]),
-             score["precision"][k], score["recall"][k], score["f1"][k], score["timing_error_mean_s"][k],
-             fit["rise_s"][k], fit["decay_s"][k], fit["half_decay_s"][k], fit["amplitude"][k], fit["lag_s"][k],
-             fit["r_squared"][k]] for k, r in enumerate(rois)]
+             significant(score["precision"][k]), significant(score["recall"][k]), significant(score["f1"][k]),
+             _ms(score["timing_error_mean_s"][k]), _ms(fit["rise_s"][k]), _ms(fit["decay_s"][k]),
+             _ms(fit["half_decay_s"][k]), significant(fit["amplitude"][k]), _ms(fit["lag_s"][k]),
+             significant(fit["r_squared"][k])] for k, r in enumerate(rois)]
     report.add_table(header, rows, caption="Kernel fits and scores of the ROIs with electrical spikes.",
                      flags=[str(n) for n in notes])
 
@@ -396,8 +471,8 @@ def rhythms_section(report: HtmlReport, rhythms_data: RhythmsData, frame_rate: f
         locked = sum(x.p_value <= 0.05 for x in counted)
         rows.append([f"{r['frequency_hz']:.2f}", len(counted), locked,
                      f"{locked / len(counted):.0%}" if counted else "-",
-                     float(np.median([x.plv for x in counted])) if counted else float("nan"),
-                     float(np.median([x.null_plv for x in counted])) if counted else float("nan")])
+                     significant(np.median([x.plv for x in counted])) if counted else float("nan"),
+                     significant(np.median([x.null_plv for x in counted])) if counted else float("nan")])
     report.add_table(["rhythm (Hz)", "ROIs with spikes", "locked (p <= 0.05)", "share locked", "median PLV",
                       "median PLV by chance"], rows, sortable=False,
                      caption="Phase locking of each ROI's inferred spikes to each rhythm (its phase in the average of "
@@ -435,11 +510,12 @@ def table_section(report: HtmlReport, session: SessionData) -> None:
                        "Flags: failed (no results), low SNR, saturation suspected (raw maximum repeated), F0 "
                        "problem (F0 <= 0 or clipped at the floor), many missing frames, solver not converged. "
                        "Click a column heading to sort.")
-    header = ["ROI", "spikes", "rate (Hz)", "noise SD (ΔF/F)", "SNR", "missing frames", "min F0",
-              "kernel decay (s)", "flags"]
-    rows = [[i, int(per_roi["n_spikes"][i]), per_roi["n_spikes"][i] / duration_s, per_roi["noise_sd"][i],
-             per_roi["snr"][i], int(per_roi["missing_frames"][i]), per_roi["f0_min"][i],
-             per_roi["kernel_decay_s"][i], session.flag_descriptions[i]] for i in range(session.n_rois)]
+    header = ["ROI", "spikes", "rate (Hz)", "noise SD (ΔF/F)", "SNR", "missing frames", "min F0 (a.u.)",
+              "kernel decay (ms)", "flags"]
+    rows = [[i, int(per_roi["n_spikes"][i]), significant(per_roi["n_spikes"][i] / duration_s),
+             significant(per_roi["noise_sd"][i]), significant(per_roi["snr"][i]), int(per_roi["missing_frames"][i]),
+             significant(per_roi["f0_min"][i]), _ms(per_roi["kernel_decay_s"][i]), session.flag_descriptions[i]]
+            for i in range(session.n_rois)]
     if calibration is not None:
         sizes = calibration["per_roi"]
         header[2:2] = ["spikes (90 % interval)", "spike size ΔF/F (90 %)", "calibrated"]
