@@ -30,7 +30,7 @@ _EXPORTS = {
     "calcium.indicators": ["INDICATORS", "IndicatorKinetics", "get_indicator", "indicator_names"],
     "calcium.forward": ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SpikeModel",
                         "BaselineModel", "NoiseModel"],
-    "calcium.io.nwb": ["export_nwb", "read_nwb_traces"],
+    "calcium.io.nwb": ["read_nwb_traces"],
     "calcium.infer": ["deconvolve_ar", "ARDeconvolution", "deconvolve_convex", "ConvexDeconvolution",
                       "estimate_ar_coefficients", "penalty_for_noise", "infer_spikes", "infer_spikes_many",
                       "SpikeInference"],
@@ -42,7 +42,7 @@ _EXPORTS = {
     "calcium.plan": ["plan_detectability", "DetectabilityPlan"],
     "calcium.pipeline": ["run_pipeline", "write_config_template", "load_config", "infer_file", "RunConfig",
                          "RunSummary", "ConfigError", "OutputError", "open_results", "read_results",
-                         "write_session_report"],
+                         "write_session_report", "export_nwb"],
     "calcium.report": ["HtmlReport"],
 }
 
@@ -60,7 +60,7 @@ if TYPE_CHECKING:  # the same names, imported for type checkers and IDEs (at run
     from .indicators import INDICATORS, IndicatorKinetics, get_indicator, indicator_names
     from .forward import (predict_fluorescence, simulate_recording, SimulatedRecording, SpikeModel, BaselineModel,
                           NoiseModel)
-    from .io.nwb import export_nwb, read_nwb_traces
+    from .io.nwb import read_nwb_traces
     from .infer import (deconvolve_ar, ARDeconvolution, deconvolve_convex, ConvexDeconvolution,
                            estimate_ar_coefficients, penalty_for_noise, infer_spikes, infer_spikes_many,
                            SpikeInference)
@@ -69,7 +69,8 @@ if TYPE_CHECKING:  # the same names, imported for type checkers and IDEs (at run
     from .score import score_spikes, score_many, SpikeScore, ScoreTable, match_spikes, van_rossum_distance
     from .plan import plan_detectability, DetectabilityPlan
     from .pipeline import (run_pipeline, write_config_template, load_config, infer_file, RunConfig, RunSummary,
-                              ConfigError, OutputError, open_results, read_results, write_session_report)
+                              ConfigError, OutputError, open_results, read_results, write_session_report,
+                              export_nwb)
     from .report import HtmlReport
 
 _WHERE = {name: module for module, names in _EXPORTS.items() for name in names}

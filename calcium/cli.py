@@ -704,14 +704,21 @@ def cmd_report(args):
 
 
 def cmd_export_nwb(args):
-    from calcium.io.nwb import export_nwb
-    out = _check_new_output(args.out, overwrite=args.overwrite, inputs={"RESULTS": args.results})
+    from calcium.pipeline import export_nwb, nwb_contents
+    out = _check_new_output(args.out, overwrite=args.overwrite,
+                            inputs={"RESULTS": args.results, "--masks": args.masks})
     try:
+        contents = nwb_contents(args.results, masks=args.masks)
         path = export_nwb(args.results, out, session_description=args.description, session_start=args.session_start,
-                          indicator=args.indicator)
+                          experimenter=args.experimenter, location=args.location, indicator=args.indicator,
+                          masks=args.masks)
     except (ValueError, OSError, ImportError) as exc:
-        raise _fail(args.results, exc, also=(out,)) from exc
+        raise _fail(args.results, exc, also=(out, args.masks)) from exc
     _say(args, f"NWB file written: {path}")
+    for place, what in contents.written:
+        _say(args, f"  {place}: {what}")
+    for sentence in contents.absent:
+        _say(args, f"  not in the results, so not in the NWB file: {sentence}")
 
 
 # --------------------------------------------------------------------------- parser
@@ -937,11 +944,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--indicator", help="indicator whose published kinetics frame the fitted ones")
     p.add_argument("--overwrite", action="store_true", help="replace an existing report")
 
-    p = add("export-nwb", cmd_export_nwb, "export a results file to NWB (needs the optional extra `nwb`)")
-    p.add_argument("results", help="results HDF5 file")
-    p.add_argument("--description", default="calcium imaging session", help="NWB session description")
-    p.add_argument("--session-start", help="session start time, ISO 8601 (default: taken from the input files)")
-    p.add_argument("--indicator", help="indicator name recorded in the NWB imaging plane")
+    p = add("export-nwb", cmd_export_nwb, "export a results file (of `calcium run` or `calcium infer`) to NWB: "
+                                          "ROIs, ΔF/F, model fit, activity, and each ROI's spike times in the Units "
+                                          "table (needs the optional extra `nwb`)")
+    p.add_argument("results", help="results HDF5 file of `calcium run` or `calcium infer`")
+    p.add_argument("--description", default="calcium imaging session",
+                   help="NWB session description (default: 'calcium imaging session')")
+    p.add_argument("--session-start", help="session start time, ISO 8601 such as 2024-03-01T10:15:00+01:00 "
+                                           "(default: the modification time of the run's input file)")
+    p.add_argument("--experimenter", help="name of the experimenter, recorded in the file (default: none)")
+    p.add_argument("--location", help="brain area of the imaging plane (default: 'unknown')")
+    p.add_argument("--indicator", help="indicator name recorded in the NWB imaging plane (default: 'unknown')")
+    p.add_argument("--masks", help="ROI masks (.tif/.npy: label image or boolean stack), stored as the ROIs' "
+                                   "pixel masks (default: the run's mask file for a movie run; otherwise each ROI "
+                                   "gets one placeholder pixel of weight 0)")
     output(p, help_text="output .nwb file")
 
     p = add("init", cmd_init, "write a commented pipeline configuration (TOML)")

@@ -8,6 +8,8 @@
   (:mod:`calcium.pipeline.run`); :func:`infer_file` — the inference alone
   for a ΔF/F file, with the same chunking, executors and resuming;
 * executors (serial, processes, dask) in :mod:`calcium.pipeline.executors`;
+* :func:`export_nwb` — a results file as an NWB file (:mod:`calcium.pipeline.nwb`;
+  :func:`nwb_contents` says what it holds and what the results do not);
 * the checkpointed HDF5 results file in :mod:`calcium.pipeline.store`
   (layout: ``docs/hdf5-layout.md``).
 """
@@ -19,6 +21,7 @@ from .config import (
     write_config_template,
 )
 from .executors import DaskExecutor, Executor, ExecutorError, ProcessExecutor, SerialExecutor, make_executor
+from .nwb import NwbContents, export_nwb, nwb_contents
 from .run import RunSummary, infer_file, run_pipeline, write_session_report, write_spike_table_from_results
 from .store import OutputError, OutputMismatchError, ResultsFile, open_results, read_results
 
@@ -39,6 +42,9 @@ __all__ = [
     "infer_file",
     "write_session_report",
     "write_spike_table_from_results",
+    "export_nwb",
+    "nwb_contents",
+    "NwbContents",
     "OutputError",
     "OutputMismatchError",
     "ResultsFile",
