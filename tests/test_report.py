@@ -681,3 +681,27 @@ def test_close_up_draws_each_spike_count_once_with_its_number():
     assert fig.axes[2].get_title(loc="left") == "electrically recorded spikes: 2 in this window"
     low, high = fig.axes[0].get_xlim()
     assert high - low == pytest.approx(5.0)
+
+
+def test_a_few_values_are_drawn_as_points_and_many_as_a_histogram():
+    few = distribution_figure([0.21, 0.25, 0.4], name="half-decay time", unit="s")
+    points = [line for line in few.axes[0].get_lines() if line.get_label() == "3 value(s)"][0]
+    np.testing.assert_allclose(points.get_xdata(), [0.21, 0.25, 0.4])
+    assert not few.axes[0].patches  # no bars
+    many = distribution_figure(np.linspace(0.1, 1.0, 40), name="half-decay time", unit="s")
+    assert len(many.axes[0].patches) >= 2 and many.axes[0].get_ylabel() == "count"
+
+
+def _pixels(artist, fig):
+    fig.canvas.draw()
+    return artist.get_window_extent(fig.canvas.get_renderer())
+
+
+def test_score_legend_leaves_the_bars_uncovered_and_bin_widths_read_as_plain_numbers():
+    fig = score_figure([1.0, 0.9], [1.0, 0.95], [1.0, 0.92], bin_widths_s=[0.1, 0.2, 0.5, 1.0],
+                       correlation=[[0.8, 0.9, 0.95, 0.99], [0.85, 0.9, 0.96, 0.98]])
+    legend = _pixels(fig.axes[0].get_legend(), fig)
+    for bar in fig.axes[0].patches:
+        assert not legend.overlaps(_pixels(bar, fig))
+    labels = [t.get_text() for t in fig.axes[1].get_xticklabels() if t.get_text()]
+    assert labels == ["0.1", "0.2", "0.5", "1"]

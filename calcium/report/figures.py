@@ -42,6 +42,7 @@ from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
+from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 
 from .._checks import as_spike_times, check_frame_rate, check_int, check_positive
 
@@ -518,8 +519,9 @@ def _names(labels, n: int, name: str) -> list:
 
 
 def distribution_figure(values, *, name, unit, reference_range=None, reference_label="published range",
-                        bins="auto") -> Figure:
-    """Histogram of one quantity over ROIs, with an optional shaded reference range.
+                        bins="auto", max_points=12) -> Figure:
+    """One quantity over ROIs: each value as a point when there are few, else a histogram; with an optional
+    shaded reference range.
 
     Parameters
     ----------
@@ -536,12 +538,22 @@ def distribution_figure(values, *, name, unit, reference_range=None, reference_l
         Legend text for the shaded range.
     bins : int or str
         Passed to :func:`numpy.histogram_bin_edges`; at most 80 bins are drawn.
+    max_points : int
+        Up to this many finite values, each is drawn as a point (a histogram of
+        a handful of values shows bins, not values).
 
     Returns
     -------
     matplotlib.figure.Figure
+
+    Examples
+    --------
+    >>> fig = distribution_figure([0.21, 0.25, 0.4], name="half-decay time", unit="s")
+    >>> fig.axes[0].get_ylabel(), len(fig.axes[0].patches)
+    ('', 0)
     """
     name = _label(name, "name")
+    max_points = check_int(max_points, "max_points", minimum=0)
     unit = _label(unit, "unit")
     reference_label = _label(reference_label, "reference_label")
     arr = _vector(values, "values")
@@ -551,7 +563,7 @@ def distribution_figure(values, *, name, unit, reference_range=None, reference_l
         low, high = _vector(reference_range, "reference_range", length=2, finite=True)
         if low > high:
             raise ValueError(f"reference_range must be (low, high) with low <= high, got {tuple(reference_range)}")
-    fig = _figure(3.4)
+    fig = _figure(2.4 if 0 < data.size <= max_points else 3.4)
     ax = fig.add_subplot()
     _style(ax, grid_axis="y")
     title = f"{name}: {data.size} value(s)"
@@ -562,13 +574,30 @@ def distribution_figure(values, *, name, unit, reference_range=None, reference_l
         outside = int(np.sum((data < low) | (data > high)))
         ax.axvspan(low, high, color=PALETTE["sand"], alpha=0.45, linewidth=0,
                    label=f"{reference_label} ({outside} of {data.size} outside)")
+    few = 0 < data.size <= max_points
     if data.size:
-        if isinstance(bins, numbers.Integral):
-            bins = check_int(bins, "bins", minimum=1)
-        edges = np.histogram_bin_edges(data, bins=bins)
-        if edges.size > 81:
-            edges = np.linspace(edges[0], edges[-1], 81)
-        ax.hist(data, bins=edges, color=PALETTE["blue"], edgecolor="white", linewidth=0.5)
+        if few:
+            # one row per value, in increasing order, so equal values stay apart
+            order = np.sort(data)
+            ax.plot(order, np.arange(order.size), "o", color=PALETTE["blue"], markersize=7,
+                    markeredgecolor="white", markeredgewidth=0.8, label=f"{data.size} value(s)")
+            ax.set_ylim(-0.8, order.size - 0.2)
+            ax.set_yticks([])
+            # a span of at least ±15 % around the median, so that a small spread is not drawn as a large one
+            middle, half = float(np.median(order)), 0.15 * abs(float(np.median(order)))
+            low_x, high_x = min(order[0], middle - half), max(order[-1], middle + half)
+            if reference_range is not None:
+                low_x, high_x = min(low_x, low), max(high_x, high)
+            if high_x > low_x:
+                pad = 0.05 * (high_x - low_x)
+                ax.set_xlim(low_x - pad, high_x + pad)
+        else:
+            if isinstance(bins, numbers.Integral):
+                bins = check_int(bins, "bins", minimum=1)
+            edges = np.histogram_bin_edges(data, bins=bins)
+            if edges.size > 81:
+                edges = np.linspace(edges[0], edges[-1], 81)
+            ax.hist(data, bins=edges, color=PALETTE["blue"], edgecolor="white", linewidth=0.5)
         median = float(np.median(data))
         ax.axvline(median, color=PALETTE["ink"], linestyle="--", linewidth=1.2,
                    label=f"median {median:.3g} {unit}".rstrip())
@@ -576,9 +605,10 @@ def distribution_figure(values, *, name, unit, reference_range=None, reference_l
         ax.text(0.5, 0.5, "no finite values", transform=ax.transAxes, ha="center", va="center",
                 color=_FRAME)
     ax.set_xlabel(f"{name} ({unit})" if unit else name)
-    ax.set_ylabel("count")
-    ax.yaxis.get_major_locator().set_params(integer=True)
-    _legend(ax)
+    if not few:
+        ax.set_ylabel("count")
+        ax.yaxis.get_major_locator().set_params(integer=True)
+    _legend(ax, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=3)  # above the values, never over them
     return fig
 
 
@@ -1129,7 +1159,7 @@ def score_figure(precision, recall, f1, *, bin_widths_s=None, correlation=None, 
     ax.set_ylim(0, 1.08)
     ax.set_ylabel("score (0 to 1)")
     if n <= max_bars:
-        _legend(ax, ncol=3, loc="lower right")
+        _legend(ax, ncol=3, loc="lower right", bbox_to_anchor=(1.0, 1.0))  # above the bars, never over them
     if corr is not None:
         ax = axes[1]
         _style(ax)
@@ -1147,6 +1177,10 @@ def score_figure(precision, recall, f1, *, bin_widths_s=None, correlation=None, 
                     markersize=4, label="correlation")
         if widths.size > 1 and widths.max() / widths.min() > 4:
             ax.set_xscale("log")
+            # plain numbers at the bin widths used, not powers of ten
+            ax.xaxis.set_major_locator(FixedLocator(np.unique(widths)))
+            ax.xaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
+            ax.xaxis.set_minor_formatter(NullFormatter())
         ax.set_ylim(min(0.0, float(np.nanmin(corr)) - 0.05) if np.isfinite(corr).any() else 0.0, 1.02)
         ax.set_xlabel("bin width (s)")
         ax.set_ylabel("correlation of binned counts (r)")
