@@ -222,7 +222,7 @@ def test_rois_with_electrical_spikes_get_kernel_fits_and_scores(session):
 def test_report_has_every_figure_and_a_row_per_roi(session):
     page = session["summary"].report_path
     html = page.read_text(encoding="utf-8")
-    for name in ("raster", "noise", "snr", "calibration", "fit-half-decay", "scores"):
+    for name in ("raster", "noise", "snr", "calibration", "fit-half-decay", "scores", "fit-data-0", "fit-data-1"):
         assert f"figures/{name}.png" in html and (page.parent / "figures" / f"{name}.png").is_file()
     assert html.count('id="fig-roi-') == 3 + 2  # the failed ROI has no close-up
     for roi in (0,):

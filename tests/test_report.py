@@ -705,3 +705,40 @@ def test_score_legend_leaves_the_bars_uncovered_and_bin_widths_read_as_plain_num
         assert not legend.overlaps(_pixels(bar, fig))
     labels = [t.get_text() for t in fig.axes[1].get_xticklabels() if t.get_text()]
     assert labels == ["0.1", "0.2", "0.5", "1"]
+
+
+def test_average_around_isolated_spikes_recovers_the_response_to_one_spike():
+    from calcium.kernel import Kernel
+    from calcium.report.session import isolated_spike_average
+
+    kernel = Kernel(0.05, 0.4, 0.2)
+    rate = 30.0
+    time = np.arange(int(60 * rate)) / rate
+    # isolated spikes between frames, and a pair 0.1 s apart that must be left out
+    spikes = np.array([3.013, 9.51, 16.027, 23.3, 30.0, 30.1, 40.77])
+    dff = sum(kernel.evaluate(time - t) for t in spikes)
+    lag, mean, low, high, n = isolated_spike_average(dff, rate, spikes, isolation_s=2.0, before_s=0.5, after_s=2.0)
+    assert n == 5
+    # closed form of the kernel (Kernel.evaluate), up to the linear interpolation between frames, which
+    # smooths the jump at the spike over the frame interval around it
+    smooth = np.abs(lag) > 1.0 / rate
+    np.testing.assert_allclose(mean[smooth], kernel.evaluate(lag[smooth]), atol=0.02 * kernel.amplitude)
+    assert mean.max() == pytest.approx(kernel.amplitude, rel=0.05)
+    assert np.all(low <= mean + 1e-12) and np.all(mean <= high + 1e-12)
+
+
+def test_kernel_evidence_draws_the_bootstrap_band_around_the_fit():
+    from calcium.kernel import Kernel
+    from calcium.report.session import kernel_evidence
+
+    rate, kernel = 20.0, Kernel(0.03, 0.3, 0.15)
+    time = np.arange(int(40 * rate)) / rate
+    spikes = np.arange(2.0, 38.0, 3.0)
+    dff = sum(kernel.evaluate(time - t) for t in spikes)
+    fit = {"rise_s": 0.03, "decay_s": 0.3, "amplitude": 0.15, "half_decay_s": kernel.half_decay_s,
+           "half_decay_low_s": 0.8 * kernel.half_decay_s, "half_decay_high_s": 1.25 * kernel.half_decay_s}
+    fig = kernel_evidence(dff, spikes, rate, fit, "GCaMP6f", roi_label="ROI 0")
+    labels = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert "bootstrap interval of the fit" in labels and "GCaMP6f (published range)" in labels
+    assert "average of 12 isolated" in fig._suptitle.get_text()
+    assert kernel_evidence(dff, spikes, rate, {**fit, "decay_s": np.nan}) is None

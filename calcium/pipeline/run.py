@@ -1091,13 +1091,19 @@ def _example_data(results, roi: int, per_roi: dict, electrical_spikes: dict, lag
                       decay_s=float(per_roi["kernel_decay_s"][roi]))
 
 
-def _electrical_data(results) -> dict | None:
-    """Kernel fits and scores of the ROIs with electrical spikes, read from an open results file (None: none)."""
+def _electrical_data(results, electrical_spikes: dict, lags: dict) -> dict | None:
+    """Kernel fits and scores of the ROIs with electrical spikes, with their ΔF/F and spikes on the imaging clock,
+    read from an open results file (None: none)."""
     if "electrical/roi" not in results:
         return None
+    rois = [int(r) for r in results.read("electrical/roi")]
+    shown = [r for r in rois if r in electrical_spikes and "dff" in results]
+    optional = [name for name in ("half_decay_low_s", "half_decay_high_s") if f"electrical/fit_{name}" in results]
     return {"roi": results.read("electrical/roi"),
+            "dff": {r: results.read("dff", r).astype(np.float64) for r in shown},
+            "spike_times": {r: np.asarray(electrical_spikes[r], dtype=np.float64) + lags.get(r, 0.0) for r in shown},
             "fit": {name: results.read(f"electrical/fit_{name}") for name in
-                    ("rise_s", "decay_s", "amplitude", "half_decay_s", "lag_s", "r_squared")},
+                    ("rise_s", "decay_s", "amplitude", "half_decay_s", "lag_s", "r_squared", *optional)},
             "score": {name: results.read(f"electrical/score_{name}") for name in
                       ("precision", "recall", "f1", "n_true", "n_inferred", "n_matched", "timing_error_mean_s")},
             "notes": results.read("electrical/note"),
@@ -1175,7 +1181,7 @@ def _read_session(results_path: Path, *, n_examples: int, electrical_spikes, ind
                            flag_descriptions=[stages.describe_flags(f) for f in flags],
                            failed=(flags & stages.FLAG_FAILED) != 0, spike_times=trains, indicator=indicator,
                            examples=examples, calibration=_read_calibration(results),
-                           electrical=_electrical_data(results), rhythms=_rhythms_data(results, per_roi))
+                           electrical=_electrical_data(results, electrical_spikes, lags), rhythms=_rhythms_data(results, per_roi))
 
 
 def write_session_report(results_path, folder, *, n_examples: int = 6, electrical_spikes=None, indicator=None,

@@ -57,6 +57,7 @@ __all__ = [
     "prediction_figure",
     "kernel_figure",
     "kernel_fit_figure",
+    "kernel_evidence_figure",
     "calibration_figure",
     "raster_figure",
     "score_figure",
@@ -984,6 +985,72 @@ def kernel_fit_figure(fit, *, reference=None, reference_label="published kinetic
     return kernel_figure(time, fitted=kernel, free_form=free, free_form_time_s=free_time, reference=reference,
                          fitted_label="fitted double exponential", reference_label=reference_label,
                          title=title)
+
+
+def kernel_evidence_figure(time_s, mean_dff, spread_low, spread_high, *, n_spikes, fit_time_s, fitted,
+                           fitted_low=None, fitted_high=None, reference_low=None, reference_high=None,
+                           reference_label="published range", spread_label="10-90 % of the spikes",
+                           roi_label="") -> Figure:
+    """A fitted kernel drawn over the data it was fitted to: the average ΔF/F around isolated spikes.
+
+    Parameters
+    ----------
+    time_s : array_like, shape (points,)
+        Time from the spike (s) of the average.
+    mean_dff, spread_low, spread_high : array_like, shape (points,)
+        Average ΔF/F around the isolated spikes and the band of its spread.
+    n_spikes : int
+        Number of isolated spikes averaged (in the title).
+    fit_time_s : array_like, shape (samples,)
+        Time from the spike (s) of the curves below.
+    fitted : array_like, shape (samples,)
+        The fitted kernel's response to one spike.
+    fitted_low, fitted_high : array_like, shape (samples,), optional
+        Ends of the fitted kernel's bootstrap band.
+    reference_low, reference_high : array_like, shape (samples,), optional
+        Ends of the published range of the indicator's response.
+    reference_label, spread_label : str
+        Legend texts of the published range and of the data's spread.
+    roi_label : str
+        Name of the ROI, put in the title.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    time_s = _vector(time_s, "time_s", finite=True, allow_empty=False)
+    n = time_s.size
+    mean_dff = _vector(mean_dff, "mean_dff", length=n)
+    low, high = _vector(spread_low, "spread_low", length=n), _vector(spread_high, "spread_high", length=n)
+    n_spikes = check_int(n_spikes, "n_spikes", minimum=0)
+    fit_time = _vector(fit_time_s, "fit_time_s", finite=True, allow_empty=False)
+    m = fit_time.size
+    curve = _vector(fitted, "fitted", length=m)
+    band = [None if v is None else _vector(v, name, length=m) for v, name in
+            ((fitted_low, "fitted_low"), (fitted_high, "fitted_high"),
+             (reference_low, "reference_low"), (reference_high, "reference_high"))]
+    fig = _figure(3.6)
+    ax = fig.add_subplot()
+    _style(ax)
+    _title(fig, _prefix(_label(roi_label, "roi_label"), f"fitted kernel over the average of {n_spikes} isolated "
+                                                         f"recorded spike(s)"))
+    if band[2] is not None and band[3] is not None:
+        ax.fill_between(fit_time, band[2], band[3], color=PALETTE["sand"], alpha=0.45, linewidth=0,
+                        label=_label(reference_label, "reference_label"))
+    ax.fill_between(time_s, low, high, color=PALETTE["grey"], alpha=0.3, linewidth=0,
+                    label=_label(spread_label, "spread_label"))
+    ax.plot(time_s, mean_dff, "o-", color=PALETTE["ink"], linewidth=0.9, markersize=2.5,
+            label="average ΔF/F (one dot per frame)")
+    if band[0] is not None and band[1] is not None:
+        ax.fill_between(fit_time, band[0], band[1], color=PALETTE["orange"], alpha=0.3, linewidth=0,
+                        label="bootstrap interval of the fit")
+    ax.plot(fit_time, curve, color=PALETTE["orange"], linewidth=1.8, label="fitted kernel")
+    ax.axvline(0.0, color=PALETTE["grey"], linewidth=0.8, linestyle=":")
+    ax.set_xlabel("time from the recorded spike (s)")
+    ax.set_ylabel("ΔF/F")
+    ax.set_xlim(min(time_s[0], fit_time[0]), max(time_s[-1], fit_time[-1]))
+    _legend(ax, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=3)
+    return fig
 
 
 def _spike_trains(spike_times_per_roi):

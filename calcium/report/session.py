@@ -7,14 +7,18 @@ arrays, dicts and small dataclasses) and :func:`session_report` turns it into an
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from .figures import (calibration_figure, distribution_figure, kernel_figure, noise_figure, raster_figure,
+from .figures import (calibration_figure, distribution_figure, kernel_evidence_figure, kernel_figure, noise_figure, raster_figure,
                       rhythm_removal_figure, rhythm_spectrum_figure, score_figure, stages_figure,
                       time_frequency_figure, zoom_figure)
 from .html import HtmlReport
+
+#: Kernel-over-data figures drawn at most (the ROIs with electrical spikes first in the results file).
+MAX_KERNEL_EVIDENCE = 6
 
 
 @dataclass(frozen=True)
@@ -204,6 +208,87 @@ def event_window(event_times, total_s: float, window_s: float) -> float:
     return float(starts[int(np.argmax(counts))])
 
 
+def isolated_spike_average(dff, frame_rate: float, spike_times, *, isolation_s: float, before_s: float,
+                           after_s: float):
+    """The ΔF/F around isolated spikes: (time_s, mean, 10th percentile, 90th percentile, n_spikes).
+
+    A spike is isolated when no other spike lies within ``isolation_s`` before or after it. The ΔF/F of each
+    isolated spike is read at the spike time plus multiples of the frame interval, from ``-before_s`` to
+    ``after_s``, by linear interpolation between frames (so that spikes falling between frames line up);
+    missing frames (NaN) are left out of the statistics; spikes whose window leaves the recording are not used.
+    """
+    dff = np.asarray(dff, dtype=np.float64)
+    times = np.sort(np.asarray(spike_times, dtype=np.float64))
+    times = times[np.isfinite(times)]
+    gaps = np.diff(times)
+    alone = (np.concatenate([[np.inf], gaps]) > isolation_s) & (np.concatenate([gaps, [np.inf]]) > isolation_s)
+    total_s = (dff.size - 1) / frame_rate
+    chosen = times[alone & (times - before_s >= 0) & (times + after_s <= total_s)]
+    offsets = np.arange(-int(round(before_s * frame_rate)), int(round(after_s * frame_rate)) + 1) / frame_rate
+    frames = np.arange(dff.size) / frame_rate
+    if chosen.size == 0:
+        empty = np.full(offsets.size, np.nan)
+        return offsets, empty, empty, empty, 0
+    rows = []
+    for t in chosen:
+        sample = t + offsets
+        left = np.clip(np.floor(sample * frame_rate).astype(int), 0, dff.size - 2)
+        values = np.interp(sample, frames, dff)
+        values[~(np.isfinite(dff[left]) & np.isfinite(dff[left + 1]))] = np.nan
+        rows.append(values)
+    rows = np.array(rows)
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # an all-missing column gives NaN, drawn as a gap
+        return (offsets, np.nanmean(rows, axis=0), np.nanpercentile(rows, 10, axis=0),
+                np.nanpercentile(rows, 90, axis=0), int(chosen.size))
+
+
+def _stretched(kernel, half_decay_s: float, amplitude: float, time_s) -> np.ndarray:
+    """``kernel`` stretched in time to the half-decay ``half_decay_s`` and scaled to peak ``amplitude``."""
+    from ..kernel import Kernel
+
+    factor = half_decay_s / kernel.half_decay_s
+    return Kernel(kernel.rise_s * factor, kernel.decay_s * factor, amplitude).evaluate(time_s)
+
+
+def kernel_evidence(dff, spike_times, frame_rate: float, fit: dict, indicator=None, *, roi_label=""):
+    """The figure of one ROI's fitted kernel over the average ΔF/F around its isolated recorded spikes, or None
+    when the fit failed.
+
+    ``fit`` holds the ROI's ``rise_s``, ``decay_s``, ``amplitude``, ``half_decay_s`` and, when bootstrapped,
+    ``half_decay_low_s`` and ``half_decay_high_s``. The bootstrap band is the fitted kernel stretched in time to
+    the two ends of its half-decay interval; the published range, the indicator's published kernel stretched to
+    the ends of its accepted half-decay range and scaled to the ends of its accepted single-spike ΔF/F.
+    """
+    from ..kernel import Kernel
+
+    if not all(np.isfinite(fit[k]) for k in ("rise_s", "decay_s", "amplitude")) or fit["decay_s"] <= 0:
+        return None
+    kernel = Kernel(float(fit["rise_s"]), float(fit["decay_s"]), float(fit["amplitude"]))
+    after_s = 5.0 * kernel.decay_s
+    time_s, mean, low, high, n = isolated_spike_average(dff, frame_rate, spike_times,
+                                                        isolation_s=max(1.0, after_s), before_s=0.5,
+                                                        after_s=after_s)
+    fine = np.linspace(time_s[0], time_s[-1], 600)
+    curve = kernel.evaluate(fine)
+    band_low = band_high = None
+    ends = (fit.get("half_decay_low_s", np.nan), fit.get("half_decay_high_s", np.nan))
+    if all(np.isfinite(e) and e > 0 for e in ends):
+        stretched = [_stretched(kernel, float(e), kernel.amplitude, fine) for e in ends]
+        band_low, band_high = np.minimum(*stretched), np.maximum(*stretched)
+    ref_low = ref_high = None
+    label = "published range"
+    halves, peaks = reference_range(indicator, "half-decay"), reference_range(indicator, "single-spike ΔF/F")
+    if halves is not None and peaks is not None:
+        published = Kernel.from_indicator(indicator)
+        curves = [_stretched(published, h, a, fine) for h in halves[0] for a in peaks[0]]
+        ref_low, ref_high = np.min(curves, axis=0), np.max(curves, axis=0)
+        label = f"{halves[1]} (published range)"
+    return kernel_evidence_figure(time_s, mean, low, high, n_spikes=n, fit_time_s=fine, fitted=curve,
+                                  fitted_low=band_low, fitted_high=band_high, reference_low=ref_low,
+                                  reference_high=ref_high, reference_label=label, roi_label=roi_label)
+
+
 # ---------------------------------------------------------------------------
 # sections
 # ---------------------------------------------------------------------------
@@ -390,6 +475,22 @@ def electrical_section(report: HtmlReport, electrical: dict, indicator, frame_ra
                                         reference_label=f"{indicator} (published)" if indicator else "reference"),
                           name="fit-kernel", caption="Kernel with the median fitted time constants and amplitude"
                                                      + (", beside the published one." if indicator else "."))
+    shown = 0
+    for k, roi in enumerate(rois):
+        roi = int(roi)
+        if shown >= MAX_KERNEL_EVIDENCE or roi not in electrical.get("dff", {}):
+            continue
+        fig = kernel_evidence(electrical["dff"][roi], electrical["spike_times"][roi], frame_rate,
+                              {name: values[k] for name, values in fit.items()}, indicator, roi_label=f"ROI {roi}")
+        if fig is None:
+            continue
+        shown += 1
+        report.add_figure(fig, name=f"fit-data-{roi}",
+                          caption=f"ROI {roi}: the ΔF/F around its isolated electrical spikes (on the imaging "
+                                  f"clock, with the fitted lag), averaged, with the 10-90 % range over the spikes; "
+                                  f"the fitted kernel over it with the interval of its half-decay time from the "
+                                  f"bootstrap" + (f"; shaded: the range accepted for {indicator}." if indicator
+                                                  else "."))
     report.add_figure(score_figure(score["precision"], score["recall"], score["f1"],
                                    bin_widths_s=electrical["bin_widths_s"], correlation=electrical["correlation"],
                                    labels=[str(r) for r in rois]),
