@@ -742,3 +742,15 @@ def test_kernel_evidence_draws_the_bootstrap_band_around_the_fit():
     assert "bootstrap interval of the fit" in labels and "GCaMP6f (published range)" in labels
     assert "average of 12 isolated" in fig._suptitle.get_text()
     assert kernel_evidence(dff, spikes, rate, {**fit, "decay_s": np.nan}) is None
+
+
+def test_filter_gain_below_the_floor_ends_at_the_axis_instead_of_running_flat():
+    # a Butterworth low-pass falls to -inf dB at the Nyquist frequency (scipy.signal.butter, bilinear transform)
+    b, a = scipy.signal.butter(4, 3.0, fs=30.0)
+    freq, response = scipy.signal.freqz(b, a, worN=512, fs=30.0)
+    fig = filter_response_figure(freq, np.abs(response), np.abs(response) ** 2, frame_rate=30.0, floor_db=-80.0)
+    zero = [line for line in fig.axes[0].get_lines() if line.get_label().startswith("zero phase")][0]
+    drawn = np.asarray(zero.get_ydata(), dtype=float)
+    assert np.count_nonzero(drawn <= -80.0) == 1  # only the crossing
+    assert np.isnan(drawn[-1])
+    assert "below -80 dB: not drawn" in [t.get_text() for t in fig.axes[0].get_legend().get_texts()]

@@ -42,6 +42,7 @@ from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 
 from .._checks import as_spike_times, check_frame_rate, check_int, check_positive
@@ -626,6 +627,16 @@ def _gain_db(gain, name: str, n: int, floor_db: float) -> np.ndarray:
     return np.maximum(db, floor_db)
 
 
+def _end_at_floor(gain_db: np.ndarray, floor_db: float) -> np.ndarray:
+    """``gain_db`` with the stretches at the floor left out (NaN), except their first point, so that a line
+    reaches the bottom of the axis where it crosses the floor instead of running flat along it."""
+    out = gain_db.copy()
+    at_floor = gain_db <= floor_db
+    first = at_floor & ~np.concatenate([[False], at_floor[:-1]])
+    out[at_floor & ~first] = np.nan
+    return out
+
+
 def filter_response_figure(freq_hz, single_pass_gain, zero_phase_gain, *, half_power_hz=None,
                            frame_rate=None, floor_db=-80.0, log_frequency=False,
                            title="filter gain, one pass and forward-backward (zero phase)") -> Figure:
@@ -675,9 +686,11 @@ def filter_response_figure(freq_hz, single_pass_gain, zero_phase_gain, *, half_p
     _style(ax)
     _title(fig, _label(title, "title"))
     keep = freq > 0 if log_frequency else np.ones(freq.size, bool)
-    ax.plot(freq[keep], single[keep], color=PALETTE["blue"], linewidth=1.4, linestyle="--",
-            label="one pass")
-    ax.plot(freq[keep], zero[keep], color=PALETTE["ink"], linewidth=1.8, label="zero phase (forward-backward)")
+    clipped = bool(np.any(single <= floor_db) or np.any(zero <= floor_db))
+    ax.plot(freq[keep], _end_at_floor(single, floor_db)[keep], color=PALETTE["blue"], linewidth=1.4,
+            linestyle="--", label="one pass")
+    ax.plot(freq[keep], _end_at_floor(zero, floor_db)[keep], color=PALETTE["ink"], linewidth=1.8,
+            label="zero phase (forward-backward)")
     ax.axhline(-3.0, color=PALETTE["orange"], linewidth=1.0, linestyle=":", label="-3 dB (half power)")
     ax.axhline(-6.0, color=PALETTE["plum"], linewidth=1.0, linestyle=":", label="-6 dB")
     for k, corner in enumerate(corners):
@@ -693,7 +706,13 @@ def filter_response_figure(freq_hz, single_pass_gain, zero_phase_gain, *, half_p
     ax.set_ylim(max(floor_db, lowest - 3.0), max(3.0, float(max(single.max(), zero.max())) + 1.0))
     ax.set_xlabel("frequency (Hz)")
     ax.set_ylabel("gain (dB)")
-    _legend(ax, loc="best")
+    # above the curves, never over them; a note (a handle drawn nowhere) says where the lines stop
+    handles, labels = ax.get_legend_handles_labels()
+    if clipped:
+        handles.append(Line2D([], [], linestyle="none"))
+        labels.append(f"below {floor_db:g} dB: not drawn")
+    ax.legend(handles, labels, fontsize=_LEGEND_SIZE, labelcolor=_TEXT, frameon=True, facecolor="white",
+              edgecolor="none", framealpha=0.85, loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=3)
     return fig
 
 
