@@ -260,17 +260,20 @@ def reused_workspace(T: int):
 
 
 # --------------------------------------------------------------------------- the solve
-def _pool_pass(y, w, unit, response, lam, b, thr, work: Workspace):
-    """One pool pass at a fixed baseline into the workspace; returns (pools, pool 0 pinned, exact)."""
+def _exact_pass(response) -> bool:
+    """Whether the pool pass alone is exact (AR(1), 0 < g < 1; at a fixed baseline and penalty)."""
+    return response.g2 == 0.0 and response.g1 > 0.0
+
+
+def _pool_pass(y, w, unit, response, lam, b, thr, work: Workspace, expand=True):
+    """One pool pass at a fixed baseline into the workspace (with ``expand``, its calcium and spikes into
+    work.c and work.s); returns (pools, pool 0 pinned)."""
     scratch = work.scratch()
-    if response.g2 == 0.0 and response.g1 > 0.0:
-        n, pinned0 = pass_ar1(y, w, unit, response, lam, b, thr, scratch)
-        return n, pinned0, True
+    if _exact_pass(response):
+        return pass_ar1(y, w, unit, response, lam, b, thr, scratch, expand)
     if unit and thr == 0.0:
-        n, pinned0 = pass_ar2_unit(y, response, lam, b, scratch)
-    else:
-        n, pinned0 = pass_ar2(y, w, unit, response, lam, b, thr, scratch)
-    return n, pinned0, False
+        return pass_ar2_unit(y, response, lam, b, scratch, expand)
+    return pass_ar2(y, w, unit, response, lam, b, thr, scratch, expand)
 
 
 #: ``support=PREVIOUS`` in solve: start from the support of the last solution held by the workspace.
@@ -309,11 +312,13 @@ def solve(y, w, unit, g, lam, baseline, min_spike, *, b0=None, support=None, all
     use_allowed = allowed is not None
     allowed_arr = np.asarray(allowed, dtype=bool) if use_allowed else np.zeros(1, dtype=bool)
     if support is None:
-        # one pool pass at the current baseline; a free baseline is then fitted jointly by the exact finish
-        n, pinned0, exact = _pool_pass(y, w, unit, response, lam, b, thr, work)
+        # one pool pass at the current baseline; a free baseline is then fitted jointly by the exact finish,
+        # which computes the calcium itself: the pass expands its pools only when its solution is the answer
+        final = thr > 0.0 or (_exact_pass(response) and not fit_b and match is None)
+        n, pinned0 = _pool_pass(y, w, unit, response, lam, b, thr, work, expand=final)
         iterations += 1
         work.n_pools, work.free0 = n, not pinned0
-        if thr > 0.0 or (exact and not fit_b and match is None):
+        if final:
             if thr > 0.0:
                 np.maximum(work.s, 0.0, out=work.s)  # rounding-level negatives
             if shared:
@@ -357,7 +362,7 @@ def solve(y, w, unit, g, lam, baseline, min_spike, *, b0=None, support=None, all
         # pivoting cycled (a degenerate problem): restart from a feasible point with the monotone method
         b = b_start
         if support is None:
-            n, pinned0, _ = _pool_pass(y, w, unit, response, lam, b, thr, work)
+            n, pinned0 = _pool_pass(y, w, unit, response, lam, b, thr, work)
             on = _support_of(work.starts, n, not pinned0, T)
             if use_allowed:
                 on &= allowed_arr

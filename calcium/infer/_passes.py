@@ -56,7 +56,7 @@ def _ar1_merge_down(tA, tD, tG, n, starts, stack):
 
 
 @njit(cache=True)
-def pass_ar1(y, w, unit, response, lam, b, thr, scratch):
+def pass_ar1(y, w, unit, response, lam, b, thr, scratch, expand):
     """Pool pass for AR(1), 0 < g < 1: exact (pool-adjacent violators) when thr == 0.
 
     Pool j holds the sums A = sum w h_k^2, D = sum m_t h_k (m_t = w_t (y_t - b)
@@ -64,8 +64,8 @@ def pass_ar1(y, w, unit, response, lam, b, thr, scratch):
     is below thr or <= 0).  With unit weights (A >= 1) the tests compare
     without dividing: a new frame (A = 1, D = m) opens a pool when
     m A_top >= N_top with N = D G + thr A; the top pool stays above pool j
-    when D_top A_j >= A_top N_j.  Fills ``scratch.calcium`` and
-    ``scratch.spikes``; returns (number of pools, pool 0 pinned at 0).
+    when D_top A_j >= A_top N_j.  With ``expand`` fills ``scratch.calcium``
+    and ``scratch.spikes``; returns (number of pools, pool 0 pinned at 0).
     """
     T = y.shape[0]
     g = response.g1
@@ -134,6 +134,8 @@ def pass_ar1(y, w, unit, response, lam, b, thr, scratch):
     pA = stack[STACK_A]
     pD = stack[STACK_D]
     pinned0 = not (pA[0] > 0.0 and pD[0] > 0.0 and pD[0] >= thr * pA[0])
+    if not expand:
+        return n, pinned0
     # expand the pools: c = v g^k within a pool (g^k = h[k], zero once decayed)
     prev = 0.0
     for i in range(n):
@@ -207,21 +209,23 @@ def _top_value(n, v0, tA, tB, tD, p):
 
 
 @njit(cache=True, inline="always")
-def _close_pass(scratch, response, T, n, tst, v, p):
-    """End of a pool pass: the top pool stored as pool n, the pools expanded into the calcium and spikes;
-    returns the number of pools."""
+def _close_pass(scratch, response, T, n, tst, v, p, expand):
+    """End of a pool pass: the top pool stored as pool n, the pools expanded into the calcium and spikes
+    (with ``expand``: the exact finish that follows a pass does not need them); returns the number of
+    pools."""
     starts = scratch.starts
     stack = scratch.stack
     starts[n] = tst
     stack[STACK_VALUE, n] = v
     stack[STACK_START_VALUE, n] = p
     n += 1
-    fill(response, T, starts, n, stack[STACK_VALUE], stack[STACK_START_VALUE], scratch.calcium, scratch.spikes)
+    if expand:
+        fill(response, T, starts, n, stack[STACK_VALUE], stack[STACK_START_VALUE], scratch.calcium, scratch.spikes)
     return n
 
 
 @njit(cache=True)
-def pass_ar2_unit(y, response, lam, b, scratch):
+def pass_ar2_unit(y, response, lam, b, scratch, expand):
     """pass_ar2 for unit weights and thr = 0 (the common case), with the pass's constants hoisted.
 
     Same rule and same results as pass_ar2; p g2 and g1 p + g2 q are kept
@@ -290,11 +294,11 @@ def pass_ar2_unit(y, response, lam, b, scratch):
         else:
             pred_n = (tD - tB * p) * h[L] + tA * pg * h[L - 1]
             pred_d = tA
-    return _close_pass(scratch, response, T, n, tst, _top_value(n, v0, tA, tB, tD, p), p), pinned0
+    return _close_pass(scratch, response, T, n, tst, _top_value(n, v0, tA, tB, tD, p), p, expand), pinned0
 
 
 @njit(cache=True)
-def pass_ar2(y, w, unit, response, lam, b, thr, scratch):
+def pass_ar2(y, w, unit, response, lam, b, thr, scratch, expand):
     """Pool pass for AR(2) (any AR(1)/AR(2) coefficients), the start value of each pool held fixed.
 
     As in the AR(2) pass of Friedrich et al. (2017): a pool starting at t0
@@ -370,4 +374,4 @@ def pass_ar2(y, w, unit, response, lam, b, thr, scratch):
         else:
             pred_n = (tD - tB * p) * h[L] + tA * p * g2 * h[L - 1]
             pred_d = tA
-    return _close_pass(scratch, response, T, n, tst, _top_value(n, v0, tA, tB, tD, p), p), pinned0
+    return _close_pass(scratch, response, T, n, tst, _top_value(n, v0, tA, tB, tD, p), p, expand), pinned0

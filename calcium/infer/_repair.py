@@ -75,13 +75,10 @@ def check_pools(trace, response, lam, b, starts, n, free0, pools, limits, tol_g,
         st = starts[i]
         v = pv[i]
         pg = pp[i] * g2
-        # (the frames of the pool are read through views indexed by k, the frame within the pool: that loop
-        # compiles to noticeably faster code than one indexed by t)
-        yp = y[st:en]
         if unit and not use_allowed:  # the common case, without the per-frame tests of the others
             for k in range(en - st - 1, 0, -1):
                 x = v * h[k] + pg * h[k - 1]
-                z = g1 * z1 + ((yp[k] - b - x) + g2 * z2)  # one fused step on the chain through z1
+                z = g1 * z1 + ((y[st + k] - b - x) + g2 * z2)  # one fused step on the chain through z1
                 z2 = z1
                 z1 = z
                 if z > limit:
@@ -90,16 +87,14 @@ def check_pools(trace, response, lam, b, starts, n, free0, pools, limits, tol_g,
                     bad_grad[n_bad] = lam - z
                     n_bad += 1
         else:
-            wp = yp if unit else w[st:en]
-            ap = allowed[st:en] if use_allowed else allowed
             for k in range(en - st - 1, 0, -1):
                 x = v * h[k] + pg * h[k - 1]
-                r = (yp[k] - b - x) if unit else wp[k] * (yp[k] - b - x)
+                r = (y[st + k] - b - x) if unit else w[st + k] * (y[st + k] - b - x)
                 z = g1 * z1 + (r + g2 * z2)
                 z2 = z1
                 z1 = z
                 # (allowed first: with a restricted support most frames are not, and that test predicts well)
-                if (not use_allowed or ap[k]) and z > limit:
+                if (not use_allowed or allowed[st + k]) and z > limit:
                     bad[n_bad] = st + k
                     bad_on[n_bad] = False
                     bad_grad[n_bad] = lam - z
