@@ -211,7 +211,7 @@ def _demo_stages(data: Path, out: Path, sc: dict, steps) -> Path:
     vs_truth = calcium.score_many(found, {i: truth.get(i, np.empty(0)) for i in found}, tolerance_s=0.1)
     step("score")
     # 8. would single spikes be detectable at other frame rates, at this session's noise?
-    plan = calcium.plan_detectability(kernel=kernel, frame_rates=(10.0, 20.0, 40.0),
+    plan = calcium.plan_detectability(kernel=kernel, frame_rates=(fr / 2, fr, 2 * fr),
                                       noise_sd=(float(np.median(noise)), 2 * float(np.median(noise))),
                                       n_trials=60, seed=1)
     step("plan")
@@ -282,8 +282,10 @@ def _demo_stages(data: Path, out: Path, sc: dict, steps) -> Path:
                    caption="Precision, recall and F1 per ROI, and the correlation of binned counts.", name="scores")
     rep.add_section("Planning: single-spike detectability")
     rep.add_text(str(plan), preformatted=True)
-    rep.add_figure(fig.plan_figure(plan), caption="Detection probability of single spikes at a 1 % "
-                   "false-positive rate, by frame rate, at this session's noise and twice it.", name="plan")
+    rep.add_figure(fig.plan_figure(plan, session_frame_rate=fr),
+                   caption=f"Detection probability of single spikes at a 1 % false-positive rate at half, once and "
+                           f"twice this session's frame rate ({fr:g} Hz), at this session's noise and twice it.",
+                   name="plan")
     rep.add_section("Per-ROI table")
     header = ["roi", "noise_sd", "snr", "n_inferred", "count 90 %", "spike size", "n_true", "f1", "missing_frames"]
     rows, flags = [], []

@@ -754,3 +754,13 @@ def test_filter_gain_below_the_floor_ends_at_the_axis_instead_of_running_flat():
     assert np.count_nonzero(drawn <= -80.0) == 1  # only the crossing
     assert np.isnan(drawn[-1])
     assert "below -80 dB: not drawn" in [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+
+
+def test_detection_lines_differ_beyond_colour_and_the_session_rate_is_marked():
+    fig = detection_figure([10.0, 30.0, 60.0], [[1.0, 1.0, 1.0], [1.0, 1.0, 1.0]], noise_sd=[0.05, 0.1],
+                           session_frame_rate=30.0)
+    ax = fig.axes[0]
+    drawn = [line for line in ax.get_lines() if line.get_marker() not in (None, "None", "")]
+    assert len({(line.get_marker(), line.get_linestyle()) for line in drawn}) == 2  # apart even on top of each other
+    assert "this session, 30 Hz" in [t.get_text() for t in ax.texts]
+    assert any(np.allclose(line.get_xdata(), 30.0) for line in ax.get_lines() if line not in drawn)

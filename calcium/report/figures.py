@@ -1276,7 +1276,7 @@ def score_figure(precision, recall, f1, *, bin_widths_s=None, correlation=None, 
 
 def detection_figure(frame_rates, detection_probability, *, noise_sd, probability_error=None,
                    shortest_interval_s=None, target_probability=None, noise_unit="ΔF/F",
-                   title="spike detection against frame rate") -> Figure:
+                   title="spike detection against frame rate", session_frame_rate=None) -> Figure:
     """Probability of detecting a spike against frame rate, one line per noise level.
 
     Parameters
@@ -1299,12 +1299,21 @@ def detection_figure(frame_rates, detection_probability, *, noise_sd, probabilit
         Unit of ``noise_sd`` for the legend.
     title : str
         Figure title.
+    session_frame_rate : float, optional
+        The frame rate of the session being planned for, marked on both panels.
 
     Returns
     -------
     matplotlib.figure.Figure
+
+    Notes
+    -----
+    Each noise level has its own marker and dash pattern besides its colour, so that lines that lie on top of
+    each other (every spike detected) or are printed in grey stay apart.
     """
     rates = _vector(frame_rates, "frame_rates", finite=True, allow_empty=False)
+    if session_frame_rate is not None:
+        session_frame_rate = check_frame_rate(session_frame_rate)
     if np.any(rates <= 0):
         raise ValueError("frame_rates must be positive (Hz)")
     prob = _per_roi_matrix(detection_probability, "detection_probability", rates.size)
@@ -1342,10 +1351,13 @@ def detection_figure(frame_rates, detection_probability, *, noise_sd, probabilit
     log_x = rates.max() / rates.min() > 20
     ax = axes[0]
     _style(ax)
+    markers, dashes = "osD^v<>p", ["-", "--", ":", "-."]
     for i, level in enumerate(levels):
         ax.errorbar(rates[order], prob[i, order], yerr=None if yerr is None else yerr[:, i, order],
-                    color=colours[i], linewidth=1.5, marker="o", markersize=3.5, capsize=2.5,
+                    color=colours[i], linewidth=1.5, marker=markers[i % len(markers)],
+                    linestyle=dashes[i % len(dashes)], markersize=5.5 - 1.2 * (i % 3), capsize=2.5,
                     label=f"{level:.3g}")
+    session_axes = [ax]
     if target_probability is not None:
         target = check_positive(target_probability, "target_probability")
         if target > 1:
@@ -1364,9 +1376,11 @@ def detection_figure(frame_rates, detection_probability, *, noise_sd, probabilit
     if interval is not None:
         ax = axes[1]
         _style(ax)
+        session_axes.append(ax)
         for i, level in enumerate(levels):
-            ax.plot(rates[order], interval[i, order], color=colours[i], linewidth=1.5, marker="o",
-                    markersize=3.5, label=f"{level:.3g}")
+            ax.plot(rates[order], interval[i, order], color=colours[i], linewidth=1.5,
+                    marker=markers[i % len(markers)], linestyle=dashes[i % len(dashes)],
+                    markersize=5.5 - 1.2 * (i % 3), label=f"{level:.3g}")
         ax.set_xlabel("frame rate (Hz)")
         ax.set_ylabel("shortest resolvable interval (s)")
         _panel_title(ax, "two spikes told apart when at least this far apart")
@@ -1375,10 +1389,16 @@ def detection_figure(frame_rates, detection_probability, *, noise_sd, probabilit
         positive = interval[np.isfinite(interval) & (interval > 0)]
         if positive.size and positive.max() / positive.min() > 20:
             ax.set_yscale("log")
+    if session_frame_rate is not None:
+        for axis in session_axes:
+            axis.axvline(session_frame_rate, color=PALETTE["grey"], linewidth=1.0, linestyle=":", zorder=0)
+            axis.annotate(f"this session, {session_frame_rate:g} Hz", (session_frame_rate, 0.03),
+                          xycoords=("data", "axes fraction"), xytext=(-2, 0), textcoords="offset points",
+                          rotation=90, ha="right", va="bottom", fontsize=_LEGEND_SIZE, color=_TEXT)
     return fig
 
 
-def plan_figure(plan, *, target_probability=None) -> Figure:
+def plan_figure(plan, *, target_probability=None, session_frame_rate=None) -> Figure:
     """Draw a detectability plan (from :func:`calcium.plan.plan_detectability`).
 
     Reads the plan's documented ``frame_rates``, ``noise_sd``, ``detection``
@@ -1391,6 +1411,8 @@ def plan_figure(plan, *, target_probability=None) -> Figure:
     plan : DetectabilityPlan
     target_probability : float, optional
         A required detection probability, drawn as a guide.
+    session_frame_rate : float, optional
+        The frame rate of the session being planned for, marked on the figure.
 
     Returns
     -------
@@ -1411,7 +1433,7 @@ def plan_figure(plan, *, target_probability=None) -> Figure:
     shortest = None if shortest is None or np.size(shortest) == 0 else np.asarray(shortest, dtype=np.float64).T
     return detection_figure(rates, detection.T, noise_sd=np.asarray(plan.noise_sd, dtype=np.float64),
                           probability_error=np.clip(error, 0.0, None), shortest_interval_s=shortest,
-                          target_probability=target_probability,
+                          target_probability=target_probability, session_frame_rate=session_frame_rate,
                           title=f"spike detection against frame rate (false-positive rate "
                                 f"{plan.false_positive_rate:.2g}, bars: 95 % intervals)")
 
