@@ -252,6 +252,11 @@ def test_report_opens_in_a_browser_with_every_image_loaded(session, browse, tmp_
     seen = browse(session["summary"].report_path, tmp_path / "profile")
     assert int(seen["images-total"]) >= 6
     assert seen["images-loaded"] == seen["images-total"]
+    # nothing sticks out of its container on a wide screen or on a phone (the page marks what does on <body>)
+    for width in (1400, 375):
+        seen = browse(session["summary"].report_path, tmp_path / f"profile-{width}", width=width)
+        assert seen["viewport-width"] == str(width)
+        assert seen["overflowing"] == "0", seen["overflowing-what"]
 
 
 def test_nwb_export_holds_the_dff_of_the_results(session):

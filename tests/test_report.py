@@ -764,3 +764,15 @@ def test_detection_lines_differ_beyond_colour_and_the_session_rate_is_marked():
     assert len({(line.get_marker(), line.get_linestyle()) for line in drawn}) == 2  # apart even on top of each other
     assert "this session, 30 Hz" in [t.get_text() for t in ax.texts]
     assert any(np.allclose(line.get_xdata(), 30.0) for line in ax.get_lines() if line not in drawn)
+
+
+@pytest.mark.parametrize("width", [1400, 375])
+def test_long_paths_and_captions_stay_inside_the_page_on_wide_and_phone_screens(tmp_path, browse, width):
+    report = HtmlReport("Session", subtitle="/data/" + "segment" * 40 + "/results.h5")
+    report.add_section("Summary")
+    report.add_text("Results: /data/" + "a" * 200 + "/results.h5")
+    report.add_table(["ROI", "noise SD (ΔF/F)"], [[0, 0.02]], caption="c" * 300)
+    report.add_figure(noise_figure([0.02, 0.03]), name="noise", caption="/" + "b" * 200)
+    seen = browse(report.write(tmp_path / "report"), tmp_path / "profile", width=width)
+    assert seen["viewport-width"] == str(width)
+    assert seen["overflowing"] == "0", seen["overflowing-what"]

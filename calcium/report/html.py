@@ -61,6 +61,7 @@ section.part { margin: 0 0 2.2rem; }
 section.part > h2 { font-size: 1.25rem; color: var(--ink); border-bottom: 1px solid var(--line);
   padding-bottom: 0.25rem; margin: 1.6rem 0 0.8rem; }
 p { margin: 0.5rem 0 0.8rem; max-width: 75ch; }
+p, figcaption, .caption, h1, h2, footer { overflow-wrap: anywhere; }  /* long paths break rather than spill */
 pre { margin: 0.5rem 0 1rem; padding: 0.6rem 0.8rem; overflow-x: auto; background: var(--band);
   border: 1px solid var(--line); border-radius: 4px; font-size: 0.82rem; line-height: 1.4; }
 figure.plot { margin: 1rem 0 1.6rem; }
@@ -143,6 +144,23 @@ _SCRIPT = """
     }
     document.body.dataset.imagesLoaded = String(loaded);
     document.body.dataset.imagesTotal = String(images.length);
+    // what sticks out of its container at this window width (tables and preformatted text scroll inside their
+    // own box, so what they hold is not counted)
+    var out = [], boxes = document.querySelectorAll("header *, main *, footer *");
+    for (var j = 0; j < boxes.length; j++) {
+      var el = boxes[j], parent = el.parentElement;
+      if (el.closest(".table-wrap, pre") && !el.matches(".table-wrap, pre")) { continue; }
+      var r = el.getBoundingClientRect(), p = parent.getBoundingClientRect();
+      var spills = el.clientWidth > 0 && el.scrollWidth > el.clientWidth + 1 &&
+        getComputedStyle(el).overflowX === "visible";  // (text wider than its own box)
+      if (r.width > 0 && (spills || r.right > p.right + 1 || r.left < p.left - 1)) {
+        out.push(el.tagName.toLowerCase() + (el.className ? "." + el.className : ""));
+      }
+    }
+    if (document.documentElement.scrollWidth > window.innerWidth + 1) { out.push("page wider than the window"); }
+    document.body.dataset.viewportWidth = String(window.innerWidth);
+    document.body.dataset.overflowing = String(out.length);
+    document.body.dataset.overflowingWhat = out.slice(0, 8).join(" ");
     if (loaded < images.length) {
       var note = document.getElementById("missing-images");
       note.textContent = (images.length - loaded) + " of " + images.length +
