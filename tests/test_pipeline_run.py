@@ -238,6 +238,11 @@ def test_report_tables_give_times_in_ms_with_three_significant_digits(session):
     assert not [h for h in headers if "(s)" in h or "_s" in h]
     assert "kernel decay (ms)" in html and "half-decay (ms)" in html
     with h5py.File(session["summary"].results_path, "r") as results:
+        calibrated = results["calibrated"][:].astype(bool)
+    # each calibrated ROI names the source of its count calibration (electrical spikes in this session)
+    assert "calibration source" in html
+    assert calibrated.any() and html.count(">paired</td>") == int(calibrated.sum())
+    with h5py.File(session["summary"].results_path, "r") as results:
         decay_ms = float(results["kernel_decay_s"][0]) * 1e3
     table = html[html.index("All 12 ROIs"):]
     first_row = re.findall(r"<td[^>]*>(.*?)</td>", table.split("<tr")[2])

@@ -619,11 +619,13 @@ def table_section(report: HtmlReport, session: SessionData) -> None:
             for i in range(session.n_rois)]
     if calibration is not None:
         sizes = calibration["per_roi"]
-        header[2:2] = ["spikes (90 % interval)", "spike size ΔF/F (90 %)", "calibrated"]
+        source = str(calibration["session"].get("source") or "none")
+        header[2:2] = ["spikes (90 % interval)", "spike size ΔF/F (90 %)", "calibrated", "calibration source"]
         for i, row in enumerate(rows):
             row[2:2] = [f"{int(sizes['count_low'][i])}-{int(sizes['count_high'][i])}",
                         f"{sizes['spike_size'][i]:.3g} ({sizes['spike_size_low'][i]:.3g}-"
-                        f"{sizes['spike_size_high'][i]:.3g})", "yes" if sizes["calibrated"][i] else "NO"]
+                        f"{sizes['spike_size_high'][i]:.3g})", "yes" if sizes["calibrated"][i] else "NO",
+                        source if sizes["calibrated"][i] else "-"]
     report.add_table(header, rows, caption=f"All {session.n_rois} ROIs.", flags=[str(f) for f in per_roi["flags"]])
 
 
