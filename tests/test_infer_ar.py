@@ -222,31 +222,6 @@ def test_bad_arguments_raise_value_errors():
         deconvolve_ar(y, [0.5, 0.1, 0.1], penalty=1.0)
 
 
-def test_the_residual_of_the_affine_pools_is_the_quadratic_in_the_penalty_it_is_computed_as():
-    # Reference: the residual written out term by term, sum w (y - b' - c)^2 expanded over the pools
-    # (syy - 2 b' sy + b'^2 W - 2 sum(v dy + p ey) + 2 b' sum(v h + p f) + sum(v^2 a + 2 v p b + p^2 c)),
-    # at (v, p, b') = x0 - lam x1, evaluated directly at several penalties.
-    from calcium.infer import _state
-    from calcium.infer._support import pools_rss_quadratic
-
-    rng = np.random.default_rng(4)
-    n = 7
-    sums = rng.normal(size=(11, n))
-    pv0, pp0, pv1, pp1 = (rng.normal(size=n) for _ in range(4))
-    b0, b1, syy, sy = rng.normal(size=4)
-
-    def residual(lam):
-        v, p, b = pv0 - lam * pv1, pp0 - lam * pp1, b0 - lam * b1
-        return (syy - 2 * b * sy + b * b * sums[_state.SW].sum() - 2 * np.sum(v * sums[_state.DY] + p * sums[_state.EY])
-                + 2 * b * np.sum(v * sums[_state.H] + p * sums[_state.F])
-                + np.sum(v * v * sums[_state.A] + 2 * v * p * sums[_state.B] + p * p * sums[_state.C]))
-
-    pools = _state.Pools(sums, np.empty((4, n)), pv0, pp0, pv1, pp1)
-    c0, c1, c2 = pools_rss_quadratic(n, pools, b0, b1, syy, sy)
-    for lam in (0.0, 0.3, 1.7, -2.5):
-        assert c0 + c1 * lam + c2 * lam * lam == pytest.approx(residual(lam), rel=1e-12, abs=1e-12)
-
-
 @pytest.mark.parametrize("g", [(1.7, -0.72), (0.9, 0.0), (1.2, -0.3)])
 def test_kernel_tables_of_a_longer_trace_from_a_shorter_one(g):
     # Reference: the AR(2) impulse response h_k = g1 h_{k-1} + g2 h_{k-2} (Box & Jenkins 1976) written out in

@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 
 from calcium.forward import simulate_recording
-from calcium.infer._driver import Workspace, prepare_weights, solve
-from calcium.infer.estimate import (_autocovariance, _coefficient_derivative, _coefficients_from_times,
+from calcium.infer._driver import prepare_weights, solve
+from calcium.infer.estimate import (_coefficient_derivative, _coefficients_from_times,
                                     _event_support, _least_squares, _solve_small,
                                     _times_from_coefficients, _yule_walker,
                                     estimate_ar_coefficients, estimate_noise_sd, penalty_for_noise,
@@ -35,32 +35,6 @@ def test_yule_walker_on_lags_from_one_recovers_exact_ar2_coefficients_despite_wh
     gamma = np.array([np.dot(h[:h.size - k], h[k:]) for k in range(8)])
     gamma[0] += 0.3
     np.testing.assert_allclose(_yule_walker(gamma, 2, 0.3), g, atol=1e-10)
-
-
-def test_autocovariance_matches_numpy_on_observed_pairs():
-    # reference: numpy mean of products over pairs of finite frames
-    rng = np.random.default_rng(0)
-    y = rng.normal(size=500)
-    y[[10, 200]] = np.nan
-    observed = np.isfinite(y)
-    yy = np.where(observed, y, 0.0)
-    got = _autocovariance(yy, observed, 3)
-    mean = np.nanmean(y)
-    for k in range(4):
-        pairs = observed[:y.size - k] & observed[k:]
-        expected = np.mean(((y[:y.size - k] - mean) * (y[k:] - mean))[pairs])
-        assert got[k] == pytest.approx(expected, rel=1e-12)
-
-
-def test_autocovariance_of_a_fully_observed_trace_matches_numpy():
-    # reference: numpy mean of products of the centred trace (the path without missing frames)
-    rng = np.random.default_rng(1)
-    for size in (7, 501, 4096):
-        y = np.cumsum(rng.normal(size=size)) * 0.1 + 2.0
-        got = _autocovariance(y, np.ones(size, dtype=bool), 5)
-        d = y - y.mean()
-        for k in range(6):
-            assert got[k] == pytest.approx(np.mean(d[:size - k] * d[k:]), rel=1e-11, abs=1e-14)
 
 
 @pytest.mark.parametrize("indicator,frame_rate", [("GCaMP6s", 30.0), ("GCaMP6f", 60.0)])
@@ -154,28 +128,6 @@ def test_kinetics_gradient_matches_finite_differences():
     step = 1e-5
     numeric = [(fit(theta + step * e)[0] - fit(theta - step * e)[0]) / (2 * step) for e in np.eye(2)]
     np.testing.assert_allclose(gradient, numeric, rtol=1e-3)
-
-
-@pytest.mark.parametrize("weighted", [False, True])
-def test_projection_removes_the_least_squares_fit_by_a_constant_and_the_pool_responses(weighted):
-    # reference: numpy.linalg.lstsq on the dense design [1, h shifted to each pool start] (weighted rows by
-    # sqrt(w)); the residual of a least-squares fit is what the projection leaves
-    rng = np.random.default_rng(3)
-    T, g = 300, np.array([1.6, -0.63])
-    x = rng.normal(size=T)
-    starts = np.array([0, 17, 40, 41, 120, 250])
-    w = rng.uniform(0.2, 2.0, size=T) if weighted else np.ones(0)
-    h = np.zeros(T)
-    h[0], h[1] = 1.0, g[0]
-    for k in range(2, T):
-        h[k] = g[0] * h[k - 1] + g[1] * h[k - 2]
-    for free0 in (True, False):
-        cols = [np.ones(T)] + [np.concatenate([np.zeros(t), h[:T - t]]) for t in starts if t > 0 or free0]
-        A = np.array(cols).T
-        sw = np.sqrt(w) if weighted else np.ones(T)
-        coef, *_ = np.linalg.lstsq(A * sw[:, None], x * sw, rcond=None)
-        got = Workspace(T).project_out(x, w, not weighted, g[0], g[1], starts, free0, 1e-13)
-        np.testing.assert_allclose(got, x - A @ coef, atol=1e-10)
 
 
 def test_event_support_marks_the_runs_whose_total_reaches_the_size():

@@ -234,8 +234,9 @@ def _pava_non_increasing(values, out):
 
 @njit(cache=True)
 def _profile(x, weight, grid, noise_size, steps, tolerance, loglik_out, share_out, v_out, proportions_out):
-    """The profile likelihood over the grid of q (ascending): EM at each q, warm-started from the previous q's
-    parameters, stopped when an EM step gains less than ``tolerance`` in log-likelihood."""
+    """The profile likelihood over the grid of q (ascending): EM at each q from its default start (``fresh``;
+    the previous q's parameters are not carried over), stopped when an EM step gains less than ``tolerance``
+    in log-likelihood."""
     state = np.empty(6)  # pi0, alpha, theta, a^2, v, (unused)
     p = np.zeros(_MAX_COMPONENTS)
     for j in range(grid.shape[0]):
