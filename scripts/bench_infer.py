@@ -14,11 +14,18 @@
    back to back (best of several repeats each, compiled code warmed up), so
    that both see the same machine load; the table gives the medians over
    the rounds.
-2. Speed-up of deconvolve_ar over deconvolve_convex (cvxpy + CLARABEL) at
+2. Spiking-rate sweep: the exact AR(2) solve (deconvolve_ar, noise-matched
+   penalty) at 0.5 %, 1 %, 2 % and 5 % of frames with a spike (Poisson
+   rate -frame_rate log(1 - share)), fixed baseline (target <= 10x at every
+   share) and fitted (reported), the same kinetics and SNR as in 1; the
+   same at GCaMP6s kinetics (slower rise and decay: more rounds of the
+   exact finish) is reported without a target.  The share of frames that
+   got a spike in the simulation is printed beside the one asked for.
+3. Speed-up of deconvolve_ar over deconvolve_convex (cvxpy + CLARABEL) at
    10,000 frames, fixed and fitted baseline, with the objectives compared
    (target >= 1000x; a positive difference means the convex solver stopped
    above the exact optimum).
-3. Accuracy sweep: F1 of spike detection (+-2 frames, optimal one-to-one
+4. Accuracy sweep: F1 of spike detection (+-2 frames, optimal one-to-one
    matching, calcium.score.score_spikes) and the correlation of spike counts
    in 0.2 s bins, per indicator / frame rate / single-spike SNR, with the
    indicator given and fully blind.
@@ -34,7 +41,7 @@ import time
 import numpy as np
 from scipy.signal import lfilter
 
-from calcium.forward import simulate_recording
+from calcium.forward import NoiseModel, SpikeModel, simulate_recording
 from calcium.infer import deconvolve_ar, deconvolve_convex, infer_spikes, penalty_for_noise
 from calcium.kernel import Kernel
 from calcium.score import score_spikes
@@ -55,10 +62,14 @@ def paired(reference, candidate, rounds: int, repeats: int):
 
 
 def trace(n_frames, frame_rate, kernel, snr, seed=0):
-    duration = n_frames / frame_rate
-    rec = simulate_recording(1, duration, frame_rate, kernel=kernel, rate_hz=0.5, noise_sd=kernel.amplitude / snr,
-                             seed=seed)
+    """(ΔF/F of one simulated ROI, the noise s.d.) at single-spike SNR ``snr`` and 0.5 Hz Poisson firing."""
+    rec = simulate(n_frames / frame_rate, frame_rate, kernel, 0.5, kernel.amplitude / snr, seed)
     return rec.dff[0], kernel.amplitude / snr
+
+
+def simulate(duration_s, frame_rate, kernel, rate_hz, noise_sd, seed):
+    return simulate_recording(1, duration_s, frame_rate, kernel=kernel, spikes=SpikeModel(rate_hz=rate_hz),
+                              noise=NoiseModel(noise_sd=noise_sd), seed=seed)
 
 
 def speed(n_frames: int, repeats: int, rounds: int, lines: list) -> None:
@@ -93,6 +104,41 @@ def speed(n_frames: int, repeats: int, rounds: int, lines: list) -> None:
                 lambda: infer_spikes(y, frame_rate), "<= 20x")
             row("infer_spikes, indicator given (noise, penalty estimated)", reference,
                 lambda: infer_spikes(y, frame_rate, indicator="GCaMP6f"), "-")
+    lines.append("")
+
+
+def spiking_sweep(n_frames: int, repeats: int, rounds: int, lines: list) -> None:
+    frame_rate = 30.0
+    shares = (0.005, 0.01, 0.02, 0.05)
+    lines.append(f"### Exact AR(2) solve against the share of frames with a spike ({n_frames:,} frames, 30 Hz, "
+                 f"single-spike SNR 4; medians of {rounds} rounds; ratio to one lfilter pass)\n")
+    lines.append("| kinetics | frames with a spike (asked / got) | frames with s > 0 (solution) | fixed baseline | "
+                 "fitted baseline | target |")
+    lines.append("|---|---:|---:|---:|---:|---|")
+    for indicator, target in (("GCaMP6f", "<= 10x (fixed)"), ("GCaMP6s", "-")):
+        kernel = Kernel.from_indicator(indicator)
+        g = kernel.ar_coefficients(frame_rate)
+        den = np.concatenate([[1.0], -g])
+        for share in shares:
+            rate_hz = -frame_rate * np.log1p(-share)
+            rec = simulate(n_frames / frame_rate, frame_rate, kernel, rate_hz, kernel.amplitude / 4.0, seed=7)
+            y = rec.dff[0]
+            got = np.unique(np.floor(rec.spike_times[0] * frame_rate)).size / y.size
+            lam = penalty_for_noise(y, g, kernel.amplitude / 4.0, baseline=0.0).penalty
+
+            def reference():
+                lfilter([1.0], den, y)
+
+            cells = []
+            for baseline in (0.0, "fit"):
+                result = deconvolve_ar(y, g, penalty=lam, baseline=baseline)  # (compiled code warmed up)
+                _, _, ratio = paired(reference, lambda: deconvolve_ar(y, g, penalty=lam, baseline=baseline),
+                                     rounds, repeats)
+                cells.append(f"{ratio:.1f}x")
+                if baseline == 0.0:
+                    support = int(np.count_nonzero(result.spikes))
+            lines.append(f"| {indicator}-like | {share:.1%} / {got:.1%} | {support:,} | {cells[0]} | {cells[1]} | "
+                         f"{target} |")
     lines.append("")
 
 
@@ -134,8 +180,8 @@ def accuracy(duration_s: float, seeds: int, lines: list) -> None:
                 for snr in snrs:
                     f1s, rs = [], []
                     for seed in range(seeds):
-                        rec = simulate_recording(1, duration_s, rate, kernel=kernel, rate_hz=0.5,
-                                                 noise_sd=kernel.amplitude / snr, seed=1000 * seed + int(rate) + snr)
+                        rec = simulate(duration_s, rate, kernel, 0.5, kernel.amplitude / snr,
+                                       seed=1000 * seed + int(rate) + snr)
                         kw = {"indicator": indicator} if mode == "indicator given" else {}
                         result = infer_spikes(rec.dff[0], rate, **kw)
                         score = score_spikes(result.spike_times, rec.spike_times[0], tolerance_s=2.0 / rate,
@@ -158,6 +204,7 @@ def main() -> None:
              f"Machine: {platform.processor() or platform.machine()}, Python {platform.python_version()}, "
              f"numpy {np.__version__}. Run: `python scripts/bench_infer.py{' --quick' if args.quick else ''}`.", ""]
     speed(20_000 if args.quick else 100_000, 3 if args.quick else 7, 3 if args.quick else 5, lines)
+    spiking_sweep(20_000 if args.quick else 100_000, 3 if args.quick else 7, 3 if args.quick else 5, lines)
     versus_convex(2_000 if args.quick else 10_000, lines)
     accuracy(60.0 if args.quick else 120.0, 1 if args.quick else 2, lines)
     text = "\n".join(lines)
