@@ -4,6 +4,8 @@
 arrays and returns a :class:`matplotlib.figure.Figure`; :func:`save_figure`
 writes it as a PNG. :class:`HtmlReport` gathers sections, text, figures and
 sortable tables into a self-contained folder (``index.html`` + ``figures/``).
+:mod:`calcium.report.session` lays out the session report, one function per
+section, from data it is handed (``calcium.pipeline`` reads the results file).
 """
 from .figures import (
     PALETTE,
