@@ -68,12 +68,8 @@ def pass_ar1(y, w, unit, response, lam, b, thr, scratch, expand):
     and ``scratch.spikes``; returns (number of pools, pool 0 pinned at 0).
     """
     T = y.shape[0]
-    g = response.g1
-    h = response.h
-    starts = scratch.starts
-    stack = scratch.stack
-    c = scratch.calcium
-    s = scratch.spikes
+    g, h = response.g1, response.h
+    starts, stack, c, s = scratch.starts, scratch.stack, scratch.calcium, scratch.spikes
     lam_mid = lam * (1.0 - g)
     # the newest pool (top) lives in registers; pools 0..n-1 below it in the stack
     wt = 1.0 if unit else w[0]
@@ -232,11 +228,8 @@ def pass_ar2_unit(y, response, lam, b, scratch, expand):
     per top pool, and the tests need no weight.
     """
     T = y.shape[0]
-    g1 = response.g1
-    g2 = response.g2
-    h = response.h
-    starts = scratch.starts
-    stack = scratch.stack
+    g1, g2, h = response.g1, response.g2, response.h
+    starts, stack = scratch.starts, scratch.stack
     amid = 1.0 - g1 - g2
     tA = 1.0
     tB = 0.0
@@ -313,11 +306,8 @@ def pass_ar2(y, w, unit, response, lam, b, thr, scratch, expand):
     (number of pools, pool 0 pinned at 0).
     """
     T = y.shape[0]
-    g1 = response.g1
-    g2 = response.g2
-    h = response.h
-    starts = scratch.starts
-    stack = scratch.stack
+    g1, g2, h = response.g1, response.g2, response.h
+    starts, stack = scratch.starts, scratch.stack
     wt = 1.0 if unit else w[0]
     tA = wt
     tB = 0.0

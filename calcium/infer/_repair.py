@@ -51,20 +51,11 @@ def check_pools(trace, response, lam, b, starts, n, free0, pools, limits, tol_g,
     spike on the support, ``on_support`` True; a negative gradient off it)
     go into ``violations`` in decreasing frame order; returns their number.
     """
-    y = trace.y
-    w = trace.w
-    unit = trace.unit
-    g1 = response.g1
-    g2 = response.g2
-    h = response.h
-    pv = pools.value
-    pp = pools.start_value
-    allowed = limits.allowed
-    use_allowed = limits.use_allowed
-    tol_s = limits.spike_tol
-    bad = violations.frames
-    bad_on = violations.on_support
-    bad_grad = violations.gradient
+    y, w, unit = trace.y, trace.w, trace.unit
+    g1, g2, h = response.g1, response.g2, response.h
+    pv, pp = pools.value, pools.start_value
+    allowed, use_allowed, tol_s = limits.allowed, limits.use_allowed, limits.spike_tol
+    bad, bad_on, bad_grad = violations.frames, violations.on_support, violations.gradient
     T = y.shape[0]
     z1 = 0.0
     z2 = 0.0
@@ -136,14 +127,9 @@ def check_optimality(trace, response, lam, b, c, on, limits, tol_g, s, grad, bad
 
     The violators go into ``bad`` in decreasing frame order; returns their number.
     """
-    y = trace.y
-    w = trace.w
-    unit = trace.unit
-    g1 = response.g1
-    g2 = response.g2
-    allowed = limits.allowed
-    use_allowed = limits.use_allowed
-    tol_s = limits.spike_tol
+    y, w, unit = trace.y, trace.w, trace.unit
+    g1, g2 = response.g1, response.g2
+    allowed, use_allowed, tol_s = limits.allowed, limits.use_allowed, limits.spike_tol
     T = y.shape[0]
     z1 = 0.0
     z2 = 0.0

@@ -67,15 +67,8 @@ def pool_sums(trace, response, starts, n, sums):
     sum_{k < L} h_k y'_{st+k} = z_st - h_L z_en - g2 h_{L-1} z_{en+1}, O(1) per
     pool.  With weights the sums run over the frames.
     """
-    y = trace.y
-    w = trace.w
-    bb = trace.level
-    zy = trace.filtered
-    tail = trace.tail
-    g1 = response.g1
-    g2 = response.g2
-    h = response.h
-    tab = response.tables
+    y, w, bb, zy, tail = trace.y, trace.w, trace.level, trace.filtered, trace.tail
+    g1, g2, h, tab = response.g1, response.g2, response.h, response.tables
     T = y.shape[0]
     amid = 1.0 - g1 - g2
     top = tab.shape[1] - 1
