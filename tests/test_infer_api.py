@@ -165,3 +165,13 @@ def test_bad_input_raises_value_errors():
         infer_spikes(y, 30.0, noise_sd=-0.1)
     with pytest.raises(ValueError, match="one value or one per ROI"):
         infer_spikes_many(np.zeros((2, 100)), 30.0, noise_sd=[0.1, 0.1, 0.1])
+
+
+def test_raw_fluorescence_is_refused_unless_the_user_insists():
+    # ΔF/F is 0 at rest by definition (Grienberger & Konnerth 2012); raw counts sit far above 1
+    rng = np.random.default_rng(2)
+    raw = 1000.0 + rng.normal(0.0, 5.0, 3000)
+    with pytest.raises(ValueError, match="raw fluorescence"):
+        infer_spikes(raw, 30.0)
+    assert infer_spikes(raw - 1000.0, 30.0, allow_raw=True).n_spikes >= 0
+    infer_spikes(raw, 30.0, allow_raw=True)  # (insisting: analysed)

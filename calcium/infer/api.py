@@ -22,7 +22,8 @@ import math
 import numpy as np
 from numba import njit
 
-from .._checks import MissingFrames, as_traces, check_frame_rate, check_int, check_positive, require_some_data
+from .._checks import (MissingFrames, as_traces, check_dff_like, check_frame_rate, check_int, check_positive,
+                       require_some_data)
 from ._driver import check_baseline, check_penalty, objective, prepare_weights, reused_workspace, solve
 from .counts import SpikeUnit, _spike_unit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
     quantal_size
@@ -137,7 +138,7 @@ def _nothing_found(y, frame_rate, missing, kernel, noise_sd, baseline_value, coe
 
 
 def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=None, penalty=None, baseline="fit",
-                 spike_size=None, order=2, threshold=0.5) -> SpikeInference:
+                 spike_size=None, order=2, threshold=0.5, allow_raw=False) -> SpikeInference:
     r"""Infer when and how many spikes occurred from one ΔF/F trace.
 
     Parameters
@@ -169,6 +170,10 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
     threshold : float, default 0.5
         Events smaller than this many spikes are dropped; larger ones are
         rounded to the nearest whole number.
+    allow_raw : bool, default False
+        A trace whose values look like raw fluorescence rather than ΔF/F
+        (:func:`calcium._checks.check_dff_like`: ninety per cent of it above
+        1, where ΔF/F sits near 0 at rest) is refused unless this is True.
 
     Returns
     -------
@@ -232,6 +237,9 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
         return _nothing_found(y, frame_rate, missing, kernel, noise_sd or 0.0, level,
                               kernel.ar_coefficients(frame_rate) if kernel is not None and
                               not kernel.has_slow_component else np.zeros(0))
+
+    if not allow_raw:  # (after the constant trace: a flat 0 is ΔF/F without events, not a 0/1 raster)
+        check_dff_like(y, "trace")
 
     # work in the kernel's linear domain
     y_lin = y

@@ -38,6 +38,7 @@ import numpy as np
 from numba import njit
 
 from .._checks import as_traces, check_frame_rate, check_int, check_positive
+from ..kernel import DECAY_RANGE_S
 from ._driver import PREVIOUS, Workspace, backward_filter, check_baseline, objective, prepare_weights, solve
 from .ar import ARDeconvolution, check_ar_coefficients
 
@@ -596,7 +597,9 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
         return rise_s, decay_s, (lam, b_search)
     b_cur = b_search
     _, _, tiny = work.tolerances(yc, w, unit, 0.0)
-    lo_decay, hi_decay = math.log(0.5 / frame_rate), math.log(max(yc.size, 20) / frame_rate)
+    # (within the decays a Kernel allows, calcium.kernel.DECAY_RANGE_S, as well as the trace's length)
+    lo_decay = math.log(max(0.5 / frame_rate, DECAY_RANGE_S[0]))
+    hi_decay = math.log(min(max(yc.size, 20) / frame_rate, DECAY_RANGE_S[1]))
     lo_rise = math.log(0.1 / frame_rate)
 
     def fit(theta, first):
