@@ -299,4 +299,6 @@ def _demo_stages(data: Path, out: Path, sc: dict, steps) -> Path:
                                            "uncalibrated counts: " + session.reasons[i] if session.reasons[i]
                                            else "") if x))
     rep.add_table(header, rows, caption="Click a column heading to sort.", flags=flags)
-    return rep.write(out)
+    page = rep.write(out)
+    step("report")  # (the ninth stage: the bar reaches its end)
+    return page
