@@ -95,6 +95,16 @@ class IndicatorKinetics:
         Other names accepted by :func:`get_indicator`.
     notes : str
         Anything else a user should know about the row.
+
+    Notes
+    -----
+    How each value of a row was obtained: the peak ΔF/F, the half-decay
+    time and the half-rise time (or time to peak) were recalled from the
+    figure or table named in ``source`` (``from_memory=True``; a value
+    looked up is said so in ``source``), and the rise and decay time
+    constants of the kernel are computed from the two times by
+    :func:`calcium.kernel.time_constants_from_half_times` (the exact
+    inversion of the difference of exponentials), never stored.
     """
 
     name: str
@@ -150,8 +160,11 @@ _TIME_TO_PEAK_NOTE = ("The rise figure is recalled as a single-spike rise time a
 
 _CHEN_2013 = "Chen et al. 2013, Nature 499:295, Fig. 3 and Supplementary Table 3; values " + _MEMORY_CAVEAT
 _DANA_2019 = "Dana et al. 2019, Nat Methods 16:649, Fig. 3 (in vivo single spikes); values " + _MEMORY_CAVEAT
-_ZHANG_2023 = ("Zhang et al. 2023, Nature 615:884, Fig. 3 (in vivo single spikes); values " + _MEMORY_CAVEAT
-               + "; the abstract (looked up) reports half-rise times of 2 ms for the family")
+_ZHANG_2023 = ("Zhang et al. 2023, Nature 615:884, Fig. 3 (in vivo single spikes); values " + _MEMORY_CAVEAT)
+_ZHANG_2023_RISE_NOTE = ("The half-rise here (recalled as the in-vivo single-spike value) is not the 2 ms of the "
+                         "paper's abstract (looked up): that figure is the family's fastest half-rise, measured in "
+                         "another condition; the two numbers are different measurements, not a typo of one "
+                         "another. Check the cited figure before quantitative use.")
 
 INDICATORS: tuple[IndicatorKinetics, ...] = (
     IndicatorKinetics(
@@ -198,19 +211,19 @@ INDICATORS: tuple[IndicatorKinetics, ...] = (
         name="jGCaMP8f", kind="protein", dff_single_spike=0.1, half_decay_s=0.0674, half_rise_s=0.0071,
         time_to_peak_s=None, conditions=_IN_VIVO_V1, temperature_c=37.0,
         source=_ZHANG_2023,
-        from_memory=True, aliases=("GCaMP8f",),
+        from_memory=True, aliases=("GCaMP8f",), notes=_ZHANG_2023_RISE_NOTE,
     ),
     IndicatorKinetics(
         name="jGCaMP8m", kind="protein", dff_single_spike=0.18, half_decay_s=0.1183, half_rise_s=0.0071,
         time_to_peak_s=None, conditions=_IN_VIVO_V1, temperature_c=37.0,
         source=_ZHANG_2023,
-        from_memory=True, aliases=("GCaMP8m",),
+        from_memory=True, aliases=("GCaMP8m",), notes=_ZHANG_2023_RISE_NOTE,
     ),
     IndicatorKinetics(
         name="jGCaMP8s", kind="protein", dff_single_spike=0.3, half_decay_s=0.3067, half_rise_s=0.0101,
         time_to_peak_s=None, conditions=_IN_VIVO_V1, temperature_c=37.0,
         source=_ZHANG_2023,
-        from_memory=True, aliases=("GCaMP8s",),
+        from_memory=True, aliases=("GCaMP8s",), notes=_ZHANG_2023_RISE_NOTE,
     ),
     IndicatorKinetics(
         name="OGB-1", kind="synthetic dye", dff_single_spike=0.07, half_decay_s=0.6, half_rise_s=0.005,

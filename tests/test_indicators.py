@@ -113,3 +113,13 @@ def test_deprecated_row_kernel_warns_and_gives_the_same_kernel(row):
         kernel = row.kernel()
     assert kernel == Kernel.from_indicator(row.name)
     assert kernel.exponential_terms() == Kernel.from_indicator(row.name).exponential_terms()
+
+
+def test_no_row_quotes_a_number_its_own_values_contradict_without_saying_why():
+    # (a note that cites another figure for the same quantity must say they are different measurements)
+    from calcium.indicators import INDICATORS
+
+    for row in INDICATORS:
+        text = row.source + " " + row.notes
+        if "abstract" in text and "half-rise" in text:
+            assert "different measurements" in row.notes, row.name
