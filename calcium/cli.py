@@ -770,10 +770,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("masks", help="ROI masks: label image (0 = background) or boolean stack (.tif/.npy)")
     p.add_argument("--frame-rate", type=_positive, help="frames per second (Hz), stored with the traces")
     p.add_argument("--neuropil-gap-px", type=_finite, default=2.0,
-                   help="gap between ROI and neuropil ring, pixels (default 2)")
+                   help="gap between ROI and neuropil ring, pixels (default 2, common practice: it keeps the "
+                        "ROI's own light spread by the point-spread function out of the ring)")
     _former(p, "--gap-px", "--neuropil-gap-px", "neuropil_gap_px", type=_finite)
     p.add_argument("--radius-px", type=_finite, default=15.0, help="outer radius of the neuropil ring (pixels)")
-    p.add_argument("--neuropil-factor", default="0.7", help="r in F - r*F_neuropil, or 'estimate' (per ROI)")
+    p.add_argument("--neuropil-factor", default="0.7",
+                   help="r in F - r*F_neuropil, or 'estimate' (per ROI from the data); default 0.7, the value of "
+                        "Chen et al. 2013 for layer 2/3 cells in vivo (from memory)")
     p.add_argument("--chunk-frames", type=int, default=500, help="frames read at a time")
     output(p, help_text="output traces (.h5 keeps ROI, neuropil and factors; .npy/.csv: corrected only)")
 

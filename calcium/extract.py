@@ -35,8 +35,9 @@ from .io.movie import as_movie
 __all__ = ["Extraction", "extract_traces", "neuropil_rings", "estimate_neuropil_factor",
            "DEFAULT_NEUROPIL_FACTOR"]
 
-# Neuropil contamination factor: common practice, no single source (values
-# between about 0.5 and 1 are used; 0.7 is the usual default).
+# Neuropil contamination factor r in F - r F_neuropil: 0.7, the value Chen et al. 2013 (Nature 499:295, Methods)
+# used for layer 2/3 cells imaged in vivo (from memory); values of about 0.5-1 are reported across preparations,
+# and estimate_neuropil_factor measures it per ROI from the data instead.
 DEFAULT_NEUROPIL_FACTOR = 0.7
 # Range an estimated factor is clipped to: below 0 is unphysical, above 1.5
 # would mean the ring is much dimmer than the light reaching the ROI.
