@@ -491,13 +491,13 @@ def test_flagged_rows_are_highlighted_with_their_note(tmp_path):
     assert '<td>low signal</td>' in text and ">note<" in text
 
 
-def test_table_numbers_show_4_significant_digits_and_sort_by_their_full_value(tmp_path):
+def test_table_numbers_show_3_significant_digits_and_sort_by_their_full_value(tmp_path):
     report = HtmlReport("numbers")
     report.add_table(["value"], [[1 / 3], [12345.678], [7], [None], [float("-inf")]])
     text = report.to_html()
     # Python's repr() round-trips a float exactly (Python docs, "Floating Point Arithmetic")
-    assert f'data-value="{1 / 3!r}">0.3333<' in text
-    assert 'data-value="12345.678">1.235e+04<' in text
+    assert f'data-value="{1 / 3!r}">0.333<' in text
+    assert 'data-value="12345.678">1.23e+04<' in text
     assert 'data-value="7">7<' in text
     assert 'data-value="">' in text  # None: empty, sorts last
     assert 'data-value="-Infinity">−∞<' in text
@@ -582,8 +582,8 @@ def test_browser_loads_every_image_and_sorts_numbers_numerically(tmp_path, brows
     assert seen["images-total"] == "3"
     assert seen["images-loaded"] == "3"
     # numbers by value (a text sort would put 10 before 9 and 100.5 before 9); empty (NaN) cells last
-    assert seen["ascending"] == "-2.5|0.001|9|10|100.5|∞|"
-    assert seen["descending"] == "∞|100.5|10|9|0.001|-2.5|"
+    assert seen["ascending"] == "-2.5|0.001|9|10|100|∞|"
+    assert seen["descending"] == "∞|100|10|9|0.001|-2.5|"
     assert seen["text"] == "a|b|c|d|e|f|ROI 1"  # text columns sort as text
 
 

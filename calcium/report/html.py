@@ -211,7 +211,7 @@ def _cell(value) -> tuple[str, str | None, bool]:
             return "", "", True
         if math.isinf(number):
             return ("∞" if number > 0 else "−∞"), ("Infinity" if number > 0 else "-Infinity"), True
-        return f"{number:.4g}", repr(number), True
+        return f"{number:.3g}", repr(number), True  # (3 significant digits: what a table reader can use)
     return str(value), None, False
 
 
@@ -370,7 +370,7 @@ class HtmlReport:
             Column headings.
         rows : iterable of sequences
             One sequence per row, as long as ``header``. Numbers are shown
-            with 4 significant digits and sorted by their full value; None
+            with 3 significant digits and sorted by their full value; None
             and NaN show as empty cells that sort last; ±inf as ±∞.
         sortable : bool
             Make the columns sortable by a click on their heading.
