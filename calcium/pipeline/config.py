@@ -429,7 +429,8 @@ class KernelFitConfig:
                             "considered, either sign, s.")
     n_bootstrap: int = _key(200, _Integer(ge=0, le=100000), "Bootstrap refits for the confidence intervals "
                             "(0 = none).")
-    confidence: float = _key(0.9, _Number(gt=0, lt=1), "Level of the bootstrap intervals.")
+    confidence: float = _key(0.9, _Number(gt=0, lt=1), "Level of the bootstrap intervals (0.9: common practice for "
+                                                          "percentile intervals, Efron & Tibshirani 1993).")
     seed: int = _key(0, _Integer(ge=0), "Seed of the bootstrap (fixed, so reruns give the same intervals).")
     min_isolated_spikes: int = _key(3, _Integer(ge=1), "Fewest isolated spikes a ROI needs for a fit.")
 
