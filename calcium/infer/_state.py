@@ -9,7 +9,8 @@ The kernels of :mod:`calcium.infer.ar` are spread over rooms by role:
 ``_repair``    the optimality check and repair: KKT check, block principal pivoting, the active-set fallback
 ``_driver``    the Python driver (:func:`solve`), the reusable workspace and the named interface the other
                modules of ``calcium.infer`` use (nothing else of these rooms is imported outside them)
-``_reference`` the plain-Python reference of the same algorithm, for the tests
+``_reference`` the plain-Python references: of the whole solver, and of every other compiled kernel of
+               ``calcium.infer`` (``name_reference``; tests/test_infer_references.py keeps the registry)
 
 Instead of long lists of positional arrays the kernels pass a few named tuples (numba compiles them to
 structures; a field is read as ``scratch.calcium``):

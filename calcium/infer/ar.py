@@ -37,7 +37,7 @@ This module holds the public entry points; the compiled kernels live in
 private rooms by role: the passes (``_passes``), the solve on a support
 (``_support``), the optimality check and repair (``_repair``), the driver
 and its workspace (``_driver``, the only one the other modules import), the
-plain-Python reference (``_reference``); ``_state`` describes the structures
+plain-Python references (``_reference``); ``_state`` describes the structures
 they share.
 
 References
