@@ -424,7 +424,8 @@ def count_roi(trace, frame_rate, calibration, roi, *, noise_sd=None, threshold=0
     shape = calibration.shape()
     unit = unit_result
     if unit is None:
-        unit = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold)
+        # (whether the data are ΔF/F at all is checked once for the session by the callers, which refuse or flag)
+        unit = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold, allow_raw=True)
     if np.isfinite(calibration.spike_size[roi]):
         size, low, high = (float(calibration.spike_size[roi]), float(calibration.spike_size_low[roi]),
                            float(calibration.spike_size_high[roi]))
@@ -553,7 +554,7 @@ def _roi_events(trace, frame_rate, shape, noise_sd=None, threshold=0.5):
     """Deconvolution with the unit-amplitude session kernel, and the quantal fit of its event sizes."""
     from .infer.api import infer_spikes
 
-    result = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold)
+    result = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold, allow_raw=True)
     return result, _quantal_fit(result, frame_rate, shape)
 
 

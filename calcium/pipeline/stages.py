@@ -687,8 +687,9 @@ def _infer_roi(trace: np.ndarray, noise_sd: float, i: int, params: StageParams, 
                                     threshold=params.inference.get("threshold", 0.5))
                 result = counted.result
             else:
+                # (raw-looking ΔF/F input is refused or flagged for the run, below and in infer_file)
                 result = infer_spikes(trace, params.frame_rate, noise_sd=noise_sd if noise_sd > 0 else None,
-                                      **params.inference)
+                                      allow_raw=True, **params.inference)
     except (ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError) as exc:
         flags[i] |= FLAG_FAILED
         reasons[i].append("inference failed: " + _first_line(exc))
