@@ -523,6 +523,61 @@ def _protect_run_inputs(config: RunConfig) -> None:
                           "ever replaces outputs)")
 
 
+def _execute(results_path: Path, *, datasets, bounds, run_hash: str, attrs: dict, parameters: dict, flags,
+             overwrite: bool, progress, prepare, backend: str, workers, scheduler, parts: Path, label: str,
+             after_chunks=None):
+    """The execution core of both doors (:func:`run_pipeline`, :func:`infer_file`).
+
+    Opens the results store (or resumes it), and when chunks are left: ``prepare(store)`` returns the trace
+    source and the stage parameters (extraction, rhythms, calibration: once per run), then the chunks are
+    computed; ``after_chunks(store)`` runs the one-off steps after them; the store is marked complete. Ctrl-C
+    keeps the chunks done so far and says how to continue. Returns (chunks resumed, backend, workers, ROIs
+    computed).
+    """
+    store = ResultStore.open(results_path, datasets=datasets, chunk_bounds=bounds, run_hash=run_hash, attrs=attrs,
+                             parameters=parameters, flags=flags, overwrite=overwrite)
+    chunks_resumed = int(store.done.sum())
+    if store.resumed:
+        _say(progress, f"resuming {results_path}: {chunks_resumed} of {store.n_chunks} chunks already done")
+    computed, used_backend, used_workers = 0, backend, 1
+    try:
+        todo = [c for c in range(store.n_chunks) if not store.done[c]]
+        if todo:
+            source, params = prepare(store)
+            used_backend, used_workers, computed = _run_chunks(source, params, store, todo, backend=backend,
+                                                               workers=workers, scheduler=scheduler,
+                                                               progress=progress, parts=parts, label=label)
+        if after_chunks is not None:
+            after_chunks(store)
+        if not store.complete:
+            store.mark_complete()
+    except KeyboardInterrupt:
+        store.close()  # (commits the chunks finished so far)
+        _say(True, f"\ninterrupted: {int(store.done.sum())} of {store.n_chunks} chunks are saved in "
+                   f"{results_path}; run the same command again to continue")
+        raise
+    finally:
+        store.close()
+    return chunks_resumed, used_backend, used_workers, computed
+
+
+def _summary(results_path: Path, spikes_path: Path, *, started: float, folder: Path, n_frames: int,
+             frame_rate: float, chunks_total: int, executed, report_path=None, nwb_path=None) -> RunSummary:
+    """The RunSummary of a finished results file (both doors)."""
+    chunks_resumed, backend, workers, computed = executed
+    with open_results(results_path) as results:
+        quality = results.read("quality_flags")
+    elapsed = time.perf_counter() - started
+    return RunSummary(
+        output_folder=folder, results_path=results_path, spikes_path=spikes_path, report_path=report_path,
+        nwb_path=nwb_path, n_rois=int(quality.size), n_frames=n_frames, frame_rate=frame_rate,
+        n_flagged=int(np.count_nonzero(quality)), n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)),
+        chunks_total=chunks_total, chunks_resumed=chunks_resumed, elapsed_s=elapsed,
+        frames_per_second=computed * n_frames / elapsed if elapsed > 0 else float("nan"),
+        backend=backend, workers=workers, n_uncalibrated=int(np.count_nonzero(quality & stages.FLAG_UNCALIBRATED)),
+        calibration=_stored_calibration_summary(results_path), rhythms=_stored_rhythms_summary(results_path))
+
+
 def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = True) -> RunSummary:
     """Analyse a whole session as configured: ΔF/F, filter, inference, quality, fits, report.
 
@@ -633,42 +688,24 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
         "flag_bits_json": json.dumps({str(bit): name for bit, name in stages.FLAG_NAMES.items()}),
     }
     flags = (["extraction"] if prepared.kind == "movie" else []) + (["electrical"] if electrical_rois else [])
-    store = ResultStore.open(results_path, datasets=_layout(config, prepared, electrical_rois),
-                             chunk_bounds=bounds, run_hash=run_hash, attrs=attrs, parameters=parameters,
-                             flags=flags, overwrite=overwrite)
-    chunks_resumed = int(store.done.sum())
-    if store.resumed:
-        _say(progress, f"resuming {results_path}: {chunks_resumed} of {store.n_chunks} chunks already done")
-    computed_rois = 0
-    backend, workers = config.execution.backend, 1
-    try:
-        todo = [c for c in range(store.n_chunks) if not store.done[c]]
-        if todo:
-            if prepared.kind == "movie":
-                prepared.source = _extraction(config, prepared, store, work, run_hash, progress)
-            params = _rhythm_params(config, prepared, params, store, progress)
-            params = _calibrated_params(config, prepared, params, store, progress)
-            backend, workers, computed_rois = _run_chunks(
-                prepared.source, params, store, todo, backend=config.execution.backend,
-                workers=config.execution.workers, scheduler=config.execution.scheduler, progress=progress,
-                parts=parts)
+
+    def prepare(store):
+        if prepared.kind == "movie":
+            prepared.source = _extraction(config, prepared, store, work, run_hash, progress)
+        stage_params = _rhythm_params(config, prepared, params, store, progress)
+        return prepared.source, _calibrated_params(config, prepared, stage_params, store, progress)
+
+    def after_chunks(store):
         if electrical_rois and not store.flag("electrical"):
             stages.electrical_step(store, prepared.electrical, prepared.frame_rate, prepared.n_frames,
                                    fit_options=_fit_options(config), scoring=config.scoring,
                                    indicator=config.inference.indicator, progress=progress)
-        if not store.complete:
-            store.mark_complete()
-    except KeyboardInterrupt:
-        store.close()  # (commits the chunks finished so far)
-        done = int(store.done.sum())
-        _say(True, f"\ninterrupted: {done} of {store.n_chunks} chunks are saved in {results_path}; "
-                   f"run the same command again to continue")
-        raise
-    finally:
-        store.close()
 
-    with open_results(results_path) as results:
-        quality = results.read("quality_flags")
+    executed = _execute(results_path, datasets=_layout(config, prepared, electrical_rois), bounds=bounds,
+                        run_hash=run_hash, attrs=attrs, parameters=parameters, flags=flags, overwrite=overwrite,
+                        progress=progress, prepare=prepare, backend=config.execution.backend,
+                        workers=config.execution.workers, scheduler=config.execution.scheduler, parts=parts,
+                        label="ΔF/F + inference", after_chunks=after_chunks)
     spikes_path = write_spike_table_from_results(results_path, folder / SPIKES_NAME, parts=parts)
     shutil.rmtree(work, ignore_errors=True)  # (needed no more: a failing report or NWB export leaves none behind)
     report_path = None
@@ -685,16 +722,9 @@ def run_pipeline(config_or_path, *, overwrite: bool = False, progress: bool = Tr
                               session_description=config.nwb.session_description,
                               session_start=config.nwb.session_start, experimenter=config.nwb.experimenter,
                               location=config.nwb.location, indicator=config.inference.indicator)
-    elapsed = time.perf_counter() - started
-    summary = RunSummary(
-        output_folder=folder, results_path=results_path, spikes_path=spikes_path, report_path=report_path,
-        nwb_path=nwb_path, n_rois=prepared.n_rois, n_frames=prepared.n_frames, frame_rate=prepared.frame_rate,
-        n_flagged=int(np.count_nonzero(quality)), n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)),
-        chunks_total=int(bounds.size - 1), chunks_resumed=chunks_resumed, elapsed_s=elapsed,
-        frames_per_second=computed_rois * prepared.n_frames / elapsed if elapsed > 0 else float("nan"),
-        backend=backend, workers=workers, n_uncalibrated=int(np.count_nonzero(quality & stages.FLAG_UNCALIBRATED)),
-        calibration=_stored_calibration_summary(results_path), rhythms=_stored_rhythms_summary(results_path))
-    return summary
+    return _summary(results_path, spikes_path, started=started, folder=folder, n_frames=prepared.n_frames,
+                    frame_rate=prepared.frame_rate, chunks_total=int(bounds.size - 1), executed=executed,
+                    report_path=report_path, nwb_path=nwb_path)
 
 
 def _extraction(config: RunConfig, prepared: _Inputs, store: ResultStore, work: Path, run_hash: str,
@@ -953,49 +983,24 @@ def infer_file(path, out, *, frame_rate=None, kernel=None, indicator=None, datas
              "flag_bits_json": json.dumps({str(bit): name for bit, name in stages.FLAG_NAMES.items()})}
     run_hash = parameters_digest(parameters)
     parts = work / f"spikes-{run_hash[:16]}"
-    store = ResultStore.open(out, datasets=stages.result_datasets(source.n_rois, source.n_frames, filtered=False,
-                                                                  with_dff=False) + [stages.CALIBRATION_DATASET],
-                             chunk_bounds=bounds, run_hash=run_hash, attrs=attrs,
-                             parameters=parameters, overwrite=overwrite)
-    chunks_resumed = int(store.done.sum())
-    computed, used_backend, used_workers = 0, backend, 1
-    try:
-        todo = [c for c in range(store.n_chunks) if not store.done[c]]
-        if todo:
-            from ..kernel import Kernel
+    def prepare(store):
+        from ..kernel import Kernel
 
-            params = _with_calibration(source, params, store, how=how, electrical=None, indicator=indicator,
-                                       kernel=kernel if kernel is not None else (
-                                           Kernel.from_indicator(indicator) if indicator is not None else None),
-                                       size_given=size_given, calibration_file=calibration_file,
-                                       max_rois=max_calibration_rois, fit_options=None, progress=progress,
-                                       key="calibration")
-            used_backend, used_workers, computed = _run_chunks(source, params, store, todo, backend=backend,
-                                                               workers=workers, scheduler=None, progress=progress,
-                                                               parts=parts, label="inference")
-        if not store.complete:
-            store.mark_complete()
-    except KeyboardInterrupt:
-        store.close()  # (commits the chunks finished so far)
-        _say(True, f"\ninterrupted: {int(store.done.sum())} of {store.n_chunks} chunks are saved in {out}; "
-                   f"run the same command again to continue")
-        raise
-    finally:
-        store.close()
+        fixed = kernel if kernel is not None else Kernel.from_indicator(indicator) if indicator is not None else None
+        return source, _with_calibration(source, params, store, how=how, electrical=None, indicator=indicator,
+                                         kernel=fixed, size_given=size_given, calibration_file=calibration_file,
+                                         max_rois=max_calibration_rois, fit_options=None, progress=progress,
+                                         key="calibration")
+
+    executed = _execute(out, datasets=stages.result_datasets(source.n_rois, source.n_frames, filtered=False,
+                                                             with_dff=False) + [stages.CALIBRATION_DATASET],
+                        bounds=bounds, run_hash=run_hash, attrs=attrs, parameters=parameters, flags=(),
+                        overwrite=overwrite, progress=progress, prepare=prepare, backend=backend, workers=workers,
+                        scheduler=None, parts=parts, label="inference")
     write_spike_table_from_results(out, spikes_path, parts=parts)
-    with open_results(out) as results:
-        quality = results.read("quality_flags")
     shutil.rmtree(work, ignore_errors=True)
-    elapsed = time.perf_counter() - started
-    return RunSummary(
-        output_folder=folder, results_path=out, spikes_path=spikes_path, report_path=None, nwb_path=None,
-        n_rois=source.n_rois, n_frames=source.n_frames, frame_rate=rate, n_flagged=int(np.count_nonzero(quality)),
-        n_failed=int(np.count_nonzero(quality & stages.FLAG_FAILED)), chunks_total=int(bounds.size - 1),
-        chunks_resumed=chunks_resumed, elapsed_s=elapsed,
-        frames_per_second=computed * source.n_frames / elapsed if elapsed > 0 else float("nan"),
-        backend=used_backend, workers=used_workers, n_uncalibrated=int(np.count_nonzero(quality &
-                                                                                        stages.FLAG_UNCALIBRATED)),
-        calibration=_stored_calibration_summary(out))
+    return _summary(out, spikes_path, started=started, folder=folder, n_frames=source.n_frames, frame_rate=rate,
+                    chunks_total=int(bounds.size - 1), executed=executed)
 
 
 # ---------------------------------------------------------------------------
