@@ -25,9 +25,9 @@ from numba import njit
 from .._checks import (MissingFrames, as_traces, check_dff_like, check_frame_rate, check_int, check_positive,
                        require_some_data)
 from ._driver import check_baseline, check_penalty, objective, prepare_weights, reused_workspace, solve
-from .counts import SpikeUnit, _spike_unit, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
+from .counts import SpikeUnit, spike_unit_of, event_noise_size, event_sizes, events_to_spikes, merge_gap_frames, \
     quantal_size
-from .estimate import MAX_KINETICS_FRAMES, _estimate_kinetics, _search_penalty, estimate_noise_sd, signal_detected
+from .estimate import MAX_KINETICS_FRAMES, estimate_kinetics, search_penalty, estimate_noise_sd, signal_detected
 
 __all__ = ["SpikeInference", "infer_spikes", "infer_spikes_many", "recount"]
 
@@ -273,7 +273,7 @@ def infer_spikes(trace, frame_rate, *, kernel=None, indicator=None, noise_sd=Non
             # nothing but noise: no kinetics to estimate and no spike to find
             level = float(np.mean(observed)) if isinstance(baseline, str) else baseline
             return _nothing_found(y, frame_rate, missing, None, noise_sd, level, np.zeros(0))
-        g, (lam_hint, b_hint) = _estimate_kinetics(y_lin, frame_rate, order, noise_sd, None, True, None,
+        g, (lam_hint, b_hint) = estimate_kinetics(y_lin, frame_rate, order, noise_sd, None, True, None,
                                                    MAX_KINETICS_FRAMES)
     # penalised deconvolution, then the refit; one scratch space for both (the trace's filtered copy and data
     # scale are shared), reused by the next call
@@ -288,7 +288,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
     # (the arrays of a solve are the work's own until its next solve: used before that)
     if penalty is None:
         # (the penalty and baseline found on the block where the kinetics were estimated are good first guesses)
-        lam, c, s, b, its, conv, _, _, _ = _search_penalty(yc, w, unit_w, g, noise_sd, baseline, n_obs,
+        lam, c, s, b, its, conv, _, _, _ = search_penalty(yc, w, unit_w, g, noise_sd, baseline, n_obs,
                                                            start=lam_hint, b0=b_hint, work=work, copy=False)
     else:
         lam = penalty
@@ -313,7 +313,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
 
     if kernel is None:
         shape = Kernel.from_ar_coefficients(g, frame_rate, amplitude=1.0)
-        per_amplitude = _spike_unit(shape, frame_rate, g)
+        per_amplitude = spike_unit_of(shape, frame_rate, g)
         if spike_size is not None:
             kernel = shape.scaled(spike_size)
             unit = SpikeUnit(per_amplitude.size * spike_size, per_amplitude.lag_frames, per_amplitude.spread)
@@ -329,7 +329,7 @@ def _deconvolve_and_count(y, yc, w, unit_w, n_obs, frame_rate, g, kernel, noise_
             kernel = shape.scaled(amplitude)
             unit = SpikeUnit(q, per_amplitude.lag_frames, per_amplitude.spread)
     else:
-        unit = _spike_unit(kernel, frame_rate, g)
+        unit = spike_unit_of(kernel, frame_rate, g)
 
     activity = s_fit / unit.size
     # an event must also stand out of the noise of its own size (z >= 2.5)
@@ -534,7 +534,7 @@ def recount(result: SpikeInference, frame_rate, spike_size, *, threshold=0.5) ->
     factor = result.kernel.amplitude / spike_size
     kernel = result.kernel.scaled(spike_size)
     g = result.coefficients
-    unit = _spike_unit(kernel, frame_rate, g)
+    unit = spike_unit_of(kernel, frame_rate, g)
     activity = result.activity * factor
     size_noise = event_noise_size(g, result.noise_sd, activity.size) / unit.size if result.noise_sd > 0 else 0.0
     lag = int(round(unit.lag_frames))

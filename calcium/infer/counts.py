@@ -87,10 +87,10 @@ def spike_unit(kernel, frame_rate, coefficients) -> SpikeUnit:
     -------
     SpikeUnit
     """
-    return _spike_unit(kernel, check_frame_rate(frame_rate), check_ar_coefficients(coefficients))
+    return spike_unit_of(kernel, check_frame_rate(frame_rate), check_ar_coefficients(coefficients))
 
 
-def _spike_unit(kernel, frame_rate: float, g: np.ndarray) -> SpikeUnit:
+def spike_unit_of(kernel, frame_rate: float, g: np.ndarray) -> SpikeUnit:
     """spike_unit on checked arguments."""
     J = 2
     n = J + _EVENT_FRAMES + 2
@@ -232,16 +232,16 @@ def activity_events(activity, *, merge_gap=0):
     most ``merge_gap`` frames without activity are one event (the
     deconvolution can split one spike's activity over nearby frames).
     """
-    starts, stops, _ = _events(activity, merge_gap)
+    starts, stops, _ = event_table(activity, merge_gap)
     return starts, stops
 
 
 def event_sizes(activity, *, merge_gap=0) -> np.ndarray:
     """Total activity of each event (see :func:`activity_events`)."""
-    return _events(activity, merge_gap)[2]
+    return event_table(activity, merge_gap)[2]
 
 
-def _events(activity, merge_gap):
+def event_table(activity, merge_gap):
     activity = np.ascontiguousarray(activity, dtype=np.float64)
     size = np.count_nonzero(activity) + 1  # at least one frame with activity per event
     starts = np.empty(size, np.int64)

@@ -393,7 +393,7 @@ class _PenaltyEngine:
         return self._level
 
 
-def _search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESIDUAL, work=None, start=None,
+def search_penalty(y, w, unit, g, noise_sd, baseline, n_obs, *, rtol=_RTOL_RESIDUAL, work=None, start=None,
                     b0=None, copy=True):
     """Noise-matching penalty on prepared inputs; returns (lam, c, s, b, iterations, converged, rss, target, solves).
 
@@ -514,7 +514,7 @@ def penalty_for_noise(y, coefficients, noise_sd, *, baseline="fit", weights=None
     baseline = check_baseline(baseline)
     rtol = check_positive(rtol, "rtol")
     y, w, unit, n_obs = prepare_weights(y, weights)
-    lam, c, s, b, its, conv, rss, target, solves = _search_penalty(y, w, unit, g, sigma, baseline, n_obs, rtol=rtol)
+    lam, c, s, b, its, conv, rss, target, solves = search_penalty(y, w, unit, g, sigma, baseline, n_obs, rtol=rtol)
     objective_value = float(objective(y, w, unit, lam, b, c, s))
     result = ARDeconvolution(calcium=c, spikes=s, baseline=float(b), penalty=float(lam), objective=objective_value,
                              iterations=int(its), converged=bool(conv), coefficients=g.copy())
@@ -529,9 +529,9 @@ _KINETICS_XTOL = 1e-2  # relative change of a time constant at which the refinem
 
 def _event_support(s: np.ndarray, min_size: float) -> np.ndarray:
     """Frames of the events (runs of adjacent non-zero spikes) whose total is >= min_size."""
-    from .counts import _events
+    from .counts import event_table
 
-    starts, stops, totals = _events(s, 0)
+    starts, stops, totals = event_table(s, 0)
     marks = np.zeros(s.size + 1, dtype=np.int64)
     big = totals >= min_size
     # (runs of non-zero frames are separated by a zero frame: no start is also a stop)
@@ -590,7 +590,7 @@ def _refine_kinetics(yc, w, unit, n_obs, frame_rate, order, rise_s, decay_s, noi
     """
     work = Workspace(yc.size)
     g = _coefficients_from_times(rise_s, decay_s, frame_rate, order)
-    lam, c, s, b_search, *_ = _search_penalty(yc, w, unit, g, noise_sd, "fit", n_obs, work=work, copy=False)
+    lam, c, s, b_search, *_ = search_penalty(yc, w, unit, g, noise_sd, "fit", n_obs, work=work, copy=False)
     support = _event_support(s, noise_sd)
     support[0] = s[0] > 0
     if np.count_nonzero(support) < 2:
@@ -737,10 +737,10 @@ def estimate_ar_coefficients(y, frame_rate, *, order=2, noise_sd=None, weights=N
         noise_sd = check_positive(noise_sd, "noise_sd")
     if max_lag is not None:
         max_lag = check_int(max_lag, "max_lag", minimum=order + 1)
-    return _estimate_kinetics(y, frame_rate, order, noise_sd, weights, refine, max_lag, max_frames)[0]
+    return estimate_kinetics(y, frame_rate, order, noise_sd, weights, refine, max_lag, max_frames)[0]
 
 
-def _estimate_kinetics(y, frame_rate, order, noise_sd, weights, refine, max_lag, max_frames):
+def estimate_kinetics(y, frame_rate, order, noise_sd, weights, refine, max_lag, max_frames):
     """estimate_ar_coefficients on validated arguments; returns (coefficients, (the block's noise-matched penalty
     and baseline, or None: starting points for the whole trace))."""
     block = _central_block(y.size, max_frames)
