@@ -448,23 +448,34 @@ def _convex_unit(kernel, frame_rate) -> SpikeUnit:
     return SpikeUnit(float(sizes.mean()), float(np.mean(lags)), float(sizes.std() / sizes.mean()))
 
 
-def infer_spikes_many(traces, frame_rate, *, progress=False, **options) -> list:
-    """:func:`infer_spikes` for each row of ``traces`` (rois, frames).
+def infer_spikes_many(traces, frame_rate, *, kernel=None, indicator=None, noise_sd=None, penalty=None,
+                      baseline="fit", spike_size=None, order=2, threshold=0.5, allow_raw=False,
+                      progress=False) -> list:
+    """:func:`infer_spikes` for each row of ``traces`` (rois, frames), each ROI on its own.
+
+    Each ROI is counted with its own guessed single-spike size unless
+    ``kernel``, ``indicator`` with ``spike_size``, or ``spike_size`` give it:
+    for the counts of a session, :func:`calcium.infer_session` calibrates
+    the ROIs together and flags the counts it cannot trust.
 
     Parameters
     ----------
     traces : array_like, shape (rois, frames) or (frames,)
     frame_rate : float
+    kernel, indicator, baseline, order, threshold, allow_raw
+        As in :func:`infer_spikes`, the same for every ROI.
+    noise_sd, penalty, spike_size : float or array_like of shape (rois,), optional
+        As in :func:`infer_spikes`: one value for every ROI, or one per ROI.
     progress : bool, default False
         Show a progress bar (tqdm).
-    **options
-        Keyword arguments of :func:`infer_spikes`; ``noise_sd``,
-        ``penalty`` and ``spike_size`` may also be one value per ROI.
 
     Returns
     -------
     list of SpikeInference
+        One per ROI, in order.
     """
+    options = dict(kernel=kernel, indicator=indicator, noise_sd=noise_sd, penalty=penalty, baseline=baseline,
+                   spike_size=spike_size, order=order, threshold=threshold, allow_raw=allow_raw)
     x = as_traces(traces, "traces")
     frame_rate = check_frame_rate(frame_rate)
     rows = x.reshape(-1, x.shape[-1])
