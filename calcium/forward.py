@@ -44,8 +44,8 @@ import numpy as np
 from numba import njit
 from scipy.signal import lfilter
 
-from ._checks import (check_choice, check_frame_rate, check_int, check_memory, check_nonnegative, check_positive,
-                      json_value)
+from ._checks import (_UNSET, check_choice, check_frame_rate, check_int, check_memory, check_nonnegative,
+                      check_positive, json_value, renamed_argument)
 from .kernel import Kernel
 
 __all__ = ["predict_fluorescence", "simulate_recording", "SimulatedRecording", "SpikeModel", "BaselineModel",
@@ -800,7 +800,7 @@ class SimulatedRecording:
 
 
 def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator=None, spikes=None, baseline=None,
-                       noise=None, scan_offsets=0.0, exposure_s=None, seed=0,
+                       noise=None, scan_offset_s=_UNSET, exposure_s=None, seed=0, scan_offsets=_UNSET,
                        **former_keywords) -> SimulatedRecording:
     """Simulate fluorescence traces of many ROIs with known spike times.
 
@@ -827,9 +827,11 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     noise : NoiseModel, optional
         Shot noise or Gaussian ΔF/F noise, and read noise; default
         ``NoiseModel()``: none.
-    scan_offsets : float or array_like (n_rois,), default 0.0
+    scan_offset_s : float or array_like (n_rois,), default 0.0
         Sample time of frame k for each ROI is ``k / frame_rate + offset``,
-        with ``0 <= offset < 1 / frame_rate`` (a delay within the frame).
+        with ``0 <= offset < 1 / frame_rate`` (a delay within the frame),
+        as :func:`predict_fluorescence` names it. ``scan_offsets`` is its
+        former name, accepted for one release (with a DeprecationWarning).
     exposure_s : float, optional
         Exposure of each frame (see :func:`predict_fluorescence`).
     seed : int, default 0
@@ -884,11 +886,13 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     spikes = _check_model(models["spikes"], "spikes", SpikeModel)
     baseline = _check_model(models["baseline"], "baseline", BaselineModel)
     noise = _check_model(models["noise"], "noise", NoiseModel)
+    scan_offset_s = renamed_argument("scan_offsets", scan_offsets, "scan_offset_s", scan_offset_s)
+    scan_offset_s = 0.0 if scan_offset_s is _UNSET else scan_offset_s
     params = {"n_rois": n_rois, "duration_s": duration_s, "frame_rate": frame_rate, "indicator": indicator}
     for model in (spikes, baseline, noise):
         params.update({field.name: getattr(model, field.name) for field in dataclasses.fields(model)})
     params.update(former_keywords)  # (a deprecated keyword is recorded as given, as it was before the objects)
-    params.update(scan_offsets=scan_offsets, exposure_s=exposure_s, seed=seed)
+    params.update(scan_offset_s=scan_offset_s, exposure_s=exposure_s, seed=seed)
     params = {key: json_value(list(value) if isinstance(value, tuple) else value) for key, value in params.items()}
 
     n_rois = check_int(n_rois, "n_rois", minimum=1)
@@ -905,7 +909,7 @@ def simulate_recording(n_rois, duration_s, frame_rate, *, kernel=None, indicator
     kernel = _check_kernel(kernel)
     rates = _for_each_roi(spikes.rate_hz, "spikes.rate_hz", n_rois)
     f0_start = _for_each_roi(baseline.f0, "baseline.f0", n_rois)
-    offsets = _per_roi(scan_offsets, "scan_offsets", n_rois,
+    offsets = _per_roi(scan_offset_s, "scan_offset_s", n_rois,
                        lambda value, name: _check_scan_offset(value, frame_rate, name))
     exposure_s = _check_exposure(exposure_s, frame_rate)
     seed = check_int(seed, "seed", minimum=0)

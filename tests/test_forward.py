@@ -201,8 +201,8 @@ def test_a_scan_offset_of_a_frame_or_more_is_refused(offset):
     with pytest.raises(ValueError, match=rf"scan_offset_s={offset!r} s is not shorter than one frame interval "
                                          r"\(1/frame_rate = 0.1 s\).*shift the spike times instead"):
         predict_fluorescence([0.5], Kernel(0.02, 0.3), 10.0, 20, scan_offset_s=offset)
-    with pytest.raises(ValueError, match=r"scan_offsets\[1\]=.* s is not shorter than one frame interval"):
-        simulate_recording(2, 5.0, 10.0, scan_offsets=[0.0, offset])
+    with pytest.raises(ValueError, match=r"scan_offset_s\[1\]=.* s is not shorter than one frame interval"):
+        simulate_recording(2, 5.0, 10.0, scan_offset_s=[0.0, offset])
 
 
 def test_summed_response_keeps_spikes_before_the_first_frame():
@@ -222,7 +222,7 @@ def test_no_spikes_give_a_flat_zero_trace():
 def test_simulated_recording_has_the_documented_fields_and_is_reproducible():
     kwargs = dict(indicator="GCaMP6f", spikes=SpikeModel(rate_hz=2.0),
                   noise=NoiseModel(photons_per_frame=50.0, read_noise_sd=0.5),
-                  baseline=BaselineModel(bleach_fraction=0.3, drift_sd=0.05), scan_offsets=np.linspace(0, 0.03, 5),
+                  baseline=BaselineModel(bleach_fraction=0.3, drift_sd=0.05), scan_offset_s=np.linspace(0, 0.03, 5),
                   seed=11)
     a = simulate_recording(5, 30.0, 30.0, **kwargs)
     b = simulate_recording(5, 30.0, 30.0, **kwargs)
@@ -237,7 +237,7 @@ def test_simulated_recording_has_the_documented_fields_and_is_reproducible():
     for x, y in zip(a.spike_times, d.spike_times):
         np.testing.assert_array_equal(x, y)
     # ROI i does not depend on how many ROIs are simulated
-    e = simulate_recording(2, 30.0, 30.0, **{**kwargs, "scan_offsets": kwargs["scan_offsets"][:2]})
+    e = simulate_recording(2, 30.0, 30.0, **{**kwargs, "scan_offset_s": kwargs["scan_offset_s"][:2]})
     np.testing.assert_array_equal(e.raw, a.raw[:2])
 
 
@@ -249,7 +249,7 @@ def test_params_record_every_argument_and_every_field_of_the_parameter_objects_a
         if name in objects:
             for field in dataclasses.fields(objects[name]):
                 assert field.name in rec.params
-        elif parameter.kind is not parameter.VAR_KEYWORD:
+        elif parameter.kind is not parameter.VAR_KEYWORD and name != "scan_offsets":  # (its former name)
             assert name in rec.params
     assert rec.params["rate_hz"] == [1.0, 2.0] and rec.params["noise_sd"] == 0.1 and rec.params["n_frames"] == 100
     assert rec.params["spike_model"] == "poisson" and rec.params["f0"] == 100.0
@@ -259,7 +259,7 @@ def test_params_record_every_argument_and_every_field_of_the_parameter_objects_a
 def test_clean_dff_is_the_forward_model_of_the_returned_spikes():
     offsets = np.array([0.0, 0.01, 0.02])
     kernel = Kernel(0.03, 0.3, 0.2, dff_max=3.0, hill_n=2.0, hill_k=2.0)
-    rec = simulate_recording(3, 20.0, 30.0, kernel=kernel, spikes=SpikeModel(rate_hz=3.0), scan_offsets=offsets,
+    rec = simulate_recording(3, 20.0, 30.0, kernel=kernel, spikes=SpikeModel(rate_hz=3.0), scan_offset_s=offsets,
                              exposure_s=0.02, seed=5)
     for roi in range(3):
         expected = predict_fluorescence(rec.spike_times[roi], kernel, 30.0, 600, scan_offset_s=offsets[roi],
@@ -530,3 +530,10 @@ def test_save_writes_traces_spikes_and_parameters(tmp_path):
         np.testing.assert_array_equal(spikes[roi], rec.spike_times[roi])
     params = json.loads((folder / "parameters.json").read_text())
     assert params["seed"] == 21 and params["n_frames"] == 200
+
+
+def test_the_former_name_of_the_scan_offset_still_works_with_a_deprecation_warning():
+    with pytest.warns(DeprecationWarning, match="scan_offset_s"):
+        old = simulate_recording(2, 5.0, 10.0, scan_offsets=[0.0, 0.02], seed=1)
+    new = simulate_recording(2, 5.0, 10.0, scan_offset_s=[0.0, 0.02], seed=1)
+    assert np.array_equal(old.dff, new.dff)
