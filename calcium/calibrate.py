@@ -550,12 +550,12 @@ def _paired_kinetics(rows, frame_rate, electrical, fit_options, progress):
 # ---------------------------------------------------------------------------
 # sizes
 # ---------------------------------------------------------------------------
-def _roi_events(trace, frame_rate, shape, noise_sd=None, threshold=0.5):
-    """Deconvolution with the unit-amplitude session kernel, and the quantal fit of its event sizes."""
+def _unit_deconvolution(trace, frame_rate, shape):
+    """The trace deconvolved with the unit-amplitude session kernel (whether the session is ΔF/F at all was
+    checked once by the caller)."""
     from .infer.api import infer_spikes
 
-    result = infer_spikes(trace, frame_rate, kernel=shape, noise_sd=noise_sd, threshold=threshold, allow_raw=True)
-    return result, _quantal_fit(result, frame_rate, shape)
+    return infer_spikes(trace, frame_rate, kernel=shape, allow_raw=True)
 
 
 def _quantal_fit(result, frame_rate, shape, prior=(math.nan, math.nan)):
@@ -844,11 +844,13 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
     fits, unit_results = [], []
     for i in _bar(range(n), progress, "spike sizes"):
         try:
-            result, fit = _roi_events(rows[i], frame_rate, shape)
+            result = _unit_deconvolution(rows[i], frame_rate, shape)
         except ValueError:
-            result, fit = None, None
+            result = None
         unit_results.append(result)
-        fits.append(None if i in paired else fit)
+        # (the fits over the whole range of sizes serve only to find the prior: not needed when it is fixed)
+        needed = result is not None and i not in paired and prior_fixed is None
+        fits.append(_quantal_fit(result, frame_rate, shape) if needed else None)
     prior = _empirical_bayes(fits, indicator_size, fixed=prior_fixed)
     size = np.full(n, math.nan)
     low = np.full(n, math.nan)
@@ -860,9 +862,9 @@ def _calibrate(rows, frame_rate, electrical_spikes, indicator, kernel, fit_optio
         if i not in paired:  # (paired sizes come from their own fits, below)
             # each size as count_roi finds it under the prior (the same grid): a calibration of these ROIs and
             # a count of any of them with this calibration's prior agree
-            fit = fits[i]
-            if fit is not None and unit_results[i] is not None and np.isfinite(prior[0]):
-                fit = _quantal_fit(unit_results[i], frame_rate, shape, prior)
+            unit = unit_results[i]
+            fit = None if unit is None else (_quantal_fit(unit, frame_rate, shape, prior) if np.isfinite(prior[0])
+                                              else fits[i])
             size[i], low[i], high[i], size_z[i], reasons[i] = _roi_size(fit, prior, indicator_size)
             calibrated[i] = reasons[i] == ""
     for roi in paired:
