@@ -237,7 +237,7 @@ def _profile(x, weight, grid, noise_size, steps, tolerance, loglik_out, share_ou
     """The profile likelihood over the grid of q (ascending): EM at each q from its default start (``fresh``;
     the previous q's parameters are not carried over), stopped when an EM step gains less than ``tolerance``
     in log-likelihood."""
-    state = np.empty(6)  # pi0, alpha, theta, a^2, v, (unused)
+    state = np.empty(5)  # pi0, alpha, theta, a^2, v
     p = np.zeros(_MAX_COMPONENTS)
     for j in range(grid.shape[0]):
         loglik_out[j], share_out[j], v_out[j] = _em_fit(x, weight, grid[j], noise_size, steps, tolerance, state, p,
