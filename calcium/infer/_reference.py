@@ -431,7 +431,7 @@ def profile_reference(x, weight, grid, noise_size: float, steps: int, tolerance:
     start; returns (log-likelihoods, noise shares, v, proportions)."""
     from .quantal import _MAX_COMPONENTS
 
-    state = np.empty(6)
+    state = np.empty(5)
     p = np.zeros(_MAX_COMPONENTS)
     out = np.empty((3, len(grid)))
     proportions = np.zeros((len(grid), _MAX_COMPONENTS))
